@@ -1,0 +1,40 @@
+# Two commands do all the set-up: `make run` and `make test`.
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+PORT ?= 8000
+STAMP := $(VENV)/.installed
+
+.PHONY: install run test lint fuzz bench openapi check-tables clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+
+$(STAMP): $(BIN)/python pyproject.toml requirements.lock
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -r requirements.lock
+	$(BIN)/python -m pip install --quiet --no-deps -e .
+	touch $(STAMP)
+
+install: $(STAMP)
+
+run: install
+	PORT=$(PORT) $(BIN)/gunicorn --config deploy/gunicorn.conf.py service.wsgi:app
+
+test: install
+	$(BIN)/python -m pytest -q
+
+lint: install
+	$(BIN)/ruff check service tests bench
+
+openapi: install
+	$(BIN)/annuity-service write-openapi
+
+check-tables: install
+	$(BIN)/annuity-service check-tables tables
+
+bench: install
+	$(BIN)/python bench/run.py
+
+clean:
+	rm -rf $(VENV)

@@ -1,0 +1,44 @@
+"""The audit block and request id that every response carries."""
+
+import re
+import uuid
+from datetime import UTC, datetime
+from importlib import metadata
+
+from flask import current_app, g, request
+
+_REQUEST_ID = re.compile(r"^[A-Za-z0-9._:\-]{1,128}$")
+
+
+def _service_version() -> str:
+    try:
+        return metadata.version("annuity-factor-service")
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def request_id() -> str:
+    """Return this request's id: the caller's X-Request-ID if well-formed, else a new one."""
+    if "request_id" not in g:
+        incoming = request.headers.get("X-Request-ID", "")
+        g.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
+    return g.request_id
+
+
+def use_basis(basis, rate_override: float | None = None) -> None:
+    """Record which basis and interest this request used, for its audit block."""
+    g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest}
+    if rate_override is None:
+        g.audit_interest = {"kind": "flat", "rate": basis.interest_rate, "source": "basis"}
+    else:
+        g.audit_interest = {"kind": "flat", "rate": rate_override, "source": "request"}
+
+
+def audit_block() -> dict:
+    return {
+        "basis": g.get("audit_basis"),
+        "interest": g.get("audit_interest"),
+        "service": {"name": current_app.config["SERVICE_NAME"], "version": _service_version()},
+        "request_id": request_id(),
+        "computed_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
+    }

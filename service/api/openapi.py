@@ -1,0 +1,185 @@
+"""The OpenAPI 3.1 contract, generated from the marshmallow schemas, and the /docs page."""
+
+import html
+import json
+
+from apispec import APISpec
+from apispec.ext.marshmallow import MarshmallowPlugin
+from flask import Blueprint, Response, current_app, jsonify
+
+from service.api import schemas as s
+
+bp = Blueprint("contract", __name__)
+
+CAUTION = (
+    "Results are for use by qualified actuaries. Every basis must be approved for its use "
+    "under local regulation and professional standards before its factors are relied on. "
+    "Nothing this service returns is advice."
+)
+
+DESCRIPTION = (
+    "Present values of life-contingent payment streams (annuity factors) and the expected "
+    "cash flows behind them, under named, versioned bases loaded and verified at start-up. "
+    "Every factor is the present value of payments of 1 per annum; every response carries an "
+    "audit block naming the basis id, version and content digest, the interest used and the "
+    "method. Errors are RFC 9457 problem details (application/problem+json) with field paths. "
+    + CAUTION
+)
+
+_ERRORS = {
+    "400": "Malformed JSON, a body that is not UTF-8, duplicate keys, or NaN/Infinity literals.",
+    "404": "No loaded basis answers to the reference.",
+    "413": "Body or batch too large.",
+    "415": "The body is not application/json.",
+    "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
+}
+
+
+def _problem_responses(*codes):
+    return {code: {"description": _ERRORS[code],
+                   "content": {"application/problem+json": {
+                       "schema": {"$ref": "#/components/schemas/Problem"}}}}
+            for code in codes}
+
+
+def _ok(schema: str, description: str, extra_content: dict | None = None):
+    content = {"application/json": {"schema": {"$ref": f"#/components/schemas/{schema}"}}}
+    if extra_content:
+        content |= extra_content
+    return {"200": {"description": description, "content": content,
+                    "headers": {"X-Request-ID": {"schema": {"type": "string"},
+                                                 "description": "The request id (echoed "
+                                                                "when the caller sent one)."}}}}
+
+
+def _ref_param():
+    return {"name": "ref", "in": "path", "required": True,
+            "description": "ID (the default version) or ID@VERSION.",
+            "schema": {"type": "string", "pattern": "^[^/]+$"}}
+
+
+def _survivorship(converter, field, **kwargs):
+    if isinstance(field, s.SurvivorshipField):
+        return dict(s.SURVIVORSHIP_DOC)
+    return {}
+
+
+def build_spec(max_items: int, version: str = "") -> dict:
+    """Return the OpenAPI document as a dict (deterministic for a given code version)."""
+    plugin = MarshmallowPlugin(schema_name_resolver=lambda schema: None)
+    spec = APISpec(title="Annuity Factor Service", version=version or "0.1.0",
+                   openapi_version="3.1.0", plugins=[plugin],
+                   info={"description": DESCRIPTION})
+    plugin.converter.add_attribute_function(_survivorship)
+    for name, schema in [
+        ("Life", s.LifeSchema), ("SurvivorshipAmounts", s.SurvivorshipAmountsSchema),
+        ("Item", s.ItemSchema), ("FactorRequest", s.FactorRequestSchema),
+        ("ScheduleRequest", s.ScheduleRequestSchema), ("BasisRef", s.BasisRefSchema),
+        ("Interest", s.InterestSchema), ("ServiceInfo", s.ServiceInfoSchema),
+        ("Audit", s.AuditSchema), ("Method", s.MethodSchema),
+        ("FactorResult", s.FactorResultSchema), ("FactorResponse", s.FactorResponseSchema),
+        ("ScheduleRow", s.ScheduleRowSchema), ("ScheduleTotals", s.ScheduleTotalsSchema),
+        ("ScheduleResponse", s.ScheduleResponseSchema), ("BasisSummary", s.BasisSummarySchema),
+        ("BasisList", s.BasisListSchema), ("TableSource", s.TableSourceSchema),
+        ("BasisDefaults", s.BasisDefaultsSchema), ("BasisDetail", s.BasisDetailSchema),
+        ("LifeTableRow", s.LifeTableRowSchema), ("LifeTable", s.LifeTableSchema),
+        ("Problem", s.ProblemSchema), ("Health", s.HealthSchema),
+    ]:
+        spec.components.schema(name, schema=schema)
+    spec.path("/v1/bases", operations={"get": {
+        "operationId": "listBases", "summary": "List the loaded bases.",
+        "responses": _ok("BasisList", "Every loaded basis version.")}})
+    spec.path("/v1/bases/{ref}", parameters=[_ref_param()], operations={"get": {
+        "operationId": "getBasis", "summary": "One basis in full.",
+        "responses": _ok("BasisDetail", "The basis.") | _problem_responses("404")}})
+    spec.path("/v1/bases/{ref}/life-table", parameters=[_ref_param()], operations={"get": {
+        "operationId": "getLifeTable",
+        "summary": "The basis' table as rows (age, q, p, l, d, curtate expectation) for one "
+                   "life followed from from_age; with duration, a life selected duration "
+                   "years before from_age.",
+        "parameters": [
+            {"name": "from_age", "in": "query", "schema": {"type": "integer", "minimum": 0,
+                                                           "maximum": 200}},
+            {"name": "to_age", "in": "query", "schema": {"type": "integer", "minimum": 0,
+                                                         "maximum": 200}},
+            {"name": "sex", "in": "query", "schema": {"type": "string",
+                                                      "enum": list(s.SEX_VALUES)}},
+            {"name": "duration", "in": "query", "schema": {"type": "integer", "minimum": 0,
+                                                           "maximum": 200}},
+        ],
+        "responses": _ok("LifeTable", "The rows.") | _problem_responses("404", "422")}})
+    spec.path("/v1/annuity-factors", operations={"post": {
+        "operationId": "annuityFactors",
+        "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
+        "requestBody": {"required": True, "content": {"application/json": {
+            "schema": {"$ref": "#/components/schemas/FactorRequest"}}}},
+        "responses": _ok("FactorResponse", "results[i] answers items[i].")
+        | _problem_responses("400", "404", "413", "415", "422")}})
+    spec.path("/v1/cash-flow-schedules", operations={"post": {
+        "operationId": "cashFlowSchedules",
+        "summary": "The expected payment schedule behind one factor, as JSON or as CSV "
+                   "(Accept: text/csv; the audit block then travels in X- headers).",
+        "requestBody": {"required": True, "content": {"application/json": {
+            "schema": {"$ref": "#/components/schemas/ScheduleRequest"}}}},
+        "responses": _ok("ScheduleResponse", "One row per possible payment date (one per year "
+                                             "of the window for continuous payments).",
+                         {"text/csv": {"schema": {"type": "string"}}})
+        | _problem_responses("400", "404", "413", "415", "422")}})
+    spec.path("/livez", operations={"get": {
+        "operationId": "livez", "summary": "Liveness: the process answers.",
+        "responses": _ok("Health", "Alive.")}})
+    spec.path("/readyz", operations={"get": {
+        "operationId": "readyz",
+        "summary": "Readiness: 200 when every required basis is loaded and verified, else 503.",
+        "responses": _ok("Health", "Ready.") | {"503": {
+            "description": "Not ready: a required basis is missing or refused.",
+            "content": {"application/json": {
+                "schema": {"$ref": "#/components/schemas/Health"}}}}}}})
+    return spec.to_dict()
+
+
+def spec_json(max_items: int, version: str = "") -> str:
+    return json.dumps(build_spec(max_items, version), indent=2, sort_keys=True) + "\n"
+
+
+@bp.get("/openapi.json")
+def openapi_json():
+    """The contract."""
+    from service.api.audit import _service_version
+
+    return jsonify(build_spec(current_app.config["MAX_ITEMS"], _service_version()))
+
+
+@bp.get("/docs")
+def docs():
+    """A browsable page of the contract."""
+    from service.api.audit import _service_version
+
+    spec = build_spec(current_app.config["MAX_ITEMS"], _service_version())
+    rows = []
+    for path, ops in spec["paths"].items():
+        for method, op in ops.items():
+            if method == "parameters":
+                continue
+            rows.append(f"<tr><td><code>{method.upper()}</code></td><td><code>"
+                        f"{html.escape(path)}</code></td><td>{html.escape(op['summary'])}</td>"
+                        "</tr>")
+    schemas = "".join(
+        f"<details><summary><code>{html.escape(name)}</code></summary><pre>"
+        f"{html.escape(json.dumps(body, indent=2))}</pre></details>"
+        for name, body in spec["components"]["schemas"].items())
+    page = f"""<!doctype html>
+<html lang="en"><head><meta charset="utf-8"><title>Annuity Factor Service</title>
+<style>body{{font-family:sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem}}
+td,th{{padding:.3rem .6rem;text-align:left;vertical-align:top}}
+.caution{{border:2px solid #a60;padding:.8rem;background:#fff6e8}}</style></head>
+<body><h1>Annuity Factor Service</h1>
+<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>
+<p>{html.escape(DESCRIPTION.replace(CAUTION, ''))}</p>
+<p>The machine-readable contract is at <a href="/openapi.json">/openapi.json</a>.</p>
+<h2>Operations</h2><table><tr><th>Method</th><th>Path</th><th>What it does</th></tr>
+{''.join(rows)}</table>
+<h2>Schemas</h2>{schemas}
+</body></html>
+"""
+    return Response(page, mimetype="text/html")

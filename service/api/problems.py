@@ -1,0 +1,79 @@
+"""RFC 9457 problem details: every error the service returns has this one shape."""
+
+import logging
+
+from flask import Flask, jsonify
+from werkzeug.exceptions import HTTPException
+
+from service.api.audit import audit_block, request_id
+
+log = logging.getLogger(__name__)
+
+PROBLEM_BASE = "https://annuity-factor-service.invalid/problems/"
+_TYPES = {
+    400: "malformed-request",
+    401: "unauthorised",
+    404: "not-found",
+    405: "method-not-allowed",
+    406: "not-acceptable",
+    413: "too-large",
+    415: "unsupported-media-type",
+    422: "invalid-input",
+    500: "internal-error",
+}
+
+
+class ProblemError(Exception):
+    """An error with an HTTP status, raised anywhere in the web layer."""
+
+    def __init__(self, status: int, detail: str, *, title: str | None = None,
+                 errors: dict[str, list[str]] | None = None):
+        super().__init__(detail)
+        self.status = status
+        self.detail = detail
+        self.title = title
+        self.errors = errors
+
+
+def problem_response(status: int, detail: str, *, title: str | None = None,
+                     errors: dict | None = None):
+    from http import HTTPStatus
+
+    body = {
+        "type": PROBLEM_BASE + _TYPES.get(status, "error"),
+        "title": title or HTTPStatus(status).phrase,
+        "status": status,
+        "detail": detail,
+        "request_id": request_id(),
+    }
+    if errors:
+        body["errors"] = errors
+    body["audit"] = audit_block()
+    response = jsonify(body)
+    response.status_code = status
+    response.mimetype = "application/problem+json"
+    return response
+
+
+def init_app(app: Flask) -> None:
+    @app.errorhandler(ProblemError)
+    def _problem(exc: ProblemError):
+        return problem_response(exc.status, exc.detail, title=exc.title, errors=exc.errors)
+
+    @app.errorhandler(HTTPException)
+    def _http(exc: HTTPException):
+        detail = exc.description or exc.name
+        if exc.code == 413:
+            detail = (f"The body is larger than the limit of "
+                      f"{app.config['MAX_CONTENT_LENGTH']} bytes.")
+        response = problem_response(exc.code or 500, detail)
+        if exc.code == 405 and exc.valid_methods:
+            response.headers["Allow"] = ", ".join(exc.valid_methods)
+        return response
+
+    @app.errorhandler(Exception)
+    def _unexpected(exc: Exception):
+        # The trace goes to the log, never to the caller.
+        log.exception("unhandled error in request %s", request_id())
+        return problem_response(500, "The service failed to answer; the request id is in the "
+                                     "log.")

@@ -1,0 +1,315 @@
+"""Marshmallow schemas: the request and response shapes of the HTTP interface."""
+
+import math
+
+from marshmallow import (
+    RAISE,
+    Schema,
+    ValidationError,
+    fields,
+    validate,
+    validates_schema,
+)
+
+from service.engine.annuity import MAX_FREQUENCY, TIMINGS
+
+#: Named survivorship patterns: amounts while (both alive, only first alive, only second alive).
+SURVIVORSHIP_SHORTCUTS = {
+    "joint-life": (1.0, 0.0, 0.0),
+    "last-survivor": (1.0, 1.0, 1.0),
+    "reversionary": (0.0, 0.0, 1.0),
+}
+SEX_VALUES = ("female", "male")
+MAX_YEARS = 200.0
+
+
+class StrictFloat(fields.Float):
+    """A JSON number only: no strings, no booleans, nothing that is not finite."""
+
+    def __init__(self, **kwargs):
+        kwargs.setdefault("allow_nan", False)
+        super().__init__(**kwargs)
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if isinstance(value, bool) or not isinstance(value, int | float):
+            raise ValidationError("Not a valid number.")
+        try:
+            number = float(value)
+        except OverflowError:
+            raise ValidationError("Number is out of range.") from None
+        if not math.isfinite(number):
+            raise ValidationError("Special numeric values (nan or infinity) are not permitted.")
+        return number
+
+
+class _Strict(Schema):
+    class Meta:
+        unknown = RAISE
+
+
+class LifeSchema(_Strict):
+    age = StrictFloat(required=True, validate=validate.Range(0, 200),
+                      metadata={"description": "Exact age in years (real).", "example": 65.25})
+    sex = fields.String(validate=validate.OneOf(SEX_VALUES), load_default=None,
+                        metadata={"description": "Required where the basis is sex-distinct; "
+                                                 "ignored by a unisex basis."})
+    duration = fields.Integer(strict=True, allow_none=True, load_default=None,
+                              validate=validate.Range(0, 200),
+                              metadata={"description": "Whole years since selection for a "
+                                                       "select table; omitted or null means "
+                                                       "ultimate."})
+    age_adjustment = StrictFloat(load_default=0.0, validate=validate.Range(-50, 50),
+                                 metadata={"description": "Years added to the age (an age "
+                                                          "rating); may be negative."})
+    mortality_multiplier = StrictFloat(load_default=1.0, validate=validate.Range(0, 100),
+                                       metadata={"description": "Every q is multiplied by this, "
+                                                                "then capped at 1."})
+
+
+class SurvivorshipAmountsSchema(_Strict):
+    both = StrictFloat(required=True, validate=validate.Range(0, 1))
+    first_only = StrictFloat(required=True, validate=validate.Range(0, 1))
+    second_only = StrictFloat(required=True, validate=validate.Range(0, 1))
+
+
+class SurvivorshipField(fields.Field):
+    """Either a named shortcut or an object of three amounts."""
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if isinstance(value, str):
+            if value not in SURVIVORSHIP_SHORTCUTS:
+                raise ValidationError(
+                    f"Must be one of {', '.join(SURVIVORSHIP_SHORTCUTS)} or an object of "
+                    "amounts.")
+            return SURVIVORSHIP_SHORTCUTS[value]
+        if isinstance(value, dict):
+            loaded = SurvivorshipAmountsSchema().load(value)
+            return (loaded["both"], loaded["first_only"], loaded["second_only"])
+        raise ValidationError("Must be a shortcut name or an object of amounts.")
+
+
+SURVIVORSHIP_DOC = {
+    "description": (
+        "Amounts per annum payable while both lives are alive, while only the first is "
+        "alive, and while only the second is alive. Shortcuts: 'joint-life' = (1, 0, 0), paid "
+        "while both live; 'last-survivor' = (1, 1, 1), paid until the second death; "
+        "'reversionary' = (0, 0, 1), paid to the second life after the first dies. A "
+        "joint-and-two-thirds-survivor pension is {\"both\": 1, \"first_only\": 1, "
+        "\"second_only\": 0.6667}. Two lives only; default 'last-survivor'."),
+    "oneOf": [
+        {"type": "string", "enum": list(SURVIVORSHIP_SHORTCUTS)},
+        {"$ref": "#/components/schemas/SurvivorshipAmounts"},
+    ],
+}
+
+
+class ItemSchema(_Strict):
+    lives = fields.List(fields.Nested(LifeSchema), required=True,
+                        validate=validate.Length(1, 2),
+                        metadata={"description": "One life, or two for a joint benefit."})
+    timing = fields.String(required=True, validate=validate.OneOf(TIMINGS),
+                           metadata={"description": "advance (annuity-due), arrears "
+                                                    "(annuity-immediate) or continuous."})
+    frequency = fields.Integer(strict=True, load_default=1,
+                               validate=validate.Range(1, MAX_FREQUENCY),
+                               metadata={"description": "Payments per year for discrete "
+                                                        "timings; each is 1/frequency."})
+    term = StrictFloat(allow_none=True, load_default=None,
+                       validate=validate.Range(0, MAX_YEARS, min_inclusive=False),
+                       metadata={"description": "Years of the payment window after the "
+                                                "deferral; null means for life."})
+    deferral = StrictFloat(load_default=0.0, validate=validate.Range(0, MAX_YEARS),
+                           metadata={"description": "Years from now until the window opens."})
+    guarantee = StrictFloat(load_default=0.0, validate=validate.Range(0, MAX_YEARS),
+                            metadata={"description": "Years from the start of the window "
+                                                     "paid whether or not the lives survive."})
+    escalation = StrictFloat(load_default=0.0, validate=validate.Range(-0.5, 1.0),
+                             metadata={"description": "Compound annual rate of increase."})
+    survivorship = SurvivorshipField(load_default=None, metadata=SURVIVORSHIP_DOC)
+
+    @validates_schema
+    def _consistent(self, data, **kwargs):
+        errors = {}
+        term, guarantee = data.get("term"), data.get("guarantee", 0.0)
+        if term is not None and guarantee > term:
+            errors["guarantee"] = [f"A guarantee of {guarantee:g} years is longer than the "
+                                   f"term of {term:g} years."]
+        lives = data.get("lives") or []
+        if data.get("survivorship") is not None and len(lives) != 2:
+            errors["survivorship"] = ["Survivorship applies to two lives; this item has one."]
+        if errors:
+            raise ValidationError(errors)
+
+
+class FactorRequestSchema(_Strict):
+    basis = fields.String(required=True, validate=validate.Length(1, 200),
+                          metadata={"description": "ID (default version) or ID@VERSION.",
+                                    "example": "fernhollow-annuitants@2026.1"})
+    interest_rate = StrictFloat(load_default=None, allow_none=True,
+                                validate=validate.Range(-0.5, 1.0),
+                                metadata={"description": "Flat effective annual rate that "
+                                                         "replaces the basis' interest."})
+    items = fields.List(fields.Nested(ItemSchema), required=True,
+                        validate=validate.Length(min=1))
+
+
+class ScheduleRequestSchema(_Strict):
+    basis = fields.String(required=True, validate=validate.Length(1, 200))
+    interest_rate = StrictFloat(load_default=None, allow_none=True,
+                                validate=validate.Range(-0.5, 1.0))
+    item = fields.Nested(ItemSchema, required=True)
+    amount = StrictFloat(load_default=1.0, validate=validate.Range(0, 1e12),
+                         metadata={"description": "Annual amount; every row is scaled by it."})
+
+
+# ---- responses (for the contract and for tests) -------------------------------------------
+
+
+class BasisRefSchema(Schema):
+    id = fields.String(required=True)
+    version = fields.String(required=True)
+    digest = fields.String(required=True)
+
+
+class InterestSchema(Schema):
+    kind = fields.String(required=True, validate=validate.OneOf(["flat"]))
+    rate = fields.Float(required=True)
+    source = fields.String(required=True, validate=validate.OneOf(["basis", "request"]))
+
+
+class ServiceInfoSchema(Schema):
+    name = fields.String(required=True)
+    version = fields.String(required=True)
+
+
+class AuditSchema(Schema):
+    basis = fields.Nested(BasisRefSchema, allow_none=True, required=True)
+    interest = fields.Nested(InterestSchema, allow_none=True, required=True)
+    service = fields.Nested(ServiceInfoSchema, required=True)
+    request_id = fields.String(required=True)
+    computed_at = fields.String(required=True, metadata={"format": "date-time"})
+
+
+class MethodSchema(Schema):
+    evaluation = fields.String(required=True)
+    fractional_age = fields.String(required=True)
+    approximation = fields.String(required=True)
+
+
+class FactorResultSchema(Schema):
+    value = fields.Float(required=True)
+    method = fields.Nested(MethodSchema, required=True)
+
+
+class FactorResponseSchema(Schema):
+    results = fields.List(fields.Nested(FactorResultSchema), required=True)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class ScheduleRowSchema(Schema):
+    time = fields.Float(required=True)
+    payment = fields.Float(required=True)
+    probability = fields.Float(required=True)
+    discount = fields.Float(required=True)
+    present_value = fields.Float(required=True)
+    both_alive = fields.Float(metadata={"description": "Two lives: probability both alive."})
+    first_only = fields.Float(metadata={"description": "Two lives: only the first alive."})
+    second_only = fields.Float(metadata={"description": "Two lives: only the second alive."})
+
+
+class ScheduleTotalsSchema(Schema):
+    present_value = fields.Float(required=True)
+    factor = fields.Float(required=True)
+    amount = fields.Float(required=True)
+
+
+class ScheduleResponseSchema(Schema):
+    rows = fields.List(fields.Nested(ScheduleRowSchema), required=True)
+    totals = fields.Nested(ScheduleTotalsSchema, required=True)
+    method = fields.Nested(MethodSchema, required=True)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class BasisSummarySchema(Schema):
+    id = fields.String(required=True)
+    version = fields.String(required=True)
+    title = fields.String(required=True)
+    status = fields.String(required=True, validate=validate.OneOf(["approved", "demo",
+                                                                   "retired"]))
+    digest = fields.String(required=True)
+    default = fields.Boolean(required=True)
+
+
+class BasisListSchema(Schema):
+    bases = fields.List(fields.Nested(BasisSummarySchema), required=True)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class TableSourceSchema(Schema):
+    sex = fields.String(required=True)
+    kind = fields.String(required=True, validate=validate.OneOf(["law", "file"]))
+    law = fields.String()
+    parameters = fields.Dict(keys=fields.String(), values=fields.Float())
+    file = fields.String()
+    select_factors = fields.List(fields.Float())
+    first_age = fields.Integer(required=True)
+    last_age = fields.Integer(required=True)
+    select_period = fields.Integer(required=True)
+    source = fields.String(required=True)
+
+
+class BasisDefaultsSchema(Schema):
+    interest = fields.Nested(InterestSchema, required=True)
+    fractional_age = fields.String(required=True)
+    mthly = fields.String(required=True)
+
+
+class BasisDetailSchema(BasisSummarySchema):
+    purpose = fields.String(required=True)
+    source = fields.String(required=True)
+    sex_distinct = fields.Boolean(required=True)
+    mortality = fields.List(fields.Nested(TableSourceSchema), required=True)
+    defaults = fields.Nested(BasisDefaultsSchema, required=True)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class LifeTableRowSchema(Schema):
+    age = fields.Integer(required=True)
+    q = fields.Float(required=True)
+    p = fields.Float(required=True)
+    l = fields.Float(required=True)  # noqa: E741 - the actuarial symbol
+    d = fields.Float(required=True)
+    e = fields.Float(required=True, metadata={"description": "Curtate expectation of life."})
+
+
+class LifeTableQuerySchema(_Strict):
+    from_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
+    to_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
+    sex = fields.String(load_default=None, validate=validate.OneOf(SEX_VALUES))
+    duration = fields.Integer(load_default=None, validate=validate.Range(0, 200))
+
+
+class LifeTableSchema(Schema):
+    basis = fields.String(required=True)
+    sex = fields.String(required=True)
+    duration = fields.Integer(allow_none=True, required=True)
+    radix = fields.Float(required=True)
+    rows = fields.List(fields.Nested(LifeTableRowSchema), required=True)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class ProblemSchema(Schema):
+    type = fields.String(required=True)
+    title = fields.String(required=True)
+    status = fields.Integer(required=True)
+    detail = fields.String(required=True)
+    request_id = fields.String(required=True)
+    errors = fields.Dict(keys=fields.String(), values=fields.List(fields.String()))
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class HealthSchema(Schema):
+    status = fields.String(required=True)
+    bases = fields.Integer()
+    refused = fields.List(fields.String())
+    missing = fields.List(fields.String())

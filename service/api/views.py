@@ -1,0 +1,282 @@
+"""The HTTP routes. Views validate, ask the engine, and attach the audit block."""
+
+import csv
+import io
+
+
+import numpy as np
+from flask import Blueprint, Response, current_app, jsonify, request
+
+from service.api.audit import audit_block, use_basis
+from service.api.body import json_body, load
+from service.api.problems import ProblemError
+from service.api.schemas import (
+    FactorRequestSchema,
+    LifeTableQuerySchema,
+    ScheduleRequestSchema,
+)
+from service.bases import UnknownBasisError
+from service.engine.annuity import (
+    Item,
+    Life,
+    Payments,
+    Valuation,
+    annuity_values,
+    cash_flow_schedule,
+    method_of,
+)
+from service.engine.errors import ItemError
+from service.engine.lifetable import life_table_columns
+
+bp = Blueprint("api", __name__)
+
+_factor_request = FactorRequestSchema()
+_schedule_request = ScheduleRequestSchema()
+_life_table_query = LifeTableQuerySchema()
+
+
+def _registry():
+    return current_app.extensions["registry"]
+
+
+def _basis(ref: str):
+    try:
+        return _registry().resolve(ref)
+    except UnknownBasisError:
+        raise ProblemError(404, f"No loaded basis answers to '{ref}'. GET /v1/bases lists "
+                                "them.", title="Unknown basis") from None
+
+
+def _finite(values, path: str):
+    values = np.asarray(values, dtype=float)
+    if not np.isfinite(values).all():
+        raise ProblemError(422, "The result is not a finite number for these inputs.",
+                           errors={path: ["The value is not finite."]})
+
+
+def _summary(basis, defaults) -> dict:
+    return {"id": basis.id, "version": basis.version, "title": basis.title,
+            "status": basis.status, "digest": basis.digest,
+            "default": defaults.get(basis.id) == basis.version}
+
+
+@bp.get("/v1/bases")
+def list_bases():
+    """List the loaded bases."""
+    reg = _registry()
+    return jsonify({"bases": [_summary(b, reg.defaults) for b in reg.listing()],
+                    "audit": audit_block()})
+
+
+@bp.get("/v1/bases/<ref>")
+def get_basis(ref: str):
+    """One basis in full."""
+    reg = _registry()
+    basis = _basis(ref)
+    use_basis(basis)
+    mortality = []
+    for sex in basis.sexes:
+        spec = basis.mortality[sex]
+        entry = {"sex": sex, "kind": "law" if "law" in spec else "file",
+                 "first_age": spec["first_age"], "last_age": spec["last_age"],
+                 "select_period": spec["select_period"], "source": spec["source"]}
+        for key in ("law", "parameters", "file", "select_factors"):
+            if key in spec:
+                entry[key] = spec[key]
+        mortality.append(entry)
+    body = _summary(basis, reg.defaults) | {
+        "purpose": basis.purpose,
+        "source": basis.source,
+        "sex_distinct": basis.sex_distinct,
+        "mortality": mortality,
+        "defaults": {"interest": {"kind": "flat", "rate": basis.interest_rate,
+                                  "source": "basis"},
+                     "fractional_age": basis.fractional_age, "mthly": basis.approximation},
+        "audit": audit_block(),
+    }
+    return jsonify(body)
+
+
+@bp.get("/v1/bases/<ref>/life-table")
+def life_table(ref: str):
+    """The basis' table as rows for one life followed from an age."""
+    basis = _basis(ref)
+    use_basis(basis)
+    query = load(_life_table_query, request.args.to_dict())
+    sex = query["sex"]
+    index = basis.table_index(sex)
+    if index is None:
+        raise ProblemError(422, "This basis is sex-distinct: give sex.",
+                           errors={"sex": [f"Must be one of {', '.join(basis.sexes)}."]})
+    table = basis.tables[index]
+    duration = query["duration"]
+    default_from = table.first_age
+    if duration is not None and duration < table.select_period:
+        default_from = table.select_first_age + duration
+    from_age = query["from_age"] if query["from_age"] is not None else default_from
+    try:
+        cols = life_table_columns(table, from_age, to_age=query["to_age"], duration=duration)
+    except ValueError as exc:
+        raise ProblemError(422, "The ages asked for lie outside the table.",
+                           errors={"from_age": [str(exc)]}) from None
+    rows = [{"age": int(a), "q": float(q), "p": float(p), "l": float(lv), "d": float(d),
+             "e": float(e)}
+            for a, q, p, lv, d, e in zip(cols.age, cols.q, cols.p, cols.l, cols.d, cols.e,
+                                         strict=True)]
+    return jsonify({"basis": basis.ref, "sex": basis.sexes[index], "duration": duration,
+                    "radix": 100_000.0, "rows": rows, "audit": audit_block()})
+
+
+def _engine_items(basis, items, prefix: str):
+    out = []
+    missing = {}
+    for n, item in enumerate(items):
+        lives = []
+        for k, life in enumerate(item["lives"]):
+            index = basis.table_index(life["sex"])
+            if index is None:
+                missing[f"{prefix}{n}.lives.{k}.sex"] = [
+                    f"This basis is sex-distinct: give one of {', '.join(basis.sexes)}."]
+                index = 0
+            lives.append(Life(age=life["age"], table=index, duration=life["duration"],
+                              age_adjustment=life["age_adjustment"],
+                              mortality_multiplier=life["mortality_multiplier"]))
+        payments = Payments(timing=item["timing"], frequency=item["frequency"],
+                            term=item["term"], deferral=item["deferral"],
+                            guarantee=item["guarantee"], escalation=item["escalation"])
+        survivorship = item["survivorship"] or (1.0, 1.0, 1.0)
+        out.append(Item(tuple(lives), payments, survivorship))
+    if missing:
+        raise ProblemError(422, "The request has invalid fields.", errors=missing)
+    return out
+
+
+def _valuation(basis, rate):
+    use_basis(basis, rate)
+    return Valuation(basis.interest_rate if rate is None else rate, basis.fractional_age,
+                     basis.approximation)
+
+
+def _item_problem(exc: ItemError, prefix: str) -> ProblemError:
+    errors = {f"{prefix}{path}": msgs for path, msgs in exc.errors.items()}
+    return ProblemError(422, "Some items are impossible under this basis.", errors=errors)
+
+
+@bp.post("/v1/annuity-factors")
+def annuity_factors():
+    """One or many annuity factors under one basis."""
+    body = json_body()
+    limit = current_app.config["MAX_ITEMS"]
+    if isinstance(body, dict) and isinstance(body.get("items"), list) and len(body["items"]) > limit:
+        raise ProblemError(413, f"A request may hold at most {limit} items; this one has "
+                                f"{len(body['items'])}.", errors={"items": [
+                                    f"At most {limit} items."]})
+    data = load(_factor_request, body)
+    basis = _basis(data["basis"])
+    valuation = _valuation(basis, data["interest_rate"])
+    items = _engine_items(basis, data["items"], "items.")
+    try:
+        values = annuity_values(basis.tables, items, valuation)
+    except ItemError as exc:
+        raise _item_problem(exc, "items.") from None
+    bad = np.flatnonzero(~np.isfinite(values))
+    if bad.size:
+        _finite(values, f"items.{int(bad[0])}")
+    results = [{"value": float(v), "method": method_of(item, valuation)}
+               for v, item in zip(values.tolist(), items, strict=True)]
+    return jsonify({"results": results, "audit": audit_block()})
+
+
+_CSV_COLUMNS = ("time", "payment", "probability", "discount", "present_value")
+_STATE_COLUMNS = ("both_alive", "first_only", "second_only")
+
+
+@bp.post("/v1/cash-flow-schedules")
+def cash_flow_schedules():
+    """The expected payment schedule behind one factor."""
+    wants_csv = request.accept_mimetypes.best_match(["application/json", "text/csv"]) == \
+        "text/csv"
+    body = json_body()
+    data = load(_schedule_request, body)
+    basis = _basis(data["basis"])
+    valuation = _valuation(basis, data["interest_rate"])
+    (item,) = _engine_items(basis, [data["item"]], "item.")
+    try:
+        sched = cash_flow_schedule(basis.tables, item, valuation)
+    except ItemError as exc:
+        raise ProblemError(422, "The item is impossible under this basis.", errors={
+            "item." + path.partition(".")[2]: msgs for path, msgs in exc.errors.items()}) \
+            from None
+    amount = data["amount"]
+    columns = {"time": sched.time, "payment": sched.payment * amount,
+               "probability": sched.probability, "discount": sched.discount,
+               "present_value": sched.present_value * amount}
+    two = len(item.lives) == 2
+    if two:
+        columns |= {"both_alive": sched.both, "first_only": sched.first_only,
+                    "second_only": sched.second_only}
+    for name, values in columns.items():
+        _finite(values, f"rows.{name}")
+    total = float(np.sum(sched.present_value)) * amount
+    factor = float(np.sum(sched.present_value))
+    method = method_of(item, valuation, exact=True)
+    names = list(columns)
+    lists = [columns[n].tolist() for n in names]
+    if wants_csv:
+        return _csv_response(names, lists, total, factor, amount, method)
+    rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
+    return jsonify({"rows": rows,
+                    "totals": {"present_value": total, "factor": factor, "amount": amount},
+                    "method": method, "audit": audit_block()})
+
+
+def _csv_response(names, lists, total, factor, amount, method):
+    out = io.StringIO()
+    writer = csv.writer(out, lineterminator="\n")
+    writer.writerow(names)
+    writer.writerows(zip(*[[repr(v) for v in col] for col in lists], strict=True))
+    response = Response(out.getvalue(), mimetype="text/csv")
+    audit = audit_block()
+    headers = {
+        "X-Basis-Id": audit["basis"]["id"],
+        "X-Basis-Version": audit["basis"]["version"],
+        "X-Basis-Digest": audit["basis"]["digest"],
+        "X-Interest-Rate": repr(audit["interest"]["rate"]),
+        "X-Interest-Source": audit["interest"]["source"],
+        "X-Method-Evaluation": method["evaluation"],
+        "X-Method-Fractional-Age": method["fractional_age"],
+        "X-Method-Approximation": method["approximation"],
+        "X-Total-Present-Value": repr(total),
+        "X-Factor": repr(factor),
+        "X-Amount": repr(amount),
+        "X-Service": f"{audit['service']['name']}/{audit['service']['version']}",
+        "X-Computed-At": audit["computed_at"],
+    }
+    response.headers.update(headers)
+    return response
+
+
+@bp.get("/livez")
+def livez():
+    """Liveness: the process answers."""
+    return jsonify({"status": "ok"})
+
+
+@bp.get("/readyz")
+def readyz():
+    """Readiness: every required basis is loaded and verified, and at least one basis is."""
+    reg = _registry()
+    missing = []
+    for ref in current_app.config["REQUIRED_BASES"]:
+        try:
+            reg.resolve(ref)
+        except UnknownBasisError:
+            missing.append(ref)
+    ready = not missing and bool(reg.bases)
+    body = {"status": "ready" if ready else "not ready", "bases": len(reg.bases),
+            "refused": [f"{r.file}: {r.reason}" for r in reg.refused], "missing": missing}
+    response = jsonify(body)
+    response.status_code = 200 if ready else 503
+    return response
+
+

@@ -1,0 +1,41 @@
+"""The application factory: wires the API to a registry of bases loaded once at start-up."""
+
+import logging
+import os
+from pathlib import Path
+
+from flask import Flask
+
+from service.bases import load_registry
+
+#: The tables folder shipped with the service (the repository's tables/).
+DEFAULT_TABLES = Path(__file__).resolve().parent.parent / "tables"
+
+
+def create_app(config: dict | None = None) -> Flask:
+    """Create the service: defaults, then the environment, then ``config`` (tests)."""
+    app = Flask(__name__)
+    app.config.from_mapping(
+        TABLES_DIR=str(DEFAULT_TABLES),
+        MAX_ITEMS=10_000,
+        MAX_CONTENT_LENGTH=4 * 1024 * 1024,
+        REQUIRED_BASES=(),
+        SERVICE_NAME="annuity-factor-service",
+    )
+    if "ANNUITY_TABLES_DIR" in os.environ:
+        app.config["TABLES_DIR"] = os.environ["ANNUITY_TABLES_DIR"]
+    if os.environ.get("ANNUITY_REQUIRED_BASES"):
+        app.config["REQUIRED_BASES"] = tuple(
+            r.strip() for r in os.environ["ANNUITY_REQUIRED_BASES"].split(",") if r.strip())
+    if config:
+        app.config.from_mapping(config)
+    app.json.sort_keys = False
+    logging.basicConfig(level=logging.INFO, format="%(message)s")
+
+    # Loaded once, read-only afterwards; an unreadable folder stops start-up.
+    app.extensions["registry"] = load_registry(app.config["TABLES_DIR"])
+
+    from service import api
+
+    api.init_app(app)
+    return app

@@ -1,0 +1,83 @@
+"""Operator commands: serve, check a tables folder, write the OpenAPI file."""
+
+import argparse
+import logging
+import os
+import sys
+from pathlib import Path
+
+from service.app import DEFAULT_TABLES
+
+ROOT = Path(__file__).resolve().parent.parent
+OPENAPI_FILE = ROOT / "openapi" / "openapi.json"
+#: The batch limit written into the committed contract (the default configuration).
+DEFAULT_MAX_ITEMS = 10_000
+
+
+def _serve(args) -> int:
+    os.environ.setdefault("PORT", str(args.port))
+    gunicorn = Path(sys.executable).with_name("gunicorn")
+    argv = [str(gunicorn), "--config", str(ROOT / "deploy" / "gunicorn.conf.py"),
+            "service.wsgi:create_app()"]
+    os.execv(argv[0], argv)
+    return 1  # pragma: no cover - execv does not return
+
+
+def _check_tables(args) -> int:
+    from service.bases import load_registry
+
+    logging.basicConfig(level=logging.ERROR, format="%(message)s")
+    try:
+        registry = load_registry(args.directory)
+    except OSError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+    for basis in registry.listing():
+        marker = " (default)" if registry.defaults.get(basis.id) == basis.version else ""
+        print(f"ok       {basis.ref}{marker}  {basis.status}  {basis.digest}  {basis.file}")
+    for refusal in registry.refused:
+        print(f"REFUSED  {refusal.file}: {refusal.reason}")
+    if not registry.bases and not registry.refused:
+        print(f"error: no basis files (*.toml) under {args.directory}", file=sys.stderr)
+        return 1
+    return 1 if registry.refused else 0
+
+
+def _write_openapi(args) -> int:
+    from service.api.openapi import spec_json
+
+    text = spec_json(DEFAULT_MAX_ITEMS)
+    target = Path(args.output)
+    if args.check:
+        current = target.read_text() if target.exists() else ""
+        if current != text:
+            print(f"{target} is out of date: run 'annuity-service write-openapi'",
+                  file=sys.stderr)
+            return 1
+        return 0
+    target.parent.mkdir(parents=True, exist_ok=True)
+    target.write_text(text)
+    print(f"wrote {target}")
+    return 0
+
+
+def main(argv=None) -> int:
+    parser = argparse.ArgumentParser(prog="annuity-service", description=__doc__)
+    sub = parser.add_subparsers(dest="command", required=True)
+    serve = sub.add_parser("serve", help="serve the API with gunicorn (PORT, default 8000)")
+    serve.add_argument("--port", type=int, default=int(os.environ.get("PORT", "8000")))
+    serve.set_defaults(func=_serve)
+    check = sub.add_parser("check-tables", help="validate a tables folder; non-zero on any "
+                                                "problem")
+    check.add_argument("directory", nargs="?", default=str(DEFAULT_TABLES))
+    check.set_defaults(func=_check_tables)
+    write = sub.add_parser("write-openapi", help="write the OpenAPI contract to openapi/")
+    write.add_argument("--output", default=str(OPENAPI_FILE))
+    write.add_argument("--check", action="store_true", help="fail if the file is out of date")
+    write.set_defaults(func=_write_openapi)
+    args = parser.parse_args(argv)
+    return args.func(args)
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

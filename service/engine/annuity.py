@@ -1,0 +1,566 @@
+"""Present values and expected payments of life-contingent payment streams, one or two lives.
+
+Conventions (all times in years from the valuation date):
+
+- The payment window opens at the deferral u and lasts ``term`` years (for life when None).
+- Discrete payments: m per year of 1/m each. The j-th payment covers the period that starts
+  at u + j/m; it is paid at the start of that period (``advance``) or at its end (``arrears``).
+  Its amount is (1 + r)^k / m with k = floor(j / m) the year of the window it falls in.
+- ``continuous``: payment at rate (1 + r)^floor(t - u) per annum throughout the window.
+- A guarantee of g years makes the payments for periods starting before u + g certain,
+  provided that some life is alive at u; later payments depend on who is alive.
+- Survivorship (both, first_only, second_only) gives the amount payable in each state of the
+  two lives; a single life is paid while it is alive.
+
+The value is computed as sum(payment x discount factor x probability of payment), or for
+continuous payments as the exact integral of the same product within each year of age.
+"""
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.engine import integrals
+from service.engine.errors import ItemError
+from service.engine.survival import ASSUMPTIONS, Lives, build_lives
+
+TIMINGS = ("advance", "arrears", "continuous")
+APPROXIMATIONS = ("exact", "woolhouse-2", "woolhouse-3")
+MAX_FREQUENCY = 365
+#: Payment dates evaluated at once; larger batches are split to bound memory.
+_CHUNK_POINTS = 2_000_000
+_EPS = 1e-9
+
+
+@dataclass(frozen=True)
+class Life:
+    """One life: exact age, the table it follows, and its underwriting adjustments."""
+
+    age: float
+    table: int = 0
+    duration: int | None = None
+    age_adjustment: float = 0.0
+    mortality_multiplier: float = 1.0
+
+
+@dataclass(frozen=True)
+class Payments:
+    """The shape of the payment stream (per annum amounts of 1 before escalation)."""
+
+    timing: str = "advance"
+    frequency: int = 1
+    term: float | None = None
+    deferral: float = 0.0
+    guarantee: float = 0.0
+    escalation: float = 0.0
+
+
+#: Amounts payable while (both alive, only the first alive, only the second alive).
+LAST_SURVIVOR = (1.0, 1.0, 1.0)
+
+
+@dataclass(frozen=True)
+class Item:
+    """One annuity: one or two lives, a payment stream and the survivorship amounts."""
+
+    lives: tuple[Life, ...]
+    payments: Payments = Payments()
+    survivorship: tuple[float, float, float] = LAST_SURVIVOR
+
+
+@dataclass(frozen=True)
+class Valuation:
+    """Basis-level settings: flat effective annual interest and methods."""
+
+    interest: float
+    fractional_age: str = "udd"
+    approximation: str = "exact"
+
+    def __post_init__(self):
+        if not (math.isfinite(self.interest) and self.interest > -1):
+            raise ValueError("interest must be a finite rate above -1")
+        if self.fractional_age not in ASSUMPTIONS:
+            raise ValueError(f"unknown fractional-age assumption {self.fractional_age!r}")
+        if self.approximation not in APPROXIMATIONS:
+            raise ValueError(f"unknown m-thly approximation {self.approximation!r}")
+
+    @property
+    def delta(self) -> float:
+        return math.log1p(self.interest)
+
+
+def method_of(item: Item, valuation: Valuation, *, exact: bool = False) -> dict:
+    """Describe how ``item`` is valued, for the audit trail."""
+    p = item.payments
+    if p.timing == "continuous":
+        evaluation = "integral of payment rate x discount x survival, closed form per year of age"
+        approximation = "exact"
+    else:
+        evaluation = "sum of payment x discount factor x probability of payment"
+        approximation = "exact" if exact or p.frequency == 1 else valuation.approximation
+    return {"evaluation": evaluation, "fractional_age": valuation.fractional_age,
+            "approximation": approximation}
+
+
+# ---------------------------------------------------------------------------------------------
+# Validation and the batch arrays
+
+
+def _multiple_of(value: float, m: int) -> bool:
+    scaled = value * m
+    return abs(scaled - round(scaled)) <= _EPS * max(1.0, abs(scaled))
+
+
+def _check_item(item: Item) -> dict[str, list[str]]:
+    errors: dict[str, list[str]] = {}
+
+    def add(path, message):
+        errors.setdefault(path, []).append(message)
+
+    p = item.payments
+    if not 1 <= len(item.lives) <= 2:
+        add("lives", "an item has one or two lives")
+    if p.timing not in TIMINGS:
+        add("timing", f"must be one of {', '.join(TIMINGS)}")
+    discrete = p.timing != "continuous"
+    if discrete and not (isinstance(p.frequency, int) and 1 <= p.frequency <= MAX_FREQUENCY):
+        add("frequency", f"must be a whole number from 1 to {MAX_FREQUENCY}")
+    for name in ("deferral", "guarantee"):
+        v = getattr(p, name)
+        if not (math.isfinite(v) and v >= 0):
+            add(name, "must be a finite number of years, zero or more")
+    if p.term is not None and not (math.isfinite(p.term) and p.term > 0):
+        add("term", "must be a positive number of years, or null for life")
+    if not (math.isfinite(p.escalation) and p.escalation > -1):
+        add("escalation", "must be a finite rate above -1")
+    if p.term is not None and math.isfinite(p.guarantee) and p.guarantee > p.term * (1 + 1e-12):
+        add("guarantee", f"a guarantee of {p.guarantee:g} years is longer than the term "
+                         f"of {p.term:g} years")
+    if discrete and "frequency" not in errors:
+        for name in ("term", "deferral", "guarantee"):
+            v = getattr(p, name)
+            if v is not None and name not in errors and not _multiple_of(v, p.frequency):
+                add(name, f"must be a whole multiple of 1/{p.frequency} year for payments "
+                          f"{p.frequency} times a year")
+    for k, amount in enumerate(item.survivorship):
+        if not (math.isfinite(amount) and 0 <= amount <= 1):
+            add(f"survivorship.{k}", "amounts must lie between 0 and 1")
+    for n, life in enumerate(item.lives):
+        if not math.isfinite(life.age + life.age_adjustment):
+            add(f"lives.{n}.age", "must be a finite age")
+        m = life.mortality_multiplier
+        if not (math.isfinite(m) and m >= 0):
+            add(f"lives.{n}.mortality_multiplier", "must be a finite number, zero or more")
+        if life.duration is not None and not (isinstance(life.duration, int)
+                                              and life.duration >= 0):
+            add(f"lives.{n}.duration", "must be a whole number of years, zero or more")
+    return errors
+
+
+@dataclass(frozen=True, eq=False)
+class _Batch:
+    """Items as arrays; lives are rows of ``lives``; ``second`` is -1 for one life."""
+
+    lives: Lives
+    first: np.ndarray
+    second: np.ndarray
+    m: np.ndarray
+    arrears: np.ndarray
+    continuous: np.ndarray
+    term: np.ndarray  # inf for life
+    deferral: np.ndarray
+    guarantee: np.ndarray
+    growth: np.ndarray  # ln(1 + escalation)
+    amounts: np.ndarray  # (n, 3)
+    horizon: np.ndarray  # time after which every life is dead for certain
+    certain_weight: np.ndarray  # amount x P(some life alive at the deferral)
+
+    def state_probabilities(self, own, t):
+        """Return (both, first_only, second_only) probabilities at times ``t``."""
+        p1 = self.lives.survival(self.first[own], t)
+        has2 = self.second[own] >= 0
+        p2 = np.where(has2, self.lives.survival(np.maximum(self.second[own], 0), t), 0.0)
+        both = p1 * p2
+        return both, p1 - both, p2 - both
+
+    def life_weight(self, own, t):
+        """Return the expected fraction of the full amount payable at ``t`` if not certain."""
+        both, one, two = self.state_probabilities(own, t)
+        a = self.amounts[own]
+        return a[:, 0] * both + a[:, 1] * one + a[:, 2] * two
+
+    def life_weight_slope(self, own, t):
+        """Return d/dt of :meth:`life_weight`."""
+        lives = self.lives
+        p1 = lives.survival(self.first[own], t)
+        has2 = self.second[own] >= 0
+        s2 = np.maximum(self.second[own], 0)
+        p2 = np.where(has2, lives.survival(s2, t), 0.0)
+        with np.errstate(invalid="ignore"):
+            d1 = np.where(p1 > 0, -lives.force(self.first[own], t) * p1, 0.0)
+            d2 = np.where(has2 & (p2 > 0), -lives.force(s2, t) * p2, 0.0)
+        dboth = d1 * p2 + p1 * d2
+        a = self.amounts[own]
+        return a[:, 0] * dboth + a[:, 1] * (d1 - dboth) + a[:, 2] * (d2 - dboth)
+
+
+def _prepare(tables, items, valuation: Valuation, *, offset: int = 0) -> _Batch:
+    errors: dict[str, list[str]] = {}
+    for n, item in enumerate(items):
+        for path, msgs in _check_item(item).items():
+            errors.setdefault(f"{n + offset}.{path}", []).extend(msgs)
+    if errors:
+        raise ItemError(errors)
+
+    life_rows = [(n, k, life) for n, item in enumerate(items) for k, life in enumerate(item.lives)]
+    bad_table = [(n, k) for n, k, life in life_rows if not 0 <= life.table < len(tables)]
+    if bad_table:
+        raise ItemError({f"{n + offset}.lives.{k}.sex": ["no table for this life in the basis"]
+                         for n, k in bad_table})
+    lives, problems = build_lives(
+        tables,
+        [life.table for _, _, life in life_rows],
+        [life.age + life.age_adjustment for _, _, life in life_rows],
+        [math.inf if life.duration is None else life.duration for _, _, life in life_rows],
+        [life.mortality_multiplier for _, _, life in life_rows],
+        valuation.fractional_age,
+    )
+    if problems:
+        raise ItemError({f"{life_rows[pos][0] + offset}.lives.{life_rows[pos][1]}.{field}": [msg]
+                         for pos, (field, msg) in sorted(problems.items())})
+
+    count = len(items)
+    first = np.zeros(count, dtype=np.intp)
+    second = np.full(count, -1, dtype=np.intp)
+    for pos, (n, k, _) in enumerate(life_rows):
+        (first if k == 0 else second)[n] = pos
+    pay = [item.payments for item in items]
+    continuous = np.array([p.timing == "continuous" for p in pay], dtype=bool)
+    m = np.array([1 if p.timing == "continuous" else p.frequency for p in pay], dtype=np.int64)
+    term = np.array([math.inf if p.term is None else p.term for p in pay])
+    deferral = np.array([p.deferral for p in pay], dtype=float)
+    guarantee = np.array([p.guarantee for p in pay], dtype=float)
+    amounts = np.array([item.survivorship if len(item.lives) == 2 else LAST_SURVIVOR
+                        for item in items], dtype=float).reshape(count, 3)
+    last = np.array([tables[life.table].last_age for _, _, life in life_rows], dtype=float)
+    ages = lives.anchor + lives.frac
+    # Under UDD a life may survive into the year after the last age; beyond it none does.
+    life_horizon = last + 1.0 - ages
+    horizon = np.where(second >= 0, np.maximum(life_horizon[first], life_horizon[second]),
+                       life_horizon[first])
+    batch = _Batch(
+        lives=lives, first=first, second=second, m=m,
+        arrears=np.array([p.timing == "arrears" for p in pay], dtype=bool),
+        continuous=continuous, term=term, deferral=deferral, guarantee=guarantee,
+        growth=np.log1p(np.array([p.escalation for p in pay], dtype=float)),
+        amounts=amounts, horizon=horizon, certain_weight=np.zeros(count),
+    )
+    own = np.arange(count)
+    both, one, two = batch.state_probabilities(own, deferral)
+    object.__setattr__(batch, "certain_weight", amounts[:, 0] * (both + one + two))
+    return batch
+
+
+# ---------------------------------------------------------------------------------------------
+# Discrete payments
+
+
+def _payment_count(batch: _Batch) -> np.ndarray:
+    """Number of payment dates worth evaluating per item (later ones are certainly unpaid)."""
+    m = batch.m
+    by_life = np.floor(np.maximum(batch.horizon - batch.deferral, -1.0) * m + _EPS) + 1
+    by_life = np.maximum(by_life, 0)
+    guaranteed = np.rint(batch.guarantee * m)
+    count = np.maximum(by_life, guaranteed)
+    by_term = np.where(np.isfinite(batch.term), np.rint(np.where(np.isfinite(batch.term),
+                                                                  batch.term, 0) * m), np.inf)
+    return np.minimum(count, by_term).astype(np.int64)
+
+
+def _expand(owner, start, stop):
+    """Flatten the integer ranges [start, stop) of each owner into (owner, j) arrays."""
+    counts = np.maximum(stop - start, 0)
+    own = np.repeat(owner, counts)
+    firsts = np.cumsum(counts) - counts
+    j = np.arange(counts.sum()) - np.repeat(firsts, counts) + np.repeat(start, counts)
+    return own, j
+
+
+@dataclass(frozen=True, eq=False)
+class PaymentPoints:
+    """Every evaluated payment date of a set of items, flat."""
+
+    owner: np.ndarray
+    time: np.ndarray
+    amount: np.ndarray  # instalment per 1 p.a., escalation included
+    probability: np.ndarray  # expected fraction of the instalment that is paid
+    discount: np.ndarray
+    both: np.ndarray
+    first_only: np.ndarray
+    second_only: np.ndarray
+
+    @property
+    def present_value(self):
+        return self.amount * self.probability * self.discount
+
+
+def _points(batch: _Batch, own, j, delta: float) -> PaymentPoints:
+    m = batch.m[own]
+    t = batch.deferral[own] + (j + batch.arrears[own]) / m
+    amount = np.exp((j // m) * batch.growth[own]) / m
+    both, one, two = batch.state_probabilities(own, t)
+    a = batch.amounts[own]
+    life = a[:, 0] * both + a[:, 1] * one + a[:, 2] * two
+    certain = j < np.rint(batch.guarantee[own] * m)
+    probability = np.where(certain, batch.certain_weight[own], life)
+    return PaymentPoints(own, t, amount, probability, np.exp(-delta * t), both, one, two)
+
+
+def _chunks(cost: np.ndarray):
+    """Yield index arrays of consecutive items whose summed cost stays near the chunk size."""
+    edges = np.searchsorted(np.cumsum(cost), np.arange(_CHUNK_POINTS, cost.sum() + 1,
+                                                       _CHUNK_POINTS), side="right")
+    start = 0
+    for stop in [*edges.tolist(), len(cost)]:
+        if stop > start:
+            yield np.arange(start, stop)
+            start = stop
+
+
+def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximation: str):
+    values = np.zeros(which.size)
+    count = _payment_count(batch)[which]
+    m = batch.m[which]
+    woolhouse = (approximation != "exact") & (m > 1)
+    # Whole years of the window [k0, k1) that are life-contingent go to Woolhouse's formula.
+    k0 = np.ceil(batch.guarantee[which] - _EPS).astype(np.int64)
+    whole_life_years = np.ceil(np.maximum(batch.horizon[which] - batch.deferral[which], 0))
+    k1 = np.where(np.isfinite(batch.term[which]),
+                  np.floor(np.where(np.isfinite(batch.term[which]), batch.term[which], 0) + _EPS),
+                  whole_life_years).astype(np.int64)
+    k1 = np.where(woolhouse, np.maximum(k1, k0), k0)
+    local = np.arange(which.size)
+    for part in _chunks(count):
+        head_stop = np.minimum(k0[part] * m[part], count[part])
+        tail_start = np.maximum(k1[part] * m[part], head_stop)
+        o1, j1 = _expand(local[part], np.zeros(part.size, dtype=np.int64), head_stop)
+        o2, j2 = _expand(local[part], tail_start, count[part])
+        loc = np.concatenate([o1, o2])
+        pts = _points(batch, which[loc], np.concatenate([j1, j2]), delta)
+        values += np.bincount(loc, weights=pts.present_value, minlength=which.size)
+    if woolhouse.any():
+        values += _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation)
+    return values
+
+
+def _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation):
+    """Sum Woolhouse's formula over whole life-contingent years of the window.
+
+    For f(t) = v^t W(t), W the expected fraction payable, one year [k, k + 1) paid m-thly
+    in advance is approximately f(k) - (m-1)/(2m) (f(k) - f(k+1))
+    + (m^2-1)/(12 m^2) (f'(k) - f'(k+1)) (the last term for the three-term form);
+    in arrears add (f(k+1) - f(k)) / m. Over a whole life these telescope to the textbook
+    a-due^(m) = a-due - (m-1)/(2m) - (m^2-1)/(12 m^2) (delta + mu).
+    """
+    loc, k = _expand(local, k0, k1)
+    own = which[loc]
+    m = batch.m[own].astype(float)
+    t0 = batch.deferral[own] + k
+    t1 = t0 + 1.0
+    f0 = np.exp(-delta * t0) * batch.life_weight(own, t0)
+    f1 = np.exp(-delta * t1) * batch.life_weight(own, t1)
+    block = f0 - (m - 1) / (2 * m) * (f0 - f1)
+    if approximation == "woolhouse-3":
+        # f'(t) = v^t W'(t) - delta f(t)
+        g0 = np.exp(-delta * t0) * batch.life_weight_slope(own, t0) - delta * f0
+        g1 = np.exp(-delta * t1) * batch.life_weight_slope(own, t1) - delta * f1
+        block = block + (m * m - 1) / (12 * m * m) * (g0 - g1)
+    block = np.where(batch.arrears[own], block + (f1 - f0) / m, block)
+    block = block * np.exp(k * batch.growth[own])
+    return np.bincount(loc, weights=block, minlength=which.size)
+
+
+# ---------------------------------------------------------------------------------------------
+# Continuous payments
+
+
+@dataclass(frozen=True, eq=False)
+class Segments:
+    """Pieces of the continuous payment windows within which nothing changes its formula."""
+
+    owner: np.ndarray
+    start: np.ndarray
+    length: np.ndarray
+    year: np.ndarray  # year of the window, for escalation and schedules
+    present_value: np.ndarray
+    expected_amount: np.ndarray
+
+
+def _window_end(batch: _Batch, own):
+    u, g, n = batch.deferral[own], batch.guarantee[own], batch.term[own]
+    return np.minimum(u + n, np.maximum(u + g, batch.horizon[own]))
+
+
+def _grid(owner, base, step_from, step_to):
+    """Times base + k for integer k in [step_from, step_to) per owner."""
+    o, k = _expand(owner, step_from, step_to)
+    return o, base[o] + k
+
+
+def _segments(batch: _Batch, which: np.ndarray, delta: float) -> Segments:
+    u = batch.deferral[which]
+    end = _window_end(batch, which)
+    local = np.arange(which.size)
+    span = np.maximum(np.ceil(end - u), 0).astype(np.int64)
+    pieces = [_grid(local, u, np.zeros_like(span), span + 1),
+              (local, u + batch.guarantee[which]), (local, end)]
+    for life in (batch.first[which], batch.second[which]):
+        present = life >= 0
+        frac = np.where(present, batch.lives.frac[np.maximum(life, 0)], 0.0)
+        lo = np.where(present, np.floor(u + frac), 0).astype(np.int64)
+        hi = np.where(present, np.ceil(end + frac) + 1, 0).astype(np.int64)
+        pieces.append(_grid(local, -frac, lo, hi))
+    owner = np.concatenate([p[0] for p in pieces])
+    times = np.concatenate([p[1] for p in pieces])
+    times = np.clip(times, u[owner], end[owner])
+    order = np.lexsort((times, owner))
+    owner, times = owner[order], times[order]
+    keep = (owner[1:] == owner[:-1]) & (times[1:] - times[:-1] > 1e-12)
+    seg_owner = owner[:-1][keep]
+    t1 = times[:-1][keep]
+    length = times[1:][keep] - t1
+    own = which[seg_owner]
+    mid = t1 + length / 2
+    year = np.floor(mid - batch.deferral[own]).astype(np.int64)
+    certain = mid < batch.deferral[own] + batch.guarantee[own]
+    pv = _segment_integral(batch, own, t1, length, mid, certain, delta)
+    undiscounted = _segment_integral(batch, own, t1, length, mid, certain, 0.0)
+    growth = np.exp(year * batch.growth[own])
+    return Segments(seg_owner, t1, length, year, growth * pv, growth * undiscounted)
+
+
+def _life_part(batch, life, t1, mid):
+    lives = batch.lives
+    k = np.floor(lives.frac[life] + mid).astype(np.int64)
+    r = np.clip(lives.frac[life] + t1 - k, 0.0, 1.0)
+    return lives.year_rate(life, k), r, lives.year_start(life, k)
+
+
+def _segment_integral(batch, own, t1, length, mid, certain, delta):
+    assumption = batch.lives.assumption
+    q1, r1, s1 = _life_part(batch, batch.first[own], t1, mid)
+    j1 = _single(assumption, q1, r1, delta, length) * s1
+    has2 = batch.second[own] >= 0
+    j2 = np.zeros_like(j1)
+    j12 = np.zeros_like(j1)
+    if has2.any():
+        q2, r2, s2 = _life_part(batch, np.maximum(batch.second[own], 0), t1, mid)
+        j2 = np.where(has2, _single(assumption, q2, r2, delta, length) * s2, 0.0)
+        j12 = np.where(has2, _pair(assumption, q1, r1, q2, r2, delta, length) * s1 * s2, 0.0)
+    a = batch.amounts[own]
+    life = (a[:, 0] - a[:, 1] - a[:, 2]) * j12 + a[:, 1] * j1 + a[:, 2] * j2
+    sure = batch.certain_weight[own] * integrals.certain(delta, length)
+    return np.exp(-delta * t1) * np.where(certain, sure, life)
+
+
+def _single(assumption, q, r, delta, length):
+    if assumption == "udd":
+        return integrals.udd(q, r, delta, length)
+    if assumption == "constant-force":
+        return integrals.constant_force(q, r, delta, length)
+    return integrals.balducci(q, r, delta, length)
+
+
+def _pair(assumption, q1, r1, q2, r2, delta, length):
+    if assumption == "udd":
+        return integrals.udd_pair(q1, r1, q2, r2, delta, length)
+    if assumption == "constant-force":
+        return integrals.constant_force(q1, r1, delta, length, q2, r2)
+    return integrals.balducci_pair(q1, r1, q2, r2, delta, length)
+
+
+def _continuous_values(batch: _Batch, which: np.ndarray, delta: float):
+    values = np.zeros(which.size)
+    cost = 3 * np.ceil(np.maximum(_window_end(batch, which) - batch.deferral[which], 0) + 2)
+    for part in _chunks(cost.astype(np.int64)):
+        seg = _segments(batch, which[part], delta)
+        values[part] += np.bincount(seg.owner, weights=seg.present_value, minlength=part.size)
+    return values
+
+
+# ---------------------------------------------------------------------------------------------
+# Entry points
+
+
+def annuity_values(tables, items, valuation: Valuation) -> np.ndarray:
+    """Return the present value of 1 p.a. for each item, as a float array.
+
+    Parameters
+    ----------
+    tables : sequence of MortalityTable; ``Life.table`` indexes it
+    items : sequence of Item
+    valuation : Valuation (interest, fractional-age assumption, m-thly approximation)
+
+    Raises
+    ------
+    ItemError
+        With paths such as ``"3.lives.0.age"`` for items impossible under the tables.
+    """
+    batch = _prepare(tables, items, valuation)
+    values = np.zeros(len(items))
+    delta = valuation.delta
+    discrete = np.flatnonzero(~batch.continuous)
+    if discrete.size:
+        values[discrete] = _discrete_values(batch, discrete, delta, valuation.approximation)
+    cont = np.flatnonzero(batch.continuous)
+    if cont.size:
+        values[cont] = _continuous_values(batch, cont, delta)
+    return values
+
+
+@dataclass(frozen=True, eq=False)
+class Schedule:
+    """The expected payments behind one item (per 1 p.a.; scale by the annual amount)."""
+
+    time: np.ndarray
+    payment: np.ndarray
+    probability: np.ndarray
+    discount: np.ndarray
+    present_value: np.ndarray
+    both: np.ndarray
+    first_only: np.ndarray
+    second_only: np.ndarray
+
+
+def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
+    """Return one row per possible payment date of ``item`` (exact summation).
+
+    For continuous payments there is one row per year of the window: ``time`` is the start of
+    that year, ``payment`` the amount payable over it if every payment is made, ``probability``
+    the expected amount paid divided by ``payment``, ``discount`` the ratio of the year's exact
+    present value to its expected amount, and ``present_value`` that exact present value; the
+    state probabilities are those at the start of the year.
+    """
+    batch = _prepare(tables, [item], valuation)
+    delta = valuation.delta
+    which = np.array([0])
+    if not batch.continuous[0]:
+        own, j = _expand(which, np.zeros(1, dtype=np.int64), _payment_count(batch))
+        pts = _points(batch, own, j, delta)
+        return Schedule(pts.time, pts.amount, pts.probability, pts.discount, pts.present_value,
+                        pts.both, pts.first_only, pts.second_only)
+    seg = _segments(batch, which, delta)
+    years = int(seg.year.max()) + 1 if seg.year.size else 0
+    pv = np.bincount(seg.year, weights=seg.present_value, minlength=years)
+    expected = np.bincount(seg.year, weights=seg.expected_amount, minlength=years)
+    u = batch.deferral[0]
+    start = u + np.arange(years, dtype=float)
+    stop = np.minimum(start + 1.0, u + batch.term[0])
+    payment = (stop - start) * np.exp(np.arange(years) * batch.growth[0])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        probability = np.where(payment > 0, expected / payment, 0.0)
+        discount = np.where(expected > 0, pv / np.where(expected > 0, expected, 1.0),
+                            np.exp(-delta * start))
+    both, one, two = batch.state_probabilities(np.zeros(years, dtype=np.intp), start)
+    return Schedule(start, payment, probability, discount, pv, both, one, two)

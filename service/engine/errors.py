@@ -1,0 +1,21 @@
+"""Domain errors raised by the engine; only the web layer turns them into HTTP."""
+
+
+class EngineError(Exception):
+    """Base class of every error the engine raises."""
+
+
+class ItemError(EngineError):
+    """One or more items are well-formed but impossible under the basis.
+
+    ``errors`` maps a path inside the batch, such as ``"3.lives.0.age"``, to messages.
+    """
+
+    def __init__(self, errors: dict[str, list[str]]):
+        self.errors = errors
+        first = next(iter(errors.items()))
+        super().__init__(f"{first[0]}: {first[1][0]}")
+
+
+class TableError(EngineError):
+    """A mortality table is not usable (bad rates, wrong shape, unknown law)."""

@@ -1,0 +1,114 @@
+"""Mortality tables: annual rates q by integer age, optionally with a select period.
+
+A table runs from ``first_age`` to ``last_age`` and closes with q(last_age) = 1. A select
+table adds ``select_q[j, s]``: the rate in the (s+1)-th year after selection for a life
+selected at age ``select_first_age + j``; from duration ``select_period`` on the life follows
+the ultimate rates.
+"""
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from service.engine.errors import TableError
+
+#: Laws are tabulated up to this age, where q is set to 1.
+LAW_LAST_AGE = 130
+
+
+def _frozen(a) -> np.ndarray:
+    arr = np.array(a, dtype=float)
+    arr.setflags(write=False)
+    return arr
+
+
+@dataclass(frozen=True, eq=False)
+class MortalityTable:
+    """Annual mortality rates, ultimate and (optionally) select."""
+
+    first_age: int
+    q: np.ndarray
+    select_first_age: int = 0
+    select_q: np.ndarray = field(default_factory=lambda: _frozen(np.empty((0, 0))))
+
+    def __post_init__(self):
+        object.__setattr__(self, "q", _frozen(self.q))
+        select_q = np.array(self.select_q, dtype=float)
+        if select_q.ndim != 2:
+            select_q = select_q.reshape(0, 0)
+        object.__setattr__(self, "select_q", _frozen(select_q))
+        _check_rates(self.q, self.first_age, "q")
+        if self.q[-1] != 1.0:
+            raise TableError(f"the table must close with q = 1 at its last age {self.last_age}")
+        if self.select_period:
+            _check_rates(self.select_q, self.select_first_age, "select q")
+            if self.select_first_age < self.first_age:
+                raise TableError("select ages start before the ultimate table")
+            if self.select_first_age + self.select_q.shape[0] - 1 > self.last_age:
+                raise TableError("select ages run past the ultimate table")
+
+    @property
+    def last_age(self) -> int:
+        return self.first_age + len(self.q) - 1
+
+    @property
+    def select_period(self) -> int:
+        return int(self.select_q.shape[1]) if self.select_q.size else 0
+
+    @property
+    def select_last_age(self) -> int:
+        return self.select_first_age + self.select_q.shape[0] - 1
+
+
+def _check_rates(q: np.ndarray, first_age: int, what: str) -> None:
+    bad = ~np.isfinite(q) | (q < 0) | (q > 1)
+    if bad.any():
+        row = int(np.argwhere(bad)[0][0])
+        raise TableError(f"{what} at age {first_age + row} is {q.flat[np.flatnonzero(bad)[0]]!r}, "
+                         "outside [0, 1]")
+
+
+def makeham_q(ages, a: float, b: float, c: float) -> np.ndarray:
+    """Return annual q under Makeham's law mu(x) = A + B c^x.
+
+    Notes
+    -----
+    p(x) = exp(-A - B c^x (c - 1) / ln c); Gompertz is the case A = 0.
+    """
+    ages = np.asarray(ages, dtype=float)
+    if not (b > 0 and c > 1 and np.isfinite([a, b, c]).all()):
+        raise TableError("Makeham's law needs B > 0 and c > 1")
+    if a < 0 and not (a + b * c ** ages.min() > 0):
+        raise TableError("Makeham's law gives a negative force of mortality at the first age")
+    return -np.expm1(-a - b * c**ages * (c - 1.0) / np.log(c))
+
+
+def table_from_law(law: str, params: dict, first_age: int, *, last_age: int = LAW_LAST_AGE,
+                   select_factors=()) -> MortalityTable:
+    """Tabulate a named law as annual q from ``first_age`` to ``last_age`` (q = 1 there).
+
+    ``select_factors[s]`` multiplies the ultimate rate q(x + s) in the (s+1)-th select year.
+    """
+    ages = np.arange(first_age, last_age + 1)
+    if law == "makeham":
+        q = makeham_q(ages, params["A"], params["B"], params["c"])
+    elif law == "gompertz":
+        q = makeham_q(ages, 0.0, params["B"], params["c"])
+    else:
+        raise TableError(f"unknown law {law!r}; known: makeham, gompertz")
+    q[-1] = 1.0
+    return with_select_factors(MortalityTable(first_age, q), select_factors)
+
+
+def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
+    """Return ``table`` with select rates q[x]+s = factors[s] q(x + s)."""
+    factors = np.asarray(factors, dtype=float)
+    if factors.size == 0:
+        return table
+    if not (np.isfinite(factors).all() and (factors >= 0).all()):
+        raise TableError("select factors must be finite and non-negative")
+    period = factors.size
+    n_sel = len(table.q) - period
+    idx = np.arange(n_sel)[:, None] + np.arange(period)[None, :]
+    select_q = np.minimum(table.q[idx] * factors[None, :], 1.0)
+    return MortalityTable(table.first_age, table.q, table.first_age, select_q)
