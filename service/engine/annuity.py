@@ -29,7 +29,7 @@ TIMINGS = ("advance", "arrears", "continuous")
 APPROXIMATIONS = ("exact", "woolhouse-2", "woolhouse-3")
 MAX_FREQUENCY = 365
 #: Payment dates evaluated at once; larger batches are split to bound memory.
-_CHUNK_POINTS = 2_000_000
+_CHUNK_POINTS = 250_000
 _EPS = 1e-9
 
 
