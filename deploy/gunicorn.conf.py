@@ -1,21 +1,52 @@
-"""Gunicorn settings for the Annuity Factor Service (used by `make run`)."""
+"""Gunicorn settings for the Annuity Factor Service (used by `make run` and the container)."""
 
 import multiprocessing
 import os
+import shutil
+import tempfile
 
 bind = f"{os.environ.get('HOST', '127.0.0.1')}:{os.environ.get('PORT', '8000')}"
-# A few workers: two per core, at least two, at most eight unless WEB_CONCURRENCY says.
+# Workers from CPUs: two per core, at least two, at most eight, unless WEB_CONCURRENCY says.
 workers = int(os.environ.get("WEB_CONCURRENCY",
                              max(2, min(8, 2 * multiprocessing.cpu_count()))))
 worker_class = "sync"
-# Load the app (and so every basis) once in the master; workers share it.
+# Load the app (and so every basis) once in the master; the workers share it after fork.
 preload_app = True
 timeout = 60
+# On SIGTERM, workers finish the requests they have accepted within this many seconds.
 graceful_timeout = 30
 keepalive = 5
-# Bodies are limited by the app (413); headers are kept small.
 limit_request_field_size = 8190
-accesslog = None
+accesslog = None  # the app writes one structured JSON line per request
 errorlog = "-"
 loglevel = os.environ.get("LOG_LEVEL", "info")
 wsgi_app = "service.wsgi:create_app()"
+
+# Prometheus multiprocess mode: every worker writes its samples to one shared folder, which
+# must exist and be empty before the app (and prometheus_client) is imported.
+_metrics_dir = os.environ.get("PROMETHEUS_MULTIPROC_DIR")
+_made_metrics_dir = not _metrics_dir
+if _made_metrics_dir:
+    _metrics_dir = tempfile.mkdtemp(prefix="annuity-metrics-")
+    os.environ["PROMETHEUS_MULTIPROC_DIR"] = _metrics_dir
+else:
+    os.makedirs(_metrics_dir, exist_ok=True)
+    for _name in os.listdir(_metrics_dir):
+        _path = os.path.join(_metrics_dir, _name)
+        if os.path.isdir(_path):
+            shutil.rmtree(_path)
+        else:
+            os.remove(_path)
+
+
+def child_exit(server, worker):
+    """Drop a dead worker's live gauges from the shared metrics folder."""
+    from prometheus_client import multiprocess
+
+    multiprocess.mark_process_dead(worker.pid)
+
+
+def on_exit(server):
+    """Remove the metrics folder this configuration made."""
+    if _made_metrics_dir:
+        shutil.rmtree(_metrics_dir, ignore_errors=True)

@@ -21,12 +21,17 @@ def create_app(config: dict | None = None) -> Flask:
         MAX_CONTENT_LENGTH=4 * 1024 * 1024,
         REQUIRED_BASES=(),
         SERVICE_NAME="annuity-factor-service",
+        # SHA-256 hex digests of accepted bearer tokens; empty means /v1 is open (local use).
+        AUTH_TOKEN_SHA256=(),
     )
     if "ANNUITY_TABLES_DIR" in os.environ:
         app.config["TABLES_DIR"] = os.environ["ANNUITY_TABLES_DIR"]
     if os.environ.get("ANNUITY_REQUIRED_BASES"):
         app.config["REQUIRED_BASES"] = tuple(
             r.strip() for r in os.environ["ANNUITY_REQUIRED_BASES"].split(",") if r.strip())
+    if os.environ.get("ANNUITY_TOKEN_SHA256"):
+        app.config["AUTH_TOKEN_SHA256"] = tuple(
+            h.strip().lower() for h in os.environ["ANNUITY_TOKEN_SHA256"].split(",") if h.strip())
     if config:
         app.config.from_mapping(config)
     app.json.sort_keys = False

@@ -32,6 +32,7 @@ _ERRORS = {
     "413": "Body or batch too large.",
     "415": "The body is not application/json.",
     "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
+    "401": "Bearer-token authentication is configured and no valid token was sent.",
 }
 
 
@@ -50,6 +51,10 @@ def _ok(schema: str, description: str, extra_content: dict | None = None):
                     "headers": {"X-Request-ID": {"schema": {"type": "string"},
                                                  "description": "The request id (echoed "
                                                                 "when the caller sent one)."}}}}
+
+
+#: /v1 operations take a bearer token when the operator configures tokens, none otherwise.
+_AUTH = [{}, {"bearer": []}]
 
 
 def _ref_param():
@@ -71,6 +76,10 @@ def build_spec(max_items: int, version: str = "") -> dict:
                    openapi_version="3.1.0", plugins=[plugin],
                    info={"description": DESCRIPTION})
     plugin.converter.add_attribute_function(_survivorship)
+    spec.components.security_scheme("bearer", {
+        "type": "http", "scheme": "bearer",
+        "description": "Required on /v1 routes only when the operator configures tokens "
+                       "(ANNUITY_TOKEN_SHA256); off by default."})
     for name, schema in [
         ("Life", s.LifeSchema), ("SurvivorshipAmounts", s.SurvivorshipAmountsSchema),
         ("Item", s.ItemSchema), ("FactorRequest", s.FactorRequestSchema),
@@ -87,13 +96,14 @@ def build_spec(max_items: int, version: str = "") -> dict:
     ]:
         spec.components.schema(name, schema=schema)
     spec.path("/v1/bases", operations={"get": {
-        "operationId": "listBases", "summary": "List the loaded bases.",
-        "responses": _ok("BasisList", "Every loaded basis version.")}})
+        "operationId": "listBases", "summary": "List the loaded bases.", "security": _AUTH,
+        "responses": _ok("BasisList", "Every loaded basis version.")
+        | _problem_responses("401")}})
     spec.path("/v1/bases/{ref}", parameters=[_ref_param()], operations={"get": {
-        "operationId": "getBasis", "summary": "One basis in full.",
-        "responses": _ok("BasisDetail", "The basis.") | _problem_responses("404")}})
+        "operationId": "getBasis", "summary": "One basis in full.", "security": _AUTH,
+        "responses": _ok("BasisDetail", "The basis.") | _problem_responses("401", "404")}})
     spec.path("/v1/bases/{ref}/life-table", parameters=[_ref_param()], operations={"get": {
-        "operationId": "getLifeTable",
+        "operationId": "getLifeTable", "security": _AUTH,
         "summary": "The basis' table as rows (age, q, p, l, d, curtate expectation) for one "
                    "life followed from from_age; with duration, a life selected duration "
                    "years before from_age.",
@@ -107,16 +117,16 @@ def build_spec(max_items: int, version: str = "") -> dict:
             {"name": "duration", "in": "query", "schema": {"type": "integer", "minimum": 0,
                                                            "maximum": 200}},
         ],
-        "responses": _ok("LifeTable", "The rows.") | _problem_responses("404", "422")}})
+        "responses": _ok("LifeTable", "The rows.") | _problem_responses("401", "404", "422")}})
     spec.path("/v1/annuity-factors", operations={"post": {
-        "operationId": "annuityFactors",
+        "operationId": "annuityFactors", "security": _AUTH,
         "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
         "requestBody": {"required": True, "content": {"application/json": {
             "schema": {"$ref": "#/components/schemas/FactorRequest"}}}},
         "responses": _ok("FactorResponse", "results[i] answers items[i].")
-        | _problem_responses("400", "404", "413", "415", "422")}})
+        | _problem_responses("400", "401", "404", "413", "415", "422")}})
     spec.path("/v1/cash-flow-schedules", operations={"post": {
-        "operationId": "cashFlowSchedules",
+        "operationId": "cashFlowSchedules", "security": _AUTH,
         "summary": "The expected payment schedule behind one factor, as JSON or as CSV "
                    "(Accept: text/csv; the audit block then travels in X- headers).",
         "requestBody": {"required": True, "content": {"application/json": {
@@ -124,7 +134,7 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "responses": _ok("ScheduleResponse", "One row per possible payment date (one per year "
                                              "of the window for continuous payments).",
                          {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "404", "413", "415", "422")}})
+        | _problem_responses("400", "401", "404", "413", "415", "422")}})
     spec.path("/livez", operations={"get": {
         "operationId": "livez", "summary": "Liveness: the process answers.",
         "responses": _ok("Health", "Alive.")}})
@@ -135,6 +145,12 @@ def build_spec(max_items: int, version: str = "") -> dict:
             "description": "Not ready: a required basis is missing or refused.",
             "content": {"application/json": {
                 "schema": {"$ref": "#/components/schemas/Health"}}}}}}})
+    spec.path("/metrics", operations={"get": {
+        "operationId": "metrics",
+        "summary": "Prometheus text format: requests and latency by route and status, "
+                   "factors computed, one info series per loaded basis with its digest.",
+        "responses": {"200": {"description": "The metrics.",
+                              "content": {"text/plain": {"schema": {"type": "string"}}}}}}})
     return spec.to_dict()
 
 

@@ -5,10 +5,11 @@ import io
 
 
 import numpy as np
-from flask import Blueprint, Response, current_app, jsonify, request
+from flask import Blueprint, Response, current_app, g, jsonify, request
 
 from service.api.audit import audit_block, use_basis
 from service.api.body import json_body, load
+from service.api.metrics import FACTORS
 from service.api.problems import ProblemError
 from service.api.schemas import (
     FactorRequestSchema,
@@ -172,6 +173,7 @@ def annuity_factors():
                                 f"{len(body['items'])}.", errors={"items": [
                                     f"At most {limit} items."]})
     data = load(_factor_request, body)
+    g.item_count = len(data["items"])
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
     items = _engine_items(basis, data["items"], "items.")
@@ -182,6 +184,7 @@ def annuity_factors():
     bad = np.flatnonzero(~np.isfinite(values))
     if bad.size:
         _finite(values, f"items.{int(bad[0])}")
+    FACTORS.labels(basis.ref, "factor").inc(len(items))
     results = [{"value": float(v), "method": method_of(item, valuation)}
                for v, item in zip(values.tolist(), items, strict=True)]
     return jsonify({"results": results, "audit": audit_block()})
@@ -198,6 +201,7 @@ def cash_flow_schedules():
         "text/csv"
     body = json_body()
     data = load(_schedule_request, body)
+    g.item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
     (item,) = _engine_items(basis, [data["item"]], "item.")
@@ -207,6 +211,7 @@ def cash_flow_schedules():
         raise ProblemError(422, "The item is impossible under this basis.", errors={
             "item." + path.partition(".")[2]: msgs for path, msgs in exc.errors.items()}) \
             from None
+    FACTORS.labels(basis.ref, "schedule").inc()
     amount = data["amount"]
     columns = {"time": sched.time, "payment": sched.payment * amount,
                "probability": sched.probability, "discount": sched.discount,

@@ -1,0 +1,64 @@
+"""Prometheus metrics, correct across gunicorn workers (multiprocess mode).
+
+When PROMETHEUS_MULTIPROC_DIR is set (deploy/gunicorn.conf.py sets it), every worker writes
+its samples there and /metrics aggregates them; otherwise the process registry is used.
+The metric objects are process-wide by nature of the Prometheus client, so they are created
+once here, not per app.
+"""
+
+import os
+
+from flask import Blueprint, Response, current_app
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    REGISTRY,
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    generate_latest,
+    multiprocess,
+)
+
+bp = Blueprint("metrics", __name__)
+
+REQUESTS = Counter("annuity_http_requests_total", "HTTP requests answered, by route and status.",
+                   ["route", "method", "status"])
+LATENCY = Histogram("annuity_http_request_duration_seconds",
+                    "Time to answer an HTTP request, by route and status.",
+                    ["route", "method", "status"],
+                    buckets=(0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5,
+                             5.0, 10.0))
+FACTORS = Counter("annuity_factors_computed_total",
+                  "Annuity factors and schedules computed, by basis.", ["basis", "kind"])
+BASIS_INFO = Gauge("annuity_basis_info", "One series per loaded basis, with its digest.",
+                   ["id", "version", "digest", "status", "default"], multiprocess_mode="max")
+BASES_REFUSED = Gauge("annuity_bases_refused", "Basis files refused at start-up.",
+                      multiprocess_mode="max")
+
+
+def publish_registry(registry) -> None:
+    """Record the loaded bases as info series (called once at start-up)."""
+    BASIS_INFO.clear()
+    for basis in registry.listing():
+        is_default = registry.defaults.get(basis.id) == basis.version
+        BASIS_INFO.labels(basis.id, basis.version, basis.digest, basis.status,
+                          str(is_default).lower()).set(1)
+    BASES_REFUSED.set(len(registry.refused))
+
+
+def observe(route: str, method: str, status: int, seconds: float) -> None:
+    REQUESTS.labels(route, method, str(status)).inc()
+    LATENCY.labels(route, method, str(status)).observe(seconds)
+
+
+@bp.get("/metrics")
+def metrics():
+    """Prometheus text format."""
+    if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):
+        registry = CollectorRegistry()
+        multiprocess.MultiProcessCollector(registry)
+    else:
+        registry = REGISTRY
+        publish_registry(current_app.extensions["registry"])
+    return Response(generate_latest(registry), mimetype=CONTENT_TYPE_LATEST)
