@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 PORT ?= 8000
 STAMP := $(VENV)/.installed
 
-.PHONY: install run test lint fuzz bench openapi check-tables clean
+.PHONY: install run test lint fuzz faults bench openapi check-tables clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -23,6 +23,12 @@ run: install
 
 test: install
 	$(BIN)/python -m pytest -q
+
+fuzz: install
+	$(BIN)/python -m tests.live.fuzz --max-examples 300
+
+faults: install
+	$(BIN)/python -m tests.live.faults
 
 lint: install
 	$(BIN)/ruff check service tests bench

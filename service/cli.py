@@ -61,6 +61,17 @@ def _write_openapi(args) -> int:
     return 0
 
 
+def _hash_token(args) -> int:
+    import hashlib
+
+    token = sys.stdin.readline().strip()
+    if not token:
+        print("error: give the token on standard input", file=sys.stderr)
+        return 1
+    print(hashlib.sha256(token.encode("utf-8")).hexdigest())
+    return 0
+
+
 def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="annuity-service", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
@@ -75,6 +86,9 @@ def main(argv=None) -> int:
     write.add_argument("--output", default=str(OPENAPI_FILE))
     write.add_argument("--check", action="store_true", help="fail if the file is out of date")
     write.set_defaults(func=_write_openapi)
+    hasher = sub.add_parser("hash-token", help="print the SHA-256 of a bearer token read from "
+                                              "standard input, for ANNUITY_TOKEN_SHA256")
+    hasher.set_defaults(func=_hash_token)
     args = parser.parse_args(argv)
     return args.func(args)
 
