@@ -134,7 +134,8 @@ def _check_item(item: Item) -> dict[str, list[str]]:
         add("term", "must be a positive number of years, or null for life")
     if not (math.isfinite(p.escalation) and p.escalation > -1):
         add("escalation", "must be a finite rate above -1")
-    if p.term is not None and math.isfinite(p.guarantee) and p.guarantee > p.term * (1 + 1e-12):
+    if ("term" not in errors and p.term is not None and math.isfinite(p.guarantee)
+            and p.guarantee > p.term * (1 + 1e-12)):
         add("guarantee", f"a guarantee of {p.guarantee:g} years is longer than the term "
                          f"of {p.term:g} years")
     if discrete and "frequency" not in errors:
@@ -197,10 +198,14 @@ class _Batch:
         has2 = self.second[own] >= 0
         s2 = np.maximum(self.second[own], 0)
         p2 = np.where(has2, lives.survival(s2, t), 0.0)
-        with np.errstate(invalid="ignore"):
-            d1 = np.where(p1 > 0, -lives.force(self.first[own], t) * p1, 0.0)
-            d2 = np.where(has2 & (p2 > 0), -lives.force(s2, t) * p2, 0.0)
-        dboth = d1 * p2 + p1 * d2
+        # Where the force is infinite (q = 1 under constant-force or Balducci) the point
+        # contributes no slope: Woolhouse's third term is dropped there.
+        mu1 = lives.force(self.first[own], t)
+        mu2 = lives.force(s2, t)
+        d1 = np.where((p1 > 0) & np.isfinite(mu1), -np.where(np.isfinite(mu1), mu1, 0) * p1, 0.0)
+        d2 = np.where(has2 & (p2 > 0) & np.isfinite(mu2),
+                      -np.where(np.isfinite(mu2), mu2, 0) * p2, 0.0)
+        dboth = np.where(has2, d1 * p2 + p1 * d2, 0.0)
         a = self.amounts[own]
         return a[:, 0] * dboth + a[:, 1] * (d1 - dboth) + a[:, 2] * (d2 - dboth)
 

@@ -70,6 +70,7 @@ class Lives:
     cum: np.ndarray  # (n, W + 1) survival from the anchor to each integer offset
     start: np.ndarray  # S(x) relative to the anchor, > 0
     assumption: str
+    q_prev: np.ndarray  # rate of the year before the anchor (NaN where there is none)
 
     def _locate(self, idx, t):
         s = self.frac[idx] + np.asarray(t, dtype=float)
@@ -88,16 +89,21 @@ class Lives:
     def force(self, idx, t):
         """Return the force of mortality of life ``idx`` at time ``t``.
 
-        At an integer age the left and right limits are averaged (common practice).
+        At an integer age the left and right limits are averaged (common practice); where one
+        of them is infinite or undefined (the table's first age, the year of selection) the
+        other is used.
         """
         idx = np.asarray(idx, dtype=np.intp)
         k, r = self._locate(idx, t)
         last = self.q.shape[1] - 1
         right = fraction_force(self.q[idx, np.minimum(k, last)], r, self.assumption)
-        left = fraction_force(self.q[idx, np.clip(k - 1, 0, last)], 1.0, self.assumption)
-        at_integer = (r == 0) & (k > 0)
-        with np.errstate(invalid="ignore"):
-            return np.where(at_integer, 0.5 * (left + right), right)
+        before = np.where(k > 0, self.q[idx, np.clip(k - 1, 0, last)], self.q_prev[idx])
+        left = np.where(np.isnan(before), np.inf,
+                        fraction_force(np.nan_to_num(before), 1.0, self.assumption))
+        # Where one limit is infinite (q = 1, or no year before) the finite one is taken.
+        both = np.isfinite(left) & np.isfinite(right)
+        mean = np.where(both, 0.5 * (left + right), np.where(np.isfinite(left), left, right))
+        return np.where(r == 0, mean, right)
 
     def year_rate(self, idx, k):
         """Return q for year ``k`` (integer offset from the anchor) of life ``idx``."""
@@ -142,18 +148,20 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
                                      f"{lo[pos]} to {hi[pos]}")
     anchor = np.where(np.isin(np.arange(n), list(problems)), lo, anchor)
     width = int(max((t.last_age for t in tables), default=0) - anchor.min() + 1) if n else 1
-    q = np.ones((n, width))
+    # Column 0 is the year before the life's integer age (for the force of mortality there);
+    # columns 1.. are the life's chain of rates from its integer age.
+    chain = np.full((n, width + 1), np.nan)
     for ti, table in enumerate(tables):
         members = np.flatnonzero(table_index == ti)
-        if members.size == 0:
-            continue
-        offsets = anchor[members, None] - table.first_age + np.arange(width)[None, :]
-        inside = offsets < len(table.q)
-        q[members] = np.where(inside, table.q[np.minimum(offsets, len(table.q) - 1)], 1.0)
-        period = table.select_period
-        if period:
-            _apply_select(table, q, members, anchor, durations, problems)
-    q = np.minimum(q * multipliers[:, None], 1.0)
+        if members.size:
+            chain[members] = _chain(table, anchor[members], durations[members], width,
+                                    members, problems)
+    # The multiplier applies to every rate, but a table that closes with q = 1 stays closed.
+    last = np.array([t.last_age for t in tables])[table_index]
+    ages_of = anchor[:, None] + np.arange(-1, width)[None, :]
+    chain = np.where(ages_of >= last[:, None], 1.0, np.minimum(chain * multipliers[:, None], 1.0))
+    q_prev = chain[:, 0]
+    q = chain[:, 1:]
     p = 1.0 - q
     cum = np.ones((n, width + 1))
     cum[:, 1:] = np.cumprod(p, axis=1)
@@ -165,20 +173,32 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
             problems[int(pos)] = ("age", "the life cannot be alive at this age under the "
                                          "adjusted table (survival from its integer age is 0)")
     start = np.where(start > 0, start, 1.0)
-    lives = Lives(anchor, frac, q, cum, start, assumption)
+    lives = Lives(anchor, frac, q, cum, start, assumption, q_prev)
     return lives, problems
 
 
-def _apply_select(table: MortalityTable, q, members, anchor, durations, problems):
+def _chain(table: MortalityTable, anchor, durations, width, members, problems):
+    """Rates for years -1, 0, ..., width-1 from each integer age (NaN before the table)."""
+    offsets = np.arange(-1, width)[None, :]
+    index = anchor[:, None] - table.first_age + offsets
+    rates = np.where(index < 0, np.nan,
+                     np.where(index < len(table.q), table.q[np.clip(index, 0, len(table.q) - 1)],
+                              1.0))
     period = table.select_period
-    dur = durations[members]
-    selected = np.isfinite(dur) & (dur < period)
-    for pos, d in zip(members[selected], dur[selected].astype(np.int64), strict=True):
-        sel_age = int(anchor[pos]) - int(d)
+    if not period:
+        return rates
+    selected = np.flatnonzero(np.isfinite(durations) & (durations < period))
+    for row in selected:
+        d = int(durations[row])
+        sel_age = int(anchor[row]) - d
         if not table.select_first_age <= sel_age <= table.select_last_age:
-            problems.setdefault(int(pos), (
+            problems.setdefault(int(members[row]), (
                 "duration", f"age at selection {sel_age} is outside the select table's ages "
                             f"{table.select_first_age} to {table.select_last_age}"))
             continue
-        row = table.select_q[sel_age - table.select_first_age]
-        q[pos, : period - d] = row[d:]
+        select_rates = table.select_q[sel_age - table.select_first_age]
+        years = d + offsets[0]  # duration in each year of the chain
+        in_select = (years >= 0) & (years < period)
+        rates[row, in_select] = select_rates[years[in_select]]
+        rates[row, years < 0] = np.nan  # before selection: no rate of this life's history
+    return rates

@@ -108,7 +108,8 @@ def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
     if not (np.isfinite(factors).all() and (factors >= 0).all()):
         raise TableError("select factors must be finite and non-negative")
     period = factors.size
-    n_sel = len(table.q) - period
-    idx = np.arange(n_sel)[:, None] + np.arange(period)[None, :]
-    select_q = np.minimum(table.q[idx] * factors[None, :], 1.0)
+    # Every age can be a selection age; beyond the last age the rate stays 1.
+    idx = np.arange(len(table.q))[:, None] + np.arange(period)[None, :]
+    ultimate = np.where(idx < len(table.q), table.q[np.minimum(idx, len(table.q) - 1)], 1.0)
+    select_q = np.where(idx < len(table.q) - 1, np.minimum(ultimate * factors[None, :], 1.0), 1.0)
     return MortalityTable(table.first_age, table.q, table.first_age, select_q)

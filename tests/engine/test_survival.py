@@ -1,0 +1,101 @@
+"""Survival and force of mortality of individual lives."""
+
+import math
+
+import numpy as np
+import pytest
+from numpy.testing import assert_allclose
+
+from service.engine.survival import build_lives, fraction_force, fraction_survival
+from tests.reference import models
+from tests.reference.direct import DirectLife
+
+ASSUMPTIONS = ("udd", "constant-force", "balducci")
+
+
+class TestFractionSurvival:
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    @pytest.mark.parametrize("q", (0.0, 0.01, 0.3, 0.999))
+    def test_ends_of_the_year(self, assumption, q):
+        assert_allclose(fraction_survival(q, 0.0, assumption), 1.0, rtol=0, atol=0)
+        assert_allclose(fraction_survival(q, 1.0, assumption), 1 - q, rtol=1e-14, atol=1e-15)
+
+    @pytest.mark.parametrize("r", (0.1, 0.5, 0.75))
+    def test_defining_properties(self, r):
+        q = 0.08
+        # common practice: under UDD r_q_y = r q_y
+        assert_allclose(1 - fraction_survival(q, r, "udd"), r * q, rtol=1e-14)
+        # common practice: under a constant force r_p_y = p_y^r
+        assert_allclose(fraction_survival(q, r, "constant-force"), (1 - q) ** r, rtol=1e-14)
+        # common practice: under Balducci's assumption (1-r)_q_(y+r) = (1 - r) q_y
+        rp = fraction_survival(q, r, "balducci")
+        assert_allclose(1 - (1 - q) / rp, (1 - r) * q, rtol=1e-13)
+
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    def test_force_is_minus_log_derivative(self, assumption):
+        q, r, h = 0.2, 0.4, 1e-6
+        slope = (math.log(fraction_survival(q, r + h, assumption))
+                 - math.log(fraction_survival(q, r - h, assumption))) / (2 * h)
+        assert_allclose(fraction_force(q, r, assumption), -slope, rtol=1e-8)
+
+
+class TestLivesSurvival:
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    def test_against_direct_chain(self, assumption):
+        table = models.susm_select()
+        cases = ((65.0, None, 1.0), (65.25, None, 1.0), (70.5, 0, 1.0), (70.5, 1, 2.0),
+                 (104.9, None, 1.3), (129.5, None, 1.0), (44.0, 5, 3.0))
+        lives, problems = build_lives([table], [0] * len(cases), [c[0] for c in cases],
+                                      [math.inf if c[1] is None else c[1] for c in cases],
+                                      [c[2] for c in cases], assumption)
+        assert not problems
+        times = np.linspace(0.0, 30.0, 241)
+        for n, (age, duration, multiplier) in enumerate(cases):
+            life = DirectLife.of(table.q, table.first_age, age, assumption,
+                                 select_factors=models.SELECT_FACTORS, duration=duration,
+                                 multiplier=multiplier)
+            expected = [life.survival(t) for t in times]
+            got = lives.survival(np.full(times.size, n), times)
+            assert_allclose(got, expected, rtol=1e-13, atol=1e-300)
+
+    def test_several_tables_in_one_batch(self):
+        tables = [models.susm(), models.ilt()]
+        lives, problems = build_lives(tables, [0, 1], [15.0 + 50, 15.0 + 50], [math.inf] * 2,
+                                      [1.0, 1.0], "udd")
+        assert not problems
+        for n, table in enumerate(tables):
+            life = DirectLife.of(table.q, table.first_age, 65.0, "udd")
+            assert_allclose(lives.survival(n, 12.5), life.survival(12.5), rtol=1e-13)
+
+    def test_problems_name_the_life(self):
+        lives, problems = build_lives([models.susm()], [0, 0, 0], [19.5, 65.0, 131.0],
+                                      [math.inf] * 3, [1.0] * 3, "udd")
+        assert sorted(problems) == [0, 2]
+        assert problems[0][0] == "age" and problems[2][0] == "age"
+
+
+class TestLivesForce:
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    @pytest.mark.parametrize("t", (0.3, 2.75, 10.5))
+    def test_inside_a_year(self, assumption, t):
+        table = models.susm()
+        lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.0], assumption)
+        q = table.q[math.floor(60 + t) - 20]
+        r = t - math.floor(t)
+        expected = {"udd": q / (1 - r * q), "constant-force": -math.log1p(-q),
+                    "balducci": q / (1 - (1 - r) * q)}[assumption]
+        assert_allclose(lives.force(0, t), expected, rtol=1e-13)
+
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    @pytest.mark.parametrize("t", (0.0, 1.0, 5.0))
+    def test_at_an_integer_age_limits_are_averaged(self, assumption, t):
+        table = models.susm()
+        age = 60 + int(t)
+        before, at = table.q[age - 1 - 20], table.q[age - 20]
+        # The engine's stated convention: left and right limits averaged at an integer age.
+        left = {"udd": before / (1 - before), "constant-force": -math.log1p(-before),
+                "balducci": before}[assumption]
+        right = {"udd": at, "constant-force": -math.log1p(-at),
+                 "balducci": at / (1 - at)}[assumption]
+        lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.0], assumption)
+        assert_allclose(lives.force(0, t), (left + right) / 2, rtol=1e-13)
