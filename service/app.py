@@ -35,6 +35,8 @@ def create_app(config: dict | None = None) -> Flask:
     if config:
         app.config.from_mapping(config)
     app.json.sort_keys = False
+    # A ref is never a path: '//' is not merged into '/' (and never redirected).
+    app.url_map.merge_slashes = False
     logging.basicConfig(level=logging.INFO, format="%(message)s")
 
     # Loaded once, read-only afterwards; an unreadable folder stops start-up.

@@ -4,6 +4,7 @@ import hashlib
 import hmac
 import json
 import logging
+import os
 import time
 
 from flask import Flask, g, request
@@ -65,5 +66,6 @@ def init_app(app: Flask) -> None:
             "basis": f"{basis['id']}@{basis['version']}" if basis else None,
             "basis_version": basis["version"] if basis else None,
             "items": g.get("item_count"),
+            "pid": os.getpid(),
         }, separators=(",", ":")))
         return response

@@ -3,7 +3,6 @@
 import csv
 import io
 
-
 import numpy as np
 from flask import Blueprint, Response, current_app, g, jsonify, request
 
@@ -81,9 +80,13 @@ def get_basis(ref: str):
         entry = {"sex": sex, "kind": "law" if "law" in spec else "file",
                  "first_age": spec["first_age"], "last_age": spec["last_age"],
                  "select_period": spec["select_period"], "source": spec["source"]}
-        for key in ("law", "parameters", "file", "select_factors"):
+        for key in ("law", "file"):
             if key in spec:
                 entry[key] = spec[key]
+        if "parameters" in spec:
+            entry["parameters"] = dict(spec["parameters"])
+        if "select_factors" in spec:
+            entry["select_factors"] = list(spec["select_factors"])
         mortality.append(entry)
     body = _summary(basis, reg.defaults) | {
         "purpose": basis.purpose,
@@ -115,11 +118,16 @@ def life_table(ref: str):
     if duration is not None and duration < table.select_period:
         default_from = table.select_first_age + duration
     from_age = query["from_age"] if query["from_age"] is not None else default_from
+    to_age = query["to_age"]
+    if to_age is not None and not from_age <= to_age <= table.last_age:
+        raise ProblemError(422, "The ages asked for lie outside the table.", errors={
+            "to_age": [f"Must lie between {from_age} and {table.last_age}."]})
     try:
-        cols = life_table_columns(table, from_age, to_age=query["to_age"], duration=duration)
+        cols = life_table_columns(table, from_age, to_age=to_age, duration=duration)
     except ValueError as exc:
+        field = "duration" if duration is not None and "selection" in str(exc) else "from_age"
         raise ProblemError(422, "The ages asked for lie outside the table.",
-                           errors={"from_age": [str(exc)]}) from None
+                           errors={field: [str(exc)]}) from None
     rows = [{"age": int(a), "q": float(q), "p": float(p), "l": float(lv), "d": float(d),
              "e": float(e)}
             for a, q, p, lv, d, e in zip(cols.age, cols.q, cols.p, cols.l, cols.d, cols.e,
@@ -128,7 +136,8 @@ def life_table(ref: str):
                     "radix": 100_000.0, "rows": rows, "audit": audit_block()})
 
 
-def _engine_items(basis, items, prefix: str):
+def _engine_items(basis, items, path_of):
+    """Turn loaded items into engine items; ``path_of(n)`` names item n in error paths."""
     out = []
     missing = {}
     for n, item in enumerate(items):
@@ -136,7 +145,7 @@ def _engine_items(basis, items, prefix: str):
         for k, life in enumerate(item["lives"]):
             index = basis.table_index(life["sex"])
             if index is None:
-                missing[f"{prefix}{n}.lives.{k}.sex"] = [
+                missing[f"{path_of(n)}.lives.{k}.sex"] = [
                     f"This basis is sex-distinct: give one of {', '.join(basis.sexes)}."]
                 index = 0
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
@@ -168,15 +177,16 @@ def annuity_factors():
     """One or many annuity factors under one basis."""
     body = json_body()
     limit = current_app.config["MAX_ITEMS"]
-    if isinstance(body, dict) and isinstance(body.get("items"), list) and len(body["items"]) > limit:
+    count = len(body["items"]) if isinstance(body, dict) and isinstance(
+        body.get("items"), list) else 0
+    if count > limit:
         raise ProblemError(413, f"A request may hold at most {limit} items; this one has "
-                                f"{len(body['items'])}.", errors={"items": [
-                                    f"At most {limit} items."]})
+                                f"{count}.", errors={"items": [f"At most {limit} items."]})
     data = load(_factor_request, body)
     g.item_count = len(data["items"])
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
-    items = _engine_items(basis, data["items"], "items.")
+    items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
     try:
         values = annuity_values(basis.tables, items, valuation)
     except ItemError as exc:
@@ -204,7 +214,7 @@ def cash_flow_schedules():
     g.item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
-    (item,) = _engine_items(basis, [data["item"]], "item.")
+    (item,) = _engine_items(basis, [data["item"]], lambda n: "item")
     try:
         sched = cash_flow_schedule(basis.tables, item, valuation)
     except ItemError as exc:

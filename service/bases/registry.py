@@ -9,9 +9,12 @@ import hashlib
 import json
 import logging
 import math
+import os
+import re
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import MappingProxyType
 
 import numpy as np
 import pandas as pd
@@ -54,7 +57,7 @@ class Basis:
     approximation: str
     sexes: tuple[str, ...]
     tables: tuple[MortalityTable, ...]
-    mortality: dict = field(repr=False)  # per sex: how the table was given, and its source
+    mortality: MappingProxyType = field(repr=False)  # per sex: how the table was given, source
     file: str = ""
 
     @property
@@ -82,14 +85,14 @@ class Refusal:
 class Registry:
     """Every loaded basis, by (id, version), and the default version of each id."""
 
-    bases: dict[tuple[str, str], Basis]
-    defaults: dict[str, str]
+    bases: MappingProxyType  # (id, version) -> Basis
+    defaults: MappingProxyType  # id -> version
     refused: tuple[Refusal, ...] = ()
 
     def resolve(self, ref: str) -> Basis:
         """Return the basis for ``ID`` (its default version) or ``ID@VERSION``."""
-        basis_id, _, version = ref.partition("@")
-        if not version:
+        basis_id, at, version = ref.partition("@")
+        if not at:
             version = self.defaults.get(basis_id, "")
         basis = self.bases.get((basis_id, version))
         if basis is None:
@@ -109,7 +112,7 @@ def load_registry(directory) -> Registry:
     root = Path(directory)
     if not root.is_dir():
         raise NotADirectoryError(f"tables folder {root} is not a readable directory")
-    files = sorted(root.rglob("*.toml"))
+    files = sorted(_basis_files(root))
     loaded: list[Basis] = []
     refused: list[Refusal] = []
     for path in files:
@@ -135,7 +138,27 @@ def load_registry(directory) -> Registry:
         refused.append(Refusal(basis.file, reason))
         log.warning("refused basis file %s: %s", basis.file, reason)
     defaults, _ = _defaults(bases.values())
-    return Registry(bases, defaults, tuple(refused))
+    return Registry(MappingProxyType(bases), MappingProxyType(defaults), tuple(refused))
+
+
+def _basis_files(root: Path):
+    """Every ``*.toml`` under ``root``; a folder that cannot be listed raises OSError."""
+
+    def fail(error: OSError):
+        raise OSError(error.errno, f"cannot read tables folder {error.filename}: "
+                                   f"{error.strerror}")
+
+    os.listdir(root)  # the top folder itself must be listable
+    for folder, _, names in os.walk(root, onerror=fail):
+        for name in names:
+            if name.endswith(".toml"):
+                yield Path(folder) / name
+
+
+def _version_key(version: str):
+    """Order versions naturally: 2026.9 before 2026.10."""
+    return [(0, int(part), "") if part.isdigit() else (1, 0, part)
+            for part in re.split(r"(\d+)", version) if part]
 
 
 def _defaults(bases):
@@ -155,7 +178,8 @@ def _defaults(bases):
             defaults[basis_id] = chosen[0].version
         else:
             # No version is marked: the latest non-retired one is the default.
-            live = sorted((b.version for b in versions if b.status != "retired"))
+            live = sorted((b.version for b in versions if b.status != "retired"),
+                          key=_version_key)
             if live:
                 defaults[basis_id] = live[-1]
     return defaults, conflicts
@@ -187,6 +211,9 @@ def load_basis(path: Path, name: str) -> Basis:
     version = _require(doc, "version", str, name)
     if not basis_id or "@" in basis_id or "/" in basis_id or not version or "@" in version:
         raise BasisFileError(f"{name}: id and version must be non-empty and free of '@' and '/'")
+    source = _require(doc, "source", str, name)
+    if not source.strip():
+        raise BasisFileError(f"{name}: 'source' must say where the basis comes from")
     status = _require(doc, "status", str, name)
     if status not in STATUSES:
         raise BasisFileError(f"{name}: status '{status}' is not one of {', '.join(STATUSES)}")
@@ -234,10 +261,11 @@ def load_basis(path: Path, name: str) -> Basis:
     return Basis(
         id=basis_id, version=version, title=str(doc.get("title", basis_id)), status=status,
         default=bool(doc.get("default", False)), purpose=str(doc.get("purpose", "")),
-        source=str(doc.get("source", "")), digest=digest, interest_rate=rate,
+        source=source, digest=digest, interest_rate=rate,
         fractional_age=fractional_age, approximation=approximation, sexes=sexes,
-        tables=tuple(tables), mortality={s: _describe(mortality[s], t)
-                                         for s, t in zip(sexes, tables, strict=True)},
+        tables=tuple(tables),
+        mortality=_frozen({s: _describe(mortality[s], t)
+                           for s, t in zip(sexes, tables, strict=True)}),
         file=name,
     )
 
@@ -253,6 +281,15 @@ def content_digest(doc: dict, data_digests: dict[str, str]) -> str:
     canonical = json.dumps({"basis": body, "data": data_digests}, sort_keys=True,
                            separators=(",", ":"), ensure_ascii=True, default=str)
     return "sha256:" + hashlib.sha256(canonical.encode("ascii")).hexdigest()
+
+
+def _frozen(value):
+    """Return a read-only copy: mappings become mapping proxies and lists tuples."""
+    if isinstance(value, dict):
+        return MappingProxyType({k: _frozen(v) for k, v in value.items()})
+    if isinstance(value, list | tuple):
+        return tuple(_frozen(v) for v in value)
+    return value
 
 
 def _describe(spec: dict, table: MortalityTable) -> dict:
