@@ -25,7 +25,7 @@ import time
 import uuid
 from pathlib import Path
 
-from tests.live.server import GUNICORN, ROOT, free_port, running_service, wait_ready
+from tests.live.server import GUNICORN, ROOT, free_port, running_service
 
 SINGLE = {"basis": "fernhollow-annuitants", "items": [
     {"lives": [{"age": 65.5, "sex": "female"}], "timing": "advance", "frequency": 12,
