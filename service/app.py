@@ -43,6 +43,8 @@ def create_app(config: dict | None = None) -> Flask:
     app.extensions["registry"] = load_registry(app.config["TABLES_DIR"])
 
     from service import api
+    from service.api.audit import installed_version
 
+    app.config.setdefault("SERVICE_VERSION", installed_version())
     api.init_app(app)
     return app

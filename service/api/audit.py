@@ -10,7 +10,8 @@ from flask import current_app, g, request
 _REQUEST_ID = re.compile(r"^[A-Za-z0-9._:\-]{1,128}$")
 
 
-def _service_version() -> str:
+def installed_version() -> str:
+    """Return the installed package's version (read once, at start-up)."""
     try:
         return metadata.version("annuity-factor-service")
     except metadata.PackageNotFoundError:
@@ -38,7 +39,8 @@ def audit_block() -> dict:
     return {
         "basis": g.get("audit_basis"),
         "interest": g.get("audit_interest"),
-        "service": {"name": current_app.config["SERVICE_NAME"], "version": _service_version()},
+        "service": {"name": current_app.config["SERVICE_NAME"],
+                    "version": current_app.config["SERVICE_VERSION"]},
         "request_id": request_id(),
         "computed_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
     }

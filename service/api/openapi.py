@@ -158,20 +158,24 @@ def spec_json(max_items: int, version: str = "") -> str:
     return json.dumps(build_spec(max_items, version), indent=2, sort_keys=True) + "\n"
 
 
+def _app_spec() -> dict:
+    """The contract for this app's configuration, built once per app."""
+    if "openapi" not in current_app.extensions:
+        current_app.extensions["openapi"] = build_spec(current_app.config["MAX_ITEMS"],
+                                                       current_app.config["SERVICE_VERSION"])
+    return current_app.extensions["openapi"]
+
+
 @bp.get("/openapi.json")
 def openapi_json():
     """The contract."""
-    from service.api.audit import _service_version
-
-    return jsonify(build_spec(current_app.config["MAX_ITEMS"], _service_version()))
+    return jsonify(_app_spec())
 
 
 @bp.get("/docs")
 def docs():
     """A browsable page of the contract."""
-    from service.api.audit import _service_version
-
-    spec = build_spec(current_app.config["MAX_ITEMS"], _service_version())
+    spec = _app_spec()
     rows = []
     for path, ops in spec["paths"].items():
         for method, op in ops.items():

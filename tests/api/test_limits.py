@@ -1,0 +1,91 @@
+"""Hostile bodies and refs: each gets a 4xx problem, and refs never reach the file system."""
+
+import json
+import sys
+
+import pytest
+
+from service import create_app
+from tests.api.problem import assert_problem
+
+URL = "/v1/annuity-factors"
+VALID = {"basis": "standard-ultimate", "items": [{"lives": [{"age": 65}], "timing": "advance"}]}
+
+# File opens seen while ``_watching`` is set (an audit hook cannot be removed, so it is gated).
+_opened: list[str] = []
+_watching = [False]
+
+
+def _audit(event, args):
+    if _watching[0] and event == "open":
+        _opened.append(str(args[0]))
+
+
+sys.addaudithook(_audit)
+
+
+def _post_text(client, text: str):
+    return client.post(URL, data=text.encode(), content_type="application/json")
+
+
+class TestHostileBodies:
+    def test_deeply_nested_json_is_a_400(self, client):
+        assert_problem(_post_text(client, "[" * 100_000 + "]" * 100_000), 400)
+
+    def test_deeply_nested_value_inside_a_valid_body_is_refused(self, client):
+        body = json.dumps(VALID).replace('"age": 65', '"age": ' + "[" * 50_000 + "]" * 50_000)
+        assert_problem(_post_text(client, body), 400)
+
+    def test_integer_with_thousands_of_digits_is_a_400(self, client):
+        body = json.dumps(VALID).replace('"age": 65', '"age": ' + "9" * 5000)
+        assert_problem(_post_text(client, body), 400)
+
+    @pytest.mark.parametrize("number", ("1e308", "-1e308", "1.7976931348623157e308"))
+    def test_huge_finite_numbers_are_out_of_range(self, client, number):
+        body = json.dumps(VALID).replace('"age": 65', f'"age": {number}')
+        assert_problem(_post_text(client, body), 422, "items.0.lives.0.age")
+
+    def test_huge_interest_rate_is_out_of_range(self, client):
+        assert_problem(client.post(URL, json=VALID | {"interest_rate": 1e308}), 422,
+                       "interest_rate")
+
+    def test_many_items_in_a_huge_body_are_413_before_parsing(self):
+        app = create_app({"TESTING": True, "MAX_CONTENT_LENGTH": 10_000})
+        body = json.dumps({"basis": "standard-ultimate", "items": [VALID["items"][0]] * 1000})
+        response = app.test_client().post(URL, data=body, content_type="application/json")
+        assert_problem(response, 413)
+
+    def test_schedule_body_with_wrong_media_type_is_415(self, client):
+        response = client.post("/v1/cash-flow-schedules", data="{}", content_type="text/csv")
+        assert_problem(response, 415)
+
+
+PATH_LIKE = ("..", "..%2F..%2Fetc%2Fpasswd", "%2e%2e%2f%2e%2e%2f", "%2Fetc%2Fpasswd",
+             "standard-ultimate@..%2F..%2Fx", "..%5C..%5Cwindows", "tables%2Fstandard-ultimate",
+             "%252e%252e%252f", "standard-ultimate-2026.1.toml")
+
+
+class TestPathLikeRefs:
+    @pytest.mark.parametrize("ref", PATH_LIKE)
+    @pytest.mark.parametrize("suffix", ("", "/life-table"))
+    def test_get_is_404_and_opens_no_file(self, client, ref, suffix):
+        _opened.clear()
+        _watching[0] = True
+        try:
+            response = client.get(f"/v1/bases/{ref}{suffix}")
+        finally:
+            _watching[0] = False
+        assert_problem(response, 404)
+        assert _opened == []
+
+    @pytest.mark.parametrize("ref", ("../tables", "/etc/passwd", "..\\..\\x",
+                                     "standard-ultimate@../../x", "%2e%2e%2f"))
+    def test_post_is_404_and_opens_no_file(self, client, ref):
+        _opened.clear()
+        _watching[0] = True
+        try:
+            response = client.post(URL, json=VALID | {"basis": ref})
+        finally:
+            _watching[0] = False
+        assert_problem(response, 404)
+        assert _opened == []
