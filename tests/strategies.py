@@ -98,3 +98,60 @@ def cases(draw, *, table_names=TABLE_NAMES, timing=None, whole_life=False,
     valuation = Valuation(draw(interest_rates()), draw(st.sampled_from(ASSUMPTIONS)),
                           draw(st.sampled_from(approximations)))
     return Case(table_name, Item((life,), pay), valuation)
+
+
+# ---- request bodies for the HTTP API ---------------------------------------------------------
+
+#: Shipped bases and the age range over which every generated life can be alive.
+API_BASES = {
+    "standard-ultimate": (20.0, 95.0, False),
+    "standard-select@2026.1": (22.0, 95.0, False),
+    "illustrative": (13.0, 95.0, False),
+    "fernhollow-annuitants": (41.0, 90.0, True),
+    "fernhollow-annuitants@2025.1": (40.0, 90.0, True),
+}
+
+
+@st.composite
+def api_lives(draw, low: float, high: float, sexed: bool) -> dict:
+    life = {"age": draw(st.integers(int(low * 100), int(high * 100)).map(lambda k: k / 100))}
+    if sexed:
+        life["sex"] = draw(st.sampled_from(("female", "male")))
+    if draw(st.booleans()):
+        life["mortality_multiplier"] = draw(st.floats(0.0, 2.0))
+    if draw(st.booleans()):
+        life["age_adjustment"] = draw(st.floats(-1.0, 3.0))
+    if draw(st.booleans()):
+        life["duration"] = draw(st.integers(0, 1))
+    return life
+
+
+@st.composite
+def api_items(draw, low: float, high: float, sexed: bool) -> dict:
+    timing = draw(st.sampled_from(("advance", "arrears", "continuous")))
+    m = 1 if timing == "continuous" else draw(st.sampled_from((1, 2, 4, 12, 52)))
+    term_steps = draw(st.one_of(st.none(), st.integers(1, 40 * m)))
+    item = {"lives": [draw(api_lives(low, high, sexed))
+                      for _ in range(draw(st.integers(1, 2)))],
+            "timing": timing, "frequency": m,
+            "term": None if term_steps is None else term_steps / m,
+            "deferral": draw(st.integers(0, 10 * m)) / m,
+            "guarantee": draw(st.integers(0, term_steps or 20 * m)) / m,
+            "escalation": draw(st.floats(-0.02, 0.08))}
+    if len(item["lives"]) == 2:
+        item["survivorship"] = draw(st.one_of(
+            st.sampled_from(("joint-life", "last-survivor", "reversionary")),
+            st.fixed_dictionaries({k: st.floats(0.0, 1.0)
+                                   for k in ("both", "first_only", "second_only")})))
+    return item
+
+
+@st.composite
+def factor_requests(draw) -> dict:
+    basis = draw(st.sampled_from(sorted(API_BASES)))
+    low, high, sexed = API_BASES[basis]
+    body = {"basis": basis,
+            "items": draw(st.lists(api_items(low, high, sexed), min_size=1, max_size=4))}
+    if draw(st.booleans()):
+        body["interest_rate"] = draw(st.floats(-0.02, 0.12))
+    return body
