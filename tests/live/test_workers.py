@@ -33,6 +33,8 @@ def test_same_request_same_bits_on_every_worker():
         with open(log_file.name, "wb") as log, running_service(workers=4, log=log) as (url, _):
             with ThreadPoolExecutor(max_workers=8) as pool:
                 answers = list(pool.map(lambda n: _post(url, f"same-{n}"), range(80)))
+            with urllib.request.urlopen(f"{url}/metrics", timeout=10) as response:
+                metrics = response.read().decode()
         pids = set()
         for line in Path(log_file.name).read_text().splitlines():
             if line.startswith("{") and '"same-' in line:
@@ -40,3 +42,11 @@ def test_same_request_same_bits_on_every_worker():
     values = {tuple(v) for _, v in answers}
     assert len(values) == 1, values
     assert len(pids) >= 2, "the requests should have been spread over several workers"
+    # The counts add up across the workers (Prometheus multiprocess mode).
+    samples = dict(line.rsplit(" ", 1) for line in metrics.splitlines()
+                   if line and not line.startswith("#"))
+    key = 'annuity_http_requests_total{method="POST",route="/v1/annuity-factors",status="200"}'
+    assert float(samples[key]) == 80
+    factors = 'annuity_factors_computed_total{basis="fernhollow-annuitants@2026.1",kind="factor"}'
+    assert float(samples[factors]) == 80 * len(BODY["items"])
+    assert sum(1 for k in samples if k.startswith("annuity_basis_info{")) == 5
