@@ -185,11 +185,14 @@ class _Batch:
         both = p1 * p2
         return both, p1 - both, p2 - both
 
-    def life_weight(self, own, t):
-        """Return the expected fraction of the full amount payable at ``t`` if not certain."""
-        both, one, two = self.state_probabilities(own, t)
+    def weight(self, own, both, one, two):
+        """Return the expected fraction of the full amount payable, given the states."""
         a = self.amounts[own]
         return a[:, 0] * both + a[:, 1] * one + a[:, 2] * two
+
+    def life_weight(self, own, t):
+        """Return the expected fraction of the full amount payable at ``t`` if not certain."""
+        return self.weight(own, *self.state_probabilities(own, t))
 
     def life_weight_slope(self, own, t):
         """Return d/dt of :meth:`life_weight`."""
@@ -206,8 +209,7 @@ class _Batch:
         d2 = np.where(has2 & (p2 > 0) & np.isfinite(mu2),
                       -np.where(np.isfinite(mu2), mu2, 0) * p2, 0.0)
         dboth = np.where(has2, d1 * p2 + p1 * d2, 0.0)
-        a = self.amounts[own]
-        return a[:, 0] * dboth + a[:, 1] * (d1 - dboth) + a[:, 2] * (d2 - dboth)
+        return self.weight(own, dboth, d1 - dboth, d2 - dboth)
 
 
 def _prepare(tables, items, valuation: Valuation, *, offset: int = 0) -> _Batch:
@@ -315,8 +317,7 @@ def _points(batch: _Batch, own, j, delta: float) -> PaymentPoints:
     t = batch.deferral[own] + (j + batch.arrears[own]) / m
     amount = np.exp((j // m) * batch.growth[own]) / m
     both, one, two = batch.state_probabilities(own, t)
-    a = batch.amounts[own]
-    life = a[:, 0] * both + a[:, 1] * one + a[:, 2] * two
+    life = batch.weight(own, both, one, two)
     certain = j < np.rint(batch.guarantee[own] * m)
     probability = np.where(certain, batch.certain_weight[own], life)
     return PaymentPoints(own, t, amount, probability, np.exp(-delta * t), both, one, two)
@@ -399,7 +400,7 @@ class Segments:
     length: np.ndarray
     year: np.ndarray  # year of the window, for escalation and schedules
     present_value: np.ndarray
-    expected_amount: np.ndarray
+    expected_amount: np.ndarray | None
 
 
 def _window_end(batch: _Batch, own):
@@ -413,7 +414,10 @@ def _grid(owner, base, step_from, step_to):
     return o, base[o] + k
 
 
-def _segments(batch: _Batch, which: np.ndarray, delta: float) -> Segments:
+def _segments(batch: _Batch, which: np.ndarray, delta: float, *,
+              expected: bool = False) -> Segments:
+    """Cut the windows of ``which`` into segments and integrate each (``expected``: also
+    the undiscounted expected amount, for schedules)."""
     u = batch.deferral[which]
     end = _window_end(batch, which)
     local = np.arange(which.size)
@@ -440,9 +444,10 @@ def _segments(batch: _Batch, which: np.ndarray, delta: float) -> Segments:
     year = np.floor(mid - batch.deferral[own]).astype(np.int64)
     certain = mid < batch.deferral[own] + batch.guarantee[own]
     pv = _segment_integral(batch, own, t1, length, mid, certain, delta)
-    undiscounted = _segment_integral(batch, own, t1, length, mid, certain, 0.0)
     growth = np.exp(year * batch.growth[own])
-    return Segments(seg_owner, t1, length, year, growth * pv, growth * undiscounted)
+    undiscounted = (growth * _segment_integral(batch, own, t1, length, mid, certain, 0.0)
+                    if expected else None)
+    return Segments(seg_owner, t1, length, year, growth * pv, undiscounted)
 
 
 def _life_part(batch, life, t1, mid):
@@ -555,7 +560,7 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
         pts = _points(batch, own, j, delta)
         return Schedule(pts.time, pts.amount, pts.probability, pts.discount, pts.present_value,
                         pts.both, pts.first_only, pts.second_only)
-    seg = _segments(batch, which, delta)
+    seg = _segments(batch, which, delta, expected=True)
     years = int(seg.year.max()) + 1 if seg.year.size else 0
     pv = np.bincount(seg.year, weights=seg.present_value, minlength=years)
     expected = np.bincount(seg.year, weights=seg.expected_amount, minlength=years)
