@@ -207,11 +207,24 @@ class FactorResponseSchema(Schema):
 
 
 class ScheduleRowSchema(Schema):
-    time = fields.Float(required=True)
-    payment = fields.Float(required=True)
-    probability = fields.Float(required=True)
-    discount = fields.Float(required=True)
-    present_value = fields.Float(required=True)
+    class Meta:
+        description = (
+            "Discrete timings: one row per possible payment date. Continuous timing: one row "
+            "per year of the window, where time is the start of the year, payment the amount "
+            "payable over it if every payment is made, probability the expected amount paid "
+            "divided by payment, discount the year's exact present value divided by its "
+            "expected amount, and present_value that exact present value; the state "
+            "probabilities are those at the start of the year.")
+
+    time = fields.Float(required=True, metadata={"description": "Years from now."})
+    payment = fields.Float(required=True, metadata={
+        "description": "The instalment (times the amount) if it is made; escalation included."})
+    probability = fields.Float(required=True, metadata={
+        "description": "Probability that it is made; for two lives the expected fraction "
+                       "of the full instalment paid, from the survivorship amounts."})
+    discount = fields.Float(required=True, metadata={"description": "v^time."})
+    present_value = fields.Float(required=True, metadata={
+        "description": "payment x probability x discount."})
     both_alive = fields.Float(metadata={"description": "Two lives: probability both alive."})
     first_only = fields.Float(metadata={"description": "Two lives: only the first alive."})
     second_only = fields.Float(metadata={"description": "Two lives: only the second alive."})
