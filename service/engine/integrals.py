@@ -148,23 +148,29 @@ def balducci_pair(q1, r1, q2, r2, delta, length):
     # Distance of the nearest pole from h = 0 in units of the interval: b / q.
     with np.errstate(divide="ignore"):
         reach = np.minimum(np.where(q1 > 0, b1 / q1, np.inf), np.where(q2 > 0, b2 / q2, np.inf))
-    total = np.zeros(q1.shape)
-    # Geometric pieces: [0, c], [c, 2c'], ... grow with the distance to the pole.
-    lo = np.zeros(q1.shape)
-    # The pieces grow by a quarter each step, so 400 steps cover a pole 1e-30 away.
+    shape = q1.shape
+    flat = [np.ravel(a) for a in (q1, p1, b1, q2, p2, b2, delta, length, reach)]
+    q1f, p1f, b1f, q2f, p2f, b2f, df, lf, rf = flat
+    total = np.zeros(lf.size)
+    lo = np.zeros(lf.size)
+    active = np.flatnonzero(np.ravel(alive))
+    # Geometric pieces: each is a quarter of its distance to the nearest pole, so they grow
+    # by a quarter each step and 400 steps cover a pole 1e-30 away. Only unfinished
+    # segments are evaluated in each step.
     for _ in range(400):
-        remaining = length - lo
-        if not np.any(alive & (remaining > 0)):
+        if active.size == 0:
             break
-        piece = np.minimum(remaining, np.maximum((reach + lo) / 4.0, 1e-300))
-        h = lo[..., None] + piece[..., None] * _GL_X
+        remaining = lf[active] - lo[active]
+        piece = np.minimum(remaining, np.maximum((rf[active] + lo[active]) / 4.0, 1e-300))
+        h = lo[active, None] + piece[:, None] * _GL_X
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            f = (np.exp(-delta[..., None] * h)
-                 * (p1[..., None] / (b1[..., None] + q1[..., None] * h))
-                 * (p2[..., None] / (b2[..., None] + q2[..., None] * h)))
-            add = piece * np.sum(f * _GL_W, axis=-1)
-        total = total + np.where(alive & (remaining > 0), add, 0.0)
-        lo = lo + piece
+            f = (np.exp(-df[active, None] * h)
+                 * (p1f[active, None] / (b1f[active, None] + q1f[active, None] * h))
+                 * (p2f[active, None] / (b2f[active, None] + q2f[active, None] * h)))
+        total[active] += piece * np.sum(f * _GL_W, axis=-1)
+        lo[active] += piece
+        active = active[piece < remaining]
+    total = total.reshape(shape)
     return np.where(alive, total, 0.0)
 
 
