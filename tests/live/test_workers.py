@@ -1,4 +1,4 @@
-"""Every gunicorn worker gives bit-identical numbers for the same request."""
+"""Every gunicorn worker gives bit-identical numbers, and metrics add up across workers."""
 
 import json
 import tempfile
@@ -6,9 +6,13 @@ import urllib.request
 from concurrent.futures import ThreadPoolExecutor
 from pathlib import Path
 
-from tests.live.server import running_service
+import pytest
+from hypothesis import given, settings
 
-BODY = {"basis": "fernhollow-annuitants", "items": [
+from tests.live.server import running_service
+from tests.strategies import factor_requests
+
+FIXED = {"basis": "fernhollow-annuitants", "items": [
     {"lives": [{"age": 65.25, "sex": "female"}], "timing": "advance", "frequency": 12,
      "guarantee": 5, "escalation": 0.025},
     {"lives": [{"age": 70.5, "sex": "male"}, {"age": 67, "sex": "female"}],
@@ -18,35 +22,64 @@ BODY = {"basis": "fernhollow-annuitants", "items": [
 ]}
 
 
-def _post(url: str, request_id: str) -> tuple[str, list[str]]:
+@pytest.fixture(scope="module")
+def live():
+    with tempfile.TemporaryDirectory() as folder:
+        log_path = Path(folder) / "service.log"
+        with open(log_path, "wb") as log, running_service(workers=4, log=log) as (url, _):
+            yield url, log_path
+
+
+def _post(url: str, body: dict, request_id: str) -> tuple[int, str]:
     request = urllib.request.Request(
-        f"{url}/v1/annuity-factors", data=json.dumps(BODY).encode(), method="POST",
+        f"{url}/v1/annuity-factors", data=json.dumps(body).encode(), method="POST",
         headers={"Content-Type": "application/json", "X-Request-ID": request_id})
-    with urllib.request.urlopen(request, timeout=30) as response:
-        results = json.loads(response.read())["results"]
-    # repr keeps every bit of the double.
-    return request_id, [repr(r["value"]) for r in results]
+    try:
+        with urllib.request.urlopen(request, timeout=30) as response:
+            results = json.loads(response.read())["results"]
+            # repr keeps every bit of the double.
+            return response.status, "|".join(repr(r["value"]) for r in results)
+    except urllib.error.HTTPError as exc:
+        return exc.code, ""
 
 
-def test_same_request_same_bits_on_every_worker():
-    with tempfile.NamedTemporaryFile(suffix=".log") as log_file:
-        with open(log_file.name, "wb") as log, running_service(workers=4, log=log) as (url, _):
-            with ThreadPoolExecutor(max_workers=8) as pool:
-                answers = list(pool.map(lambda n: _post(url, f"same-{n}"), range(80)))
-            with urllib.request.urlopen(f"{url}/metrics", timeout=10) as response:
-                metrics = response.read().decode()
-        pids = set()
-        for line in Path(log_file.name).read_text().splitlines():
-            if line.startswith("{") and '"same-' in line:
-                pids.add(json.loads(line)["pid"])
-    values = {tuple(v) for _, v in answers}
-    assert len(values) == 1, values
-    assert len(pids) >= 2, "the requests should have been spread over several workers"
-    # The counts add up across the workers (Prometheus multiprocess mode).
+def _served_by(log_path: Path, prefix: str) -> set[int]:
+    pids = set()
+    for line in log_path.read_text().splitlines():
+        if line.startswith("{") and f'"request_id":"{prefix}' in line:
+            pids.add(json.loads(line)["pid"])
+    return pids
+
+
+def _same_everywhere(url: str, body: dict, prefix: str, copies: int) -> set:
+    with ThreadPoolExecutor(max_workers=8) as pool:
+        answers = list(pool.map(lambda n: _post(url, body, f"{prefix}-{n}"), range(copies)))
+    return set(answers)
+
+
+def test_fixed_request_same_bits_on_every_worker_and_metrics_add_up(live):
+    url, log_path = live
+    answers = _same_everywhere(url, FIXED, "fixed", 80)
+    assert len(answers) == 1 and next(iter(answers))[0] == 200, answers
+    assert len(_served_by(log_path, "fixed")) >= 2, "requests should reach several workers"
+    with urllib.request.urlopen(f"{url}/metrics", timeout=10) as response:
+        metrics = response.read().decode()
     samples = dict(line.rsplit(" ", 1) for line in metrics.splitlines()
                    if line and not line.startswith("#"))
-    key = 'annuity_http_requests_total{method="POST",route="/v1/annuity-factors",status="200"}'
-    assert float(samples[key]) == 80
     factors = 'annuity_factors_computed_total{basis="fernhollow-annuitants@2026.1",kind="factor"}'
-    assert float(samples[factors]) == 80 * len(BODY["items"])
+    assert float(samples[factors]) == 80 * len(FIXED["items"])
     assert sum(1 for k in samples if k.startswith("annuity_basis_info{")) == 5
+    # Every request of this module so far was a 200 POST to this route.
+    key = 'annuity_http_requests_total{method="POST",route="/v1/annuity-factors",status="200"}'
+    assert float(samples[key]) >= 80
+
+
+_counter = iter(range(10**9))
+
+
+@settings(max_examples=20, deadline=None)
+@given(body=factor_requests())
+def test_random_requests_same_bits_on_every_worker(live, body):
+    url, _ = live
+    answers = _same_everywhere(url, body, f"random{next(_counter)}", 8)
+    assert len(answers) == 1, answers
