@@ -94,7 +94,14 @@ def method_of(item: Item, valuation: Valuation, *, exact: bool = False) -> dict:
     """Describe how ``item`` is valued, for the audit trail."""
     p = item.payments
     if p.timing == "continuous":
-        evaluation = "integral of payment rate x discount x survival, closed form per year of age"
+        if valuation.fractional_age == "balducci":
+            # Balducci's curve has a pole; see integrals.balducci and integrals.balducci_pair.
+            evaluation = ("integral of payment rate x discount x survival per year of age: "
+                          "exponential-integral closed form, or Gauss-Legendre exact to "
+                          "rounding where the pole is far")
+        else:
+            evaluation = ("integral of payment rate x discount x survival, closed form per "
+                          "year of age")
         approximation = "exact"
     else:
         evaluation = "sum of payment x discount factor x probability of payment"
