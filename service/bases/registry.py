@@ -6,6 +6,7 @@ Each refused file is logged with its reason; the others still load.
 """
 
 import hashlib
+import io
 import json
 import logging
 import math
@@ -255,6 +256,9 @@ def load_basis(path: Path, name: str) -> Basis:
 
     digest = content_digest(doc, data_digests)
     recorded = doc.get("digest")
+    if recorded is None and status != "demo":
+        raise BasisFileError(f"{name}: an {status} basis must record its digest; add "
+                             f'digest = "{digest}" after checking the content')
     if recorded is not None and recorded != digest:
         raise BasisFileError(f"{name}: recorded digest {recorded} does not match the content "
                              f"({digest}); the basis or its data changed")
@@ -342,7 +346,9 @@ def _csv_table(folder: Path, spec: dict, where: str):
     digest = hashlib.sha256(normalised).hexdigest()
     label = f"{where} {rel}"
     try:
-        frame = pd.read_csv(path, dtype=str, keep_default_na=False, comment="#")
+        # Parse the very bytes that were hashed.
+        frame = pd.read_csv(io.BytesIO(normalised), dtype=str, keep_default_na=False,
+                            comment="#")
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
         raise BasisFileError(f"{label}: not a readable CSV ({exc})") from exc
     columns = list(frame.columns)

@@ -190,6 +190,30 @@ def test_digest_not_matching_the_content_is_refused(folder, caplog):
     assert "digest" in reason
 
 
+@pytest.mark.parametrize("status", ("approved", "retired"))
+def test_approved_or_retired_basis_without_a_recorded_digest_is_refused(folder, caplog, status):
+    # Without a recorded digest a changed table could pass for the old version.
+    write(folder, "bad.toml", basis_text("fernhollow-bad", "2026.1", law_mortality(),
+                                         status=status))
+    reason = assert_refused_beside_sound(folder, caplog, "bad.toml", "bad.toml", "digest")
+    assert status in reason
+
+
+def test_approved_basis_with_its_digest_recorded_loads(folder):
+    text = basis_text("fernhollow-ok", "2026.1", law_mortality(), status="demo")
+    write(folder, "ok.toml", text)
+    digest = load_registry(folder).resolve("fernhollow-ok").digest
+    write(folder, "ok.toml", basis_text("fernhollow-ok", "2026.1", law_mortality(),
+                                        status="approved", digest=digest))
+    # The status is part of the content, so the demo digest no longer matches.
+    registry = load_registry(folder)
+    assert [r.file for r in registry.refused] == ["ok.toml"]
+    fixed = registry.refused[0].reason.split("(")[-1].split(")")[0]
+    write(folder, "ok.toml", basis_text("fernhollow-ok", "2026.1", law_mortality(),
+                                        status="approved", digest=fixed))
+    assert load_registry(folder).resolve("fernhollow-ok").status == "approved"
+
+
 def test_table_not_closing_with_q_one_is_refused(folder, caplog):
     rates = dict(RATES) | {70: 0.5}
     write(folder, "data/bad.csv", csv_text(rates))
