@@ -18,6 +18,9 @@ def create_app(config: dict | None = None) -> Flask:
     app.config.from_mapping(
         TABLES_DIR=str(DEFAULT_TABLES),
         MAX_ITEMS=10_000,
+        # Payment dates (and continuous segments) one request may evaluate: about five seconds
+        # of one core (bench/), well inside gunicorn's 60 s timeout.
+        MAX_EVALUATION_POINTS=40_000_000,
         MAX_CONTENT_LENGTH=4 * 1024 * 1024,
         REQUIRED_BASES=(),
         SERVICE_NAME="annuity-factor-service",

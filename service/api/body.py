@@ -37,6 +37,9 @@ def json_body():
     """Return the parsed JSON body, or raise a 4xx problem saying what is wrong with it."""
     if request.mimetype != "application/json":
         raise ProblemError(415, "Send the body as application/json.")
+    charset = request.mimetype_params.get("charset", "utf-8").lower()
+    if charset not in ("utf-8", "utf8"):
+        raise ProblemError(415, f"Send the body as UTF-8 JSON, not {charset}.")
     raw = request.get_data(cache=False)  # enforces MAX_CONTENT_LENGTH (413) before parsing
     try:
         text = raw.decode("utf-8")

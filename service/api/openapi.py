@@ -29,7 +29,8 @@ DESCRIPTION = (
 _ERRORS = {
     "400": "Malformed JSON, a body that is not UTF-8, duplicate keys, or NaN/Infinity literals.",
     "404": "No loaded basis answers to the reference.",
-    "413": "Body or batch too large.",
+    "413": "Body or batch too large, or the batch needs more payment dates than one request "
+           "may evaluate.",
     "415": "The body is not application/json.",
     "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
     "401": "Bearer-token authentication is configured and no valid token was sent.",

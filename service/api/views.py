@@ -25,7 +25,7 @@ from service.engine.annuity import (
     cash_flow_schedule,
     method_of,
 )
-from service.engine.errors import ItemError
+from service.engine.errors import ItemError, WorkLimitError
 from service.engine.lifetable import life_table_columns
 
 bp = Blueprint("api", __name__)
@@ -187,10 +187,15 @@ def annuity_factors():
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
     items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
+    limit = current_app.config["MAX_EVALUATION_POINTS"]
     try:
-        values = annuity_values(basis.tables, items, valuation)
+        values = annuity_values(basis.tables, items, valuation, max_work=limit)
     except ItemError as exc:
         raise _item_problem(exc, "items.") from None
+    except WorkLimitError as exc:
+        raise ProblemError(413, f"Valuing this batch needs {exc.work} payment dates; one "
+                                f"request may evaluate at most {exc.limit}. Split the batch.",
+                           title="Batch too large to value") from None
     bad = np.flatnonzero(~np.isfinite(values))
     if bad.size:
         _finite(values, f"items.{int(bad[0])}")
@@ -232,8 +237,8 @@ def cash_flow_schedules():
                     "second_only": sched.second_only}
     for name, values in columns.items():
         _finite(values, f"rows.{name}")
-    total = float(np.sum(sched.present_value)) * amount
     factor = float(np.sum(sched.present_value))
+    total = factor * amount
     method = method_of(item, valuation, exact=True)
     names = list(columns)
     lists = [columns[n].tolist() for n in names]
@@ -256,6 +261,7 @@ def _csv_response(names, lists, total, factor, amount, method):
         "X-Basis-Id": audit["basis"]["id"],
         "X-Basis-Version": audit["basis"]["version"],
         "X-Basis-Digest": audit["basis"]["digest"],
+        "X-Interest-Kind": audit["interest"]["kind"],
         "X-Interest-Rate": repr(audit["interest"]["rate"]),
         "X-Interest-Source": audit["interest"]["source"],
         "X-Method-Evaluation": method["evaluation"],

@@ -22,7 +22,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.engine import integrals
-from service.engine.errors import ItemError
+from service.engine.errors import ItemError, WorkLimitError
+from service.engine.interest import annuity_certain
 from service.engine.survival import ASSUMPTIONS, Lives, build_lives
 
 TIMINGS = ("advance", "arrears", "continuous")
@@ -105,7 +106,10 @@ def method_of(item: Item, valuation: Valuation, *, exact: bool = False) -> dict:
         approximation = "exact"
     else:
         evaluation = "sum of payment x discount factor x probability of payment"
-        approximation = "exact" if exact or p.frequency == 1 else valuation.approximation
+        # Woolhouse applies only to whole life-contingent years of the window.
+        whole_years = p.term is None or math.floor(p.term + _EPS) > math.ceil(p.guarantee - _EPS)
+        woolhouse = not exact and p.frequency > 1 and whole_years
+        approximation = valuation.approximation if woolhouse else "exact"
     return {"evaluation": evaluation, "fractional_age": valuation.fractional_age,
             "approximation": approximation}
 
@@ -341,30 +345,72 @@ def _chunks(cost: np.ndarray):
             start = stop
 
 
+def _guaranteed(batch: _Batch):
+    """Return (payment count G, whole-or-part years of the guarantee) per item."""
+    count = np.rint(batch.guarantee * batch.m).astype(np.int64)
+    return count, -(-count // batch.m)
+
+
+def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
+    """Present value of the guaranteed payments, in closed form year by year.
+
+    Year k of the guarantee holds n_k payments of (1 + r)^k / m, certain once some life is
+    alive at the deferral u: its value is P (1 + r)^k v^(u + k) times the annuity-certain of
+    n_k / m years payable m-thly (in advance or in arrears).
+    """
+    count, years = _guaranteed(batch)
+    loc, k = _expand(np.arange(which.size), np.zeros(which.size, dtype=np.int64),
+                     years[which])
+    own = which[loc]
+    m = batch.m[own]
+    payments = np.minimum(m, count[own] - k * m)
+    year = annuity_certain(math.expm1(delta), payments / m, m=m, advance=~batch.arrears[own])
+    pv = (batch.certain_weight[own] * np.exp(k * batch.growth[own])
+          * np.exp(-delta * (batch.deferral[own] + k)) * year)
+    # (bincount of nothing is an integer array)
+    return np.bincount(loc, weights=pv, minlength=which.size).astype(float)
+
+
 def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximation: str):
-    values = np.zeros(which.size)
+    values = _guaranteed_values(batch, which, delta)
     count = _payment_count(batch)[which]
+    first = np.minimum(_guaranteed(batch)[0][which], count)  # the first life-contingent payment
     m = batch.m[which]
-    woolhouse = (approximation != "exact") & (m > 1)
-    # Whole years of the window [k0, k1) that are life-contingent go to Woolhouse's formula.
-    k0 = np.ceil(batch.guarantee[which] - _EPS).astype(np.int64)
-    whole_life_years = np.ceil(np.maximum(batch.horizon[which] - batch.deferral[which], 0))
-    k1 = np.where(np.isfinite(batch.term[which]),
-                  np.floor(np.where(np.isfinite(batch.term[which]), batch.term[which], 0) + _EPS),
-                  whole_life_years).astype(np.int64)
-    k1 = np.where(woolhouse, np.maximum(k1, k0), k0)
+    k0, k1 = _woolhouse_years(batch, which, approximation)
     local = np.arange(which.size)
-    for part in _chunks(count):
-        head_stop = np.minimum(k0[part] * m[part], count[part])
+    for part in _chunks(count - first):
+        head_stop = np.maximum(np.minimum(k0[part] * m[part], count[part]), first[part])
         tail_start = np.maximum(k1[part] * m[part], head_stop)
-        o1, j1 = _expand(local[part], np.zeros(part.size, dtype=np.int64), head_stop)
+        o1, j1 = _expand(local[part], first[part], head_stop)
         o2, j2 = _expand(local[part], tail_start, count[part])
         loc = np.concatenate([o1, o2])
         pts = _points(batch, which[loc], np.concatenate([j1, j2]), delta)
         values += np.bincount(loc, weights=pts.present_value, minlength=which.size)
-    if woolhouse.any():
+    if (k1 > k0).any():
         values += _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation)
     return values
+
+
+def _woolhouse_years(batch: _Batch, which: np.ndarray, approximation: str):
+    """Return [k0, k1): the whole life-contingent years of each window valued by Woolhouse.
+
+    Empty (k1 = k0) for exact summation and for annual payments; the guarantee and any part
+    year at either end are summed exactly.
+    """
+    m = batch.m[which]
+    term = batch.term[which]
+    k0 = np.ceil(batch.guarantee[which] - _EPS).astype(np.int64)
+    whole_life_years = np.ceil(np.maximum(batch.horizon[which] - batch.deferral[which], 0))
+    k1 = np.where(np.isfinite(term), np.floor(np.where(np.isfinite(term), term, 0) + _EPS),
+                  whole_life_years).astype(np.int64)
+    woolhouse = (approximation != "exact") & (m > 1)
+    return k0, np.where(woolhouse, np.maximum(k1, k0), k0)
+
+
+def _work(batch: _Batch) -> np.ndarray:
+    discrete = np.maximum(_payment_count(batch) - _guaranteed(batch)[0], 0)
+    span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
+    return np.where(batch.continuous, 3 * np.ceil(span + 2).astype(np.int64), discrete)
 
 
 def _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation):
@@ -403,8 +449,6 @@ class Segments:
     """Pieces of the continuous payment windows within which nothing changes its formula."""
 
     owner: np.ndarray
-    start: np.ndarray
-    length: np.ndarray
     year: np.ndarray  # year of the window, for escalation and schedules
     present_value: np.ndarray
     expected_amount: np.ndarray | None
@@ -454,7 +498,7 @@ def _segments(batch: _Batch, which: np.ndarray, delta: float, *,
     growth = np.exp(year * batch.growth[own])
     undiscounted = (growth * _segment_integral(batch, own, t1, length, mid, certain, 0.0)
                     if expected else None)
-    return Segments(seg_owner, t1, length, year, growth * pv, undiscounted)
+    return Segments(seg_owner, year, growth * pv, undiscounted)
 
 
 def _life_part(batch, life, t1, mid):
@@ -499,8 +543,7 @@ def _pair(assumption, q1, r1, q2, r2, delta, length):
 
 def _continuous_values(batch: _Batch, which: np.ndarray, delta: float):
     values = np.zeros(which.size)
-    cost = 3 * np.ceil(np.maximum(_window_end(batch, which) - batch.deferral[which], 0) + 2)
-    for part in _chunks(cost.astype(np.int64)):
+    for part in _chunks(_work(batch)[which]):
         seg = _segments(batch, which[part], delta)
         values[part] += np.bincount(seg.owner, weights=seg.present_value, minlength=part.size)
     return values
@@ -510,7 +553,8 @@ def _continuous_values(batch: _Batch, which: np.ndarray, delta: float):
 # Entry points
 
 
-def annuity_values(tables, items, valuation: Valuation) -> np.ndarray:
+def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None = None
+                   ) -> np.ndarray:
     """Return the present value of 1 p.a. for each item, as a float array.
 
     Parameters
@@ -519,12 +563,21 @@ def annuity_values(tables, items, valuation: Valuation) -> np.ndarray:
     items : sequence of Item
     valuation : Valuation (interest, fractional-age assumption, m-thly approximation)
 
+    max_work : optional bound on the payment dates and segments evaluated (the work is
+        linear in it); beyond it nothing is computed.
+
     Raises
     ------
     ItemError
         With paths such as ``"3.lives.0.age"`` for items impossible under the tables.
+    WorkLimitError
+        When the batch needs more than ``max_work`` evaluation points.
     """
     batch = _prepare(tables, items, valuation)
+    if max_work is not None:
+        work = int(_work(batch).sum())
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
     values = np.zeros(len(items))
     delta = valuation.delta
     discrete = np.flatnonzero(~batch.continuous)

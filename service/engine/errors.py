@@ -19,3 +19,12 @@ class ItemError(EngineError):
 
 class TableError(EngineError):
     """A mortality table is not usable (bad rates, wrong shape, unknown law)."""
+
+
+class WorkLimitError(EngineError):
+    """A batch would need more evaluation points than the caller allows."""
+
+    def __init__(self, work: int, limit: int):
+        self.work = work
+        self.limit = limit
+        super().__init__(f"{work} evaluation points needed, at most {limit} allowed")

@@ -38,6 +38,7 @@ def annuity_certain(i, n, *, m=1, advance=True):
     n = np.asarray(n, dtype=float)
     zero = i == 0
     safe_i = np.where(zero, 0.5, i)
-    denom = nominal_discount(safe_i, m) if advance else nominal_interest(safe_i, m)
+    # ``advance`` may be an array (one flag per annuity).
+    denom = np.where(advance, nominal_discount(safe_i, m), nominal_interest(safe_i, m))
     value = -np.expm1(-n * np.log1p(safe_i)) / denom
     return np.where(zero, n, value)

@@ -140,10 +140,11 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     multipliers = np.asarray(multipliers, dtype=float)
     n = ages.size
     problems: dict[int, tuple[str, str]] = {}
-    anchor = np.floor(ages).astype(np.int64)
+    # An age within _SNAP of a whole age is that age (64.02 - 0.02 is 63.99999999999999).
+    anchor = np.floor(ages + _SNAP).astype(np.int64)
     lo = np.array([t.first_age for t in tables])[table_index]
     hi = np.array([t.last_age for t in tables])[table_index]
-    for pos in np.flatnonzero(~((ages >= lo) & (ages <= hi))):
+    for pos in np.flatnonzero(~((ages >= lo - _SNAP) & (ages <= hi + _SNAP))):
         problems[int(pos)] = ("age", f"age {ages[pos]:g} is outside the table's ages "
                                      f"{lo[pos]} to {hi[pos]}")
     anchor = np.where(np.isin(np.arange(n), list(problems)), lo, anchor)
@@ -165,7 +166,7 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     p = 1.0 - q
     cum = np.ones((n, width + 1))
     cum[:, 1:] = np.cumprod(p, axis=1)
-    frac = ages - anchor
+    frac = np.maximum(ages - anchor, 0.0)
     frac = np.where(np.isin(np.arange(n), list(problems)), 0.0, frac)
     start = fraction_survival(q[:, 0], frac, assumption)
     for pos in np.flatnonzero(start <= 0):

@@ -89,3 +89,33 @@ class TestPathLikeRefs:
             _watching[0] = False
         assert_problem(response, 404)
         assert _opened == []
+
+
+class TestWorkLimit:
+    def test_batch_needing_too_many_payment_dates_is_413_before_valuing(self):
+        app = create_app({"TESTING": True, "MAX_EVALUATION_POINTS": 100_000})
+        # 20 young lives paid daily for life: about 20 x 110 x 365 = 800,000 dates.
+        body = {"basis": "standard-ultimate", "items": [
+            {"lives": [{"age": 20}], "timing": "advance", "frequency": 365}] * 20}
+        problem = assert_problem(app.test_client().post(URL, json=body), 413)
+        assert "Split the batch" in problem["detail"]
+
+    def test_guaranteed_payments_cost_no_dates(self):
+        # The guaranteed part is valued in closed form, year by year: a long daily guarantee
+        # is cheap, and equals the sum of its payments.
+        app = create_app({"TESTING": True, "MAX_EVALUATION_POINTS": 50_000})
+        item = {"lives": [{"age": 60}], "timing": "advance", "frequency": 365, "term": 100,
+                "guarantee": 100}
+        factor = app.test_client().post(URL, json={"basis": "standard-ultimate",
+                                                   "items": [item]})
+        assert factor.status_code == 200, factor.get_json()
+        rows = app.test_client().post("/v1/cash-flow-schedules", json={
+            "basis": "standard-ultimate", "item": item}).get_json()
+        assert len(rows["rows"]) == 36_500
+        value = factor.get_json()["results"][0]["value"]
+        assert abs(rows["totals"]["present_value"] / value - 1) < 1e-12
+
+    def test_charset_other_than_utf8_is_415(self, client):
+        response = client.post(URL, data=json.dumps(VALID).encode("latin-1"),
+                               content_type="application/json; charset=latin-1")
+        assert_problem(response, 415)

@@ -99,3 +99,19 @@ class TestLivesForce:
                  "balducci": at / (1 - at)}[assumption]
         lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.0], assumption)
         assert_allclose(lives.force(0, t), (left + right) / 2, rtol=1e-13)
+
+
+class TestAgesNearAWholeAge:
+    def test_rounding_just_below_a_whole_age_keeps_the_select_year(self):
+        # 64.02 - 0.02 is 63.99999999999999 in floating point: still a life aged 64, selected
+        # now (common practice: an age is not moved by the last bit of its representation).
+        from service.engine.annuity import Item, Life, Valuation, annuity_values
+        from service.engine.tables import table_from_law
+
+        table = table_from_law("makeham", {"A": 0.00022, "B": 2.7e-6, "c": 1.124}, 20,
+                               select_factors=(0.81, 0.9))
+        val = Valuation(0.05)
+        exact = annuity_values([table], [Item((Life(64.0, duration=0),))], val)
+        nudged = annuity_values([table], [Item((Life(64.02, duration=0,
+                                                    age_adjustment=-0.02),))], val)
+        assert abs(nudged[0] / exact[0] - 1) < 1e-12
