@@ -15,7 +15,7 @@ _SERIES_BELOW = 0.5
 _SERIES_TERMS = 24
 
 
-def _phi(n: int, x):
+def phi(n: int, x):
     """Return phi_n(x) = integral_0^1 u^n e^(-x u) du, for n = 0, 1, 2."""
     x = np.asarray(x, dtype=float)
     small = np.abs(x) < _SERIES_BELOW
@@ -43,7 +43,7 @@ def _phi(n: int, x):
 def moment(n: int, delta, length):
     """Return integral_0^D h^n e^(-delta h) dh for n = 0, 1, 2."""
     length = np.asarray(length, dtype=float)
-    return length ** (n + 1) * _phi(n, np.multiply(delta, length))
+    return length ** (n + 1) * phi(n, np.multiply(delta, length))
 
 
 def udd(q, r, delta, length):

@@ -6,6 +6,8 @@ All functions take the effective annual rate ``i`` (``i > -1``) and use
 
 import numpy as np
 
+from service.engine.integrals import phi
+
 
 def force_of_interest(i):
     """Return delta = ln(1 + i)."""
@@ -32,13 +34,11 @@ def annuity_certain(i, n, *, m=1, advance=True):
 
     Notes
     -----
-    a-due^(m)_n = (1 - v^n) / d^(m) and a^(m)_n = (1 - v^n) / i^(m); at i = 0 both are n.
+    a-due^(m)_n = (1 - v^n) / d^(m) and a^(m)_n = v^(1/m) a-due^(m)_n. With
+    delta = ln(1 + i) and phi(x) = (1 - e^-x) / x this is n phi(n delta) / phi(delta / m),
+    which keeps full precision as i goes to 0 (where it is n). ``advance`` may be an array.
     """
-    i = np.asarray(i, dtype=float)
+    delta = np.log1p(np.asarray(i, dtype=float))
     n = np.asarray(n, dtype=float)
-    zero = i == 0
-    safe_i = np.where(zero, 0.5, i)
-    # ``advance`` may be an array (one flag per annuity).
-    denom = np.where(advance, nominal_discount(safe_i, m), nominal_interest(safe_i, m))
-    value = -np.expm1(-n * np.log1p(safe_i)) / denom
-    return np.where(zero, n, value)
+    value = n * phi(0, n * delta) / phi(0, delta / m)
+    return np.where(advance, value, value * np.exp(-delta / m))

@@ -189,17 +189,20 @@ def _chain(table: MortalityTable, anchor, durations, width, members, problems):
     if not period:
         return rates
     selected = np.flatnonzero(np.isfinite(durations) & (durations < period))
-    for row in selected:
-        d = int(durations[row])
-        sel_age = int(anchor[row]) - d
-        if not table.select_first_age <= sel_age <= table.select_last_age:
-            problems.setdefault(int(members[row]), (
-                "duration", f"age at selection {sel_age} is outside the select table's ages "
-                            f"{table.select_first_age} to {table.select_last_age}"))
-            continue
-        select_rates = table.select_q[sel_age - table.select_first_age]
-        years = d + offsets[0]  # duration in each year of the chain
-        in_select = (years >= 0) & (years < period)
-        rates[row, in_select] = select_rates[years[in_select]]
-        rates[row, years < 0] = np.nan  # before selection: no rate of this life's history
+    d = durations[selected].astype(np.int64)
+    sel_age = anchor[selected] - d
+    known = (sel_age >= table.select_first_age) & (sel_age <= table.select_last_age)
+    for row, age in zip(selected[~known], sel_age[~known], strict=True):
+        problems.setdefault(int(members[row]), (
+            "duration", f"age at selection {age} is outside the select table's ages "
+                        f"{table.select_first_age} to {table.select_last_age}"))
+    selected, d, sel_age = selected[known], d[known], sel_age[known]
+    years = d[:, None] + offsets  # duration in each year of each chain
+    in_select = (years >= 0) & (years < period)
+    rows, cols = np.nonzero(in_select)
+    rates[selected[rows], cols] = table.select_q[sel_age[rows] - table.select_first_age,
+                                                 years[rows, cols]]
+    # Before selection there is no rate of this life's own history.
+    before_rows, before_cols = np.nonzero(years < 0)
+    rates[selected[before_rows], before_cols] = np.nan
     return rates
