@@ -187,6 +187,7 @@ class _Batch:
     amounts: np.ndarray  # (n, 3)
     horizon: np.ndarray  # time after which every life is dead for certain
     certain_weight: np.ndarray  # amount x P(some life alive at the deferral)
+    guaranteed: np.ndarray  # number of guaranteed payments, g x m (discrete items)
 
     def state_probabilities(self, own, t):
         """Return (both, first_only, second_only) probabilities at times ``t``."""
@@ -214,27 +215,30 @@ class _Batch:
         p2 = np.where(has2, lives.survival(s2, t), 0.0)
         # Where the force is infinite (q = 1 under constant-force or Balducci) the point
         # contributes no slope: Woolhouse's third term is dropped there.
-        mu1 = lives.force(self.first[own], t)
-        mu2 = lives.force(s2, t)
-        d1 = np.where((p1 > 0) & np.isfinite(mu1), -np.where(np.isfinite(mu1), mu1, 0) * p1, 0.0)
-        d2 = np.where(has2 & (p2 > 0) & np.isfinite(mu2),
-                      -np.where(np.isfinite(mu2), mu2, 0) * p2, 0.0)
+        d1 = _survival_slope(p1, lives.force(self.first[own], t))
+        d2 = np.where(has2, _survival_slope(p2, lives.force(s2, t)), 0.0)
         dboth = np.where(has2, d1 * p2 + p1 * d2, 0.0)
         return self.weight(own, dboth, d1 - dboth, d2 - dboth)
 
 
-def _prepare(tables, items, valuation: Valuation, *, offset: int = 0) -> _Batch:
+def _survival_slope(p, mu):
+    """Return d/dt of survival p, -mu p; 0 where p is 0 or mu is infinite."""
+    finite = np.isfinite(mu) & (p > 0)
+    return np.where(finite, -np.where(finite, mu, 0.0) * p, 0.0)
+
+
+def _prepare(tables, items, valuation: Valuation) -> _Batch:
     errors: dict[str, list[str]] = {}
     for n, item in enumerate(items):
         for path, msgs in _check_item(item).items():
-            errors.setdefault(f"{n + offset}.{path}", []).extend(msgs)
+            errors.setdefault(f"{n}.{path}", []).extend(msgs)
     if errors:
         raise ItemError(errors)
 
     life_rows = [(n, k, life) for n, item in enumerate(items) for k, life in enumerate(item.lives)]
     bad_table = [(n, k) for n, k, life in life_rows if not 0 <= life.table < len(tables)]
     if bad_table:
-        raise ItemError({f"{n + offset}.lives.{k}.sex": ["no table for this life in the basis"]
+        raise ItemError({f"{n}.lives.{k}.sex": ["no table for this life in the basis"]
                          for n, k in bad_table})
     lives, problems = build_lives(
         tables,
@@ -245,7 +249,7 @@ def _prepare(tables, items, valuation: Valuation, *, offset: int = 0) -> _Batch:
         valuation.fractional_age,
     )
     if problems:
-        raise ItemError({f"{life_rows[pos][0] + offset}.lives.{life_rows[pos][1]}.{field}": [msg]
+        raise ItemError({f"{life_rows[pos][0]}.lives.{life_rows[pos][1]}.{field}": [msg]
                          for pos, (field, msg) in sorted(problems.items())})
 
     count = len(items)
@@ -273,6 +277,7 @@ def _prepare(tables, items, valuation: Valuation, *, offset: int = 0) -> _Batch:
         continuous=continuous, term=term, deferral=deferral, guarantee=guarantee,
         growth=np.log1p(np.array([p.escalation for p in pay], dtype=float)),
         amounts=amounts, horizon=horizon, certain_weight=np.zeros(count),
+        guaranteed=np.rint(guarantee * m).astype(np.int64),
     )
     own = np.arange(count)
     both, one, two = batch.state_probabilities(own, deferral)
@@ -289,11 +294,8 @@ def _payment_count(batch: _Batch) -> np.ndarray:
     m = batch.m
     by_life = np.floor(np.maximum(batch.horizon - batch.deferral, -1.0) * m + _EPS) + 1
     by_life = np.maximum(by_life, 0)
-    guaranteed = np.rint(batch.guarantee * m)
-    count = np.maximum(by_life, guaranteed)
-    by_term = np.where(np.isfinite(batch.term), np.rint(np.where(np.isfinite(batch.term),
-                                                                  batch.term, 0) * m), np.inf)
-    return np.minimum(count, by_term).astype(np.int64)
+    count = np.maximum(by_life, batch.guaranteed)
+    return np.minimum(count, np.rint(batch.term * m)).astype(np.int64)  # term: inf for life
 
 
 def _expand(owner, start, stop):
@@ -329,7 +331,7 @@ def _points(batch: _Batch, own, j, delta: float) -> PaymentPoints:
     amount = np.exp((j // m) * batch.growth[own]) / m
     both, one, two = batch.state_probabilities(own, t)
     life = batch.weight(own, both, one, two)
-    certain = j < np.rint(batch.guarantee[own] * m)
+    certain = j < batch.guaranteed[own]
     probability = np.where(certain, batch.certain_weight[own], life)
     return PaymentPoints(own, t, amount, probability, np.exp(-delta * t), both, one, two)
 
@@ -345,12 +347,6 @@ def _chunks(cost: np.ndarray):
             start = stop
 
 
-def _guaranteed(batch: _Batch):
-    """Return (payment count G, whole-or-part years of the guarantee) per item."""
-    count = np.rint(batch.guarantee * batch.m).astype(np.int64)
-    return count, -(-count // batch.m)
-
-
 def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
     """Present value of the guaranteed payments, in closed form year by year.
 
@@ -358,12 +354,12 @@ def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
     alive at the deferral u: its value is P (1 + r)^k v^(u + k) times the annuity-certain of
     n_k / m years payable m-thly (in advance or in arrears).
     """
-    count, years = _guaranteed(batch)
-    loc, k = _expand(np.arange(which.size), np.zeros(which.size, dtype=np.int64),
-                     years[which])
+    count = batch.guaranteed[which]
+    years = -(-count // batch.m[which])  # whole or part years of the guarantee
+    loc, k = _expand(np.arange(which.size), np.zeros(which.size, dtype=np.int64), years)
     own = which[loc]
     m = batch.m[own]
-    payments = np.minimum(m, count[own] - k * m)
+    payments = np.minimum(m, count[loc] - k * m)
     year = annuity_certain(math.expm1(delta), payments / m, m=m, advance=~batch.arrears[own])
     pv = (batch.certain_weight[own] * np.exp(k * batch.growth[own])
           * np.exp(-delta * (batch.deferral[own] + k)) * year)
@@ -374,7 +370,7 @@ def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
 def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximation: str):
     values = _guaranteed_values(batch, which, delta)
     count = _payment_count(batch)[which]
-    first = np.minimum(_guaranteed(batch)[0][which], count)  # the first life-contingent payment
+    first = np.minimum(batch.guaranteed[which], count)  # the first life-contingent payment
     m = batch.m[which]
     k0, k1 = _woolhouse_years(batch, which, approximation)
     local = np.arange(which.size)
@@ -408,7 +404,7 @@ def _woolhouse_years(batch: _Batch, which: np.ndarray, approximation: str):
 
 
 def _work(batch: _Batch) -> np.ndarray:
-    discrete = np.maximum(_payment_count(batch) - _guaranteed(batch)[0], 0)
+    discrete = np.maximum(_payment_count(batch) - batch.guaranteed, 0)
     span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
     return np.where(batch.continuous, 3 * np.ceil(span + 2).astype(np.int64), discrete)
 

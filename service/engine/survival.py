@@ -144,10 +144,12 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     anchor = np.floor(ages + _SNAP).astype(np.int64)
     lo = np.array([t.first_age for t in tables])[table_index]
     hi = np.array([t.last_age for t in tables])[table_index]
-    for pos in np.flatnonzero(~((ages >= lo - _SNAP) & (ages <= hi + _SNAP))):
+    outside = ~((ages >= lo - _SNAP) & (ages <= hi + _SNAP))
+    for pos in np.flatnonzero(outside):
         problems[int(pos)] = ("age", f"age {ages[pos]:g} is outside the table's ages "
                                      f"{lo[pos]} to {hi[pos]}")
-    anchor = np.where(np.isin(np.arange(n), list(problems)), lo, anchor)
+    # Lives outside their table get a placeholder chain from its first age.
+    anchor = np.where(outside, lo, anchor)
     width = int(max((t.last_age for t in tables), default=0) - anchor.min() + 1) if n else 1
     # Column 0 is the year before the life's integer age (for the force of mortality there);
     # columns 1.. are the life's chain of rates from its integer age.
@@ -167,7 +169,7 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     cum = np.ones((n, width + 1))
     cum[:, 1:] = np.cumprod(p, axis=1)
     frac = np.maximum(ages - anchor, 0.0)
-    frac = np.where(np.isin(np.arange(n), list(problems)), 0.0, frac)
+    frac = np.where(outside, 0.0, frac)
     start = fraction_survival(q[:, 0], frac, assumption)
     for pos in np.flatnonzero(start <= 0):
         if int(pos) not in problems:
