@@ -143,6 +143,7 @@ def api_items(draw, low: float, high: float, sexed: bool) -> dict:
             st.sampled_from(("joint-life", "last-survivor", "reversionary")),
             st.fixed_dictionaries({k: st.floats(0.0, 1.0)
                                    for k in ("both", "first_only", "second_only")})))
+        item["start_requires"] = draw(st.sampled_from(("any", "first", "both")))
     return item
 
 

@@ -28,7 +28,8 @@ def request_id() -> str:
 
 def use_basis(basis, rate_override: float | None = None) -> None:
     """Record which basis and interest this request used, for its audit block."""
-    g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest}
+    g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
+                     "status": basis.status}
     if rate_override is None:
         g.audit_interest = {"kind": "flat", "rate": basis.interest_rate, "source": "basis"}
     else:

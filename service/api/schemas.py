@@ -7,11 +7,12 @@ from marshmallow import (
     Schema,
     ValidationError,
     fields,
+    post_load,
     validate,
     validates_schema,
 )
 
-from service.engine.annuity import MAX_FREQUENCY, TIMINGS
+from service.engine.annuity import MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS
 
 #: Named survivorship patterns: amounts while (both alive, only first alive, only second alive).
 SURVIVORSHIP_SHORTCUTS = {
@@ -21,6 +22,8 @@ SURVIVORSHIP_SHORTCUTS = {
 }
 SEX_VALUES = ("female", "male")
 MAX_YEARS = 200.0
+#: Periods that may be given in years or in whole months.
+_MONTHS = ("term", "deferral", "guarantee")
 
 
 class StrictFloat(fields.Float):
@@ -48,22 +51,34 @@ class _Strict(Schema):
 
 
 class LifeSchema(_Strict):
-    age = StrictFloat(required=True, validate=validate.Range(0, 200),
-                      metadata={"description": "Exact age in years (real).", "example": 65.25})
+    age = StrictFloat(required=True, validate=validate.Range(0, 200), metadata={
+        "description": "Exact age in years, a real number: 65.25 is 65 years and 3 months. "
+                       "The life's integer age is its floor (an age within 1e-9 of a whole "
+                       "age is that age). After age_adjustment it must lie between the "
+                       "table's first and last ages.",
+        "example": 65.25})
     sex = fields.String(validate=validate.OneOf(SEX_VALUES), load_default=None,
                         metadata={"description": "Required where the basis is sex-distinct; "
-                                                 "ignored by a unisex basis."})
+                                                 "ignored by a unisex basis (with a warning)."})
     duration = fields.Integer(strict=True, allow_none=True, load_default=None,
-                              validate=validate.Range(0, 200),
-                              metadata={"description": "Whole years since selection for a "
-                                                       "select table; omitted or null means "
-                                                       "ultimate."})
+                              validate=validate.Range(0, 200), metadata={
+                                  "description": (
+                                      "Whole years since selection for a select table, counted "
+                                      "from the life's integer age: a life aged 65.5 with "
+                                      "duration 0 was selected at 65. The age at selection "
+                                      "must lie within the select table's ages (422 "
+                                      "otherwise). Omitted or null means ultimate; ignored "
+                                      "(with a warning) by a basis without select rates.")})
     age_adjustment = StrictFloat(load_default=0.0, validate=validate.Range(-50, 50),
                                  metadata={"description": "Years added to the age (an age "
                                                           "rating); may be negative."})
     mortality_multiplier = StrictFloat(load_default=1.0, validate=validate.Range(0, 100),
-                                       metadata={"description": "Every q is multiplied by this, "
-                                                                "then capped at 1."})
+                                       metadata={"description": (
+                                           "Every q is multiplied by this, then capped at 1. "
+                                           "The table's last age keeps q = 1 under any "
+                                           "multiplier (no one outlives the table), so 0 pays "
+                                           "to the end of the table's last year. Above 10 a "
+                                           "warning asks whether a percentage was meant.")})
 
 
 class SurvivorshipAmountsSchema(_Strict):
@@ -95,7 +110,7 @@ SURVIVORSHIP_DOC = {
         "while both live; 'last-survivor' = (1, 1, 1), paid until the second death; "
         "'reversionary' = (0, 0, 1), paid to the second life after the first dies. A "
         "joint-and-two-thirds-survivor pension is {\"both\": 1, \"first_only\": 1, "
-        "\"second_only\": 0.6667}. Two lives only; default 'last-survivor'."),
+        "\"second_only\": 0.6667}. Required for two lives, refused for one."),
     "oneOf": [
         {"type": "string", "enum": list(SURVIVORSHIP_SHORTCUTS)},
         {"$ref": "#/components/schemas/SurvivorshipAmounts"},
@@ -117,28 +132,69 @@ class ItemSchema(_Strict):
     term = StrictFloat(allow_none=True, load_default=None,
                        validate=validate.Range(0, MAX_YEARS, min_inclusive=False),
                        metadata={"description": "Years of the payment window after the "
-                                                "deferral; null means for life."})
+                                                "deferral; null means for life. For discrete "
+                                                "timings a whole number of payment periods."})
     deferral = StrictFloat(load_default=0.0, validate=validate.Range(0, MAX_YEARS),
-                           metadata={"description": "Years from now until the window opens."})
+                           metadata={"description": "Years from now until the window opens; "
+                                                    "for discrete timings a whole number of "
+                                                    "payment periods."})
     guarantee = StrictFloat(load_default=0.0, validate=validate.Range(0, MAX_YEARS),
                             metadata={"description": "Years from the start of the window "
-                                                     "paid whether or not the lives survive."})
+                                                     "paid whether or not the lives survive "
+                                                     "(provided start_requires is met)."})
+    term_months = fields.Integer(strict=True, validate=validate.Range(1, 12 * int(MAX_YEARS)),
+                                 metadata={"description": "The term in whole months, instead "
+                                                          "of term."})
+    deferral_months = fields.Integer(strict=True, validate=validate.Range(0, 12 * int(MAX_YEARS)),
+                                     metadata={"description": "The deferral in whole months, "
+                                                              "instead of deferral."})
+    guarantee_months = fields.Integer(strict=True,
+                                      validate=validate.Range(0, 12 * int(MAX_YEARS)),
+                                      metadata={"description": "The guarantee in whole months, "
+                                                               "instead of guarantee."})
     escalation = StrictFloat(load_default=0.0, validate=validate.Range(-0.5, 1.0),
                              metadata={"description": "Compound annual rate of increase."})
     survivorship = SurvivorshipField(load_default=None, metadata=SURVIVORSHIP_DOC)
+    start_requires = fields.String(
+        load_default="any", validate=validate.OneOf(START_REQUIREMENTS), metadata={
+            "description": (
+                "Who must be alive at the end of the deferral for payments, and the "
+                "guarantee, to start: 'any' life (the default), the 'first' life (a deferred "
+                "member whose spouse's pension is payable only if the member reaches "
+                "retirement), or 'both'. One life: all three mean that life.")})
 
-    @validates_schema
-    def _consistent(self, data, **kwargs):
+    @validates_schema(pass_original=True)
+    def _consistent(self, data, original, **kwargs):
         errors = {}
-        term, guarantee = data.get("term"), data.get("guarantee", 0.0)
+        given = original if isinstance(original, dict) else {}
+        for name in _MONTHS:
+            if name in given and f"{name}_months" in given:
+                errors[f"{name}_months"] = [f"Give {name} or {name}_months, not both."]
+        years = {name: data[f"{name}_months"] / 12 if f"{name}_months" in data else data.get(name)
+                 for name in _MONTHS}
+        term, guarantee = years["term"], years["guarantee"] or 0.0
         if term is not None and guarantee > term:
             errors["guarantee"] = [f"A guarantee of {guarantee:g} years is longer than the "
                                    f"term of {term:g} years."]
         lives = data.get("lives") or []
         if data.get("survivorship") is not None and len(lives) != 2:
             errors["survivorship"] = ["Survivorship applies to two lives; this item has one."]
+        if data.get("survivorship") is None and len(lives) == 2:
+            errors["survivorship"] = [
+                "Two lives need survivorship: 'joint-life', 'last-survivor', 'reversionary' "
+                "or the amounts payable while both, only the first and only the second are "
+                "alive (for example {\"both\": 1, \"first_only\": 1, \"second_only\": 0.5})."]
         if errors:
             raise ValidationError(errors)
+
+    @post_load
+    def _years(self, data, **kwargs):
+        """Turn whole months into years, so that only years travel on."""
+        for name in _MONTHS:
+            months = data.pop(f"{name}_months", None)
+            if months is not None:
+                data[name] = months / 12
+        return data
 
 
 class FactorRequestSchema(_Strict):
@@ -169,6 +225,8 @@ class BasisRefSchema(Schema):
     id = fields.String(required=True)
     version = fields.String(required=True)
     digest = fields.String(required=True)
+    status = fields.String(required=True, validate=validate.OneOf(["approved", "demo",
+                                                                   "retired"]))
 
 
 class InterestSchema(Schema):
@@ -193,7 +251,21 @@ class AuditSchema(Schema):
 class MethodSchema(Schema):
     evaluation = fields.String(required=True)
     fractional_age = fields.String(required=True)
-    approximation = fields.String(required=True)
+    approximation = fields.String(required=True, metadata={
+        "description": "exact, or the Woolhouse form that valued some year of this item."})
+    force_of_mortality = fields.String(metadata={
+        "description": "Three-term Woolhouse only: how the force of mortality was estimated."})
+
+
+class WarningSchema(Schema):
+    path = fields.String(required=True, metadata={"description": "The input concerned."})
+    message = fields.String(required=True)
+
+
+WARNINGS_DOC = {"description": (
+    "Inputs the basis ignores, values that look like a percentage given as a number, and a "
+    "demo or retired basis. Warnings never change a number. At most 100 are listed; a last "
+    "entry says how many more there were.")}
 
 
 class FactorResultSchema(Schema):
@@ -203,6 +275,7 @@ class FactorResultSchema(Schema):
 
 class FactorResponseSchema(Schema):
     results = fields.List(fields.Nested(FactorResultSchema), required=True)
+    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
 
 
@@ -226,8 +299,12 @@ class ScheduleRowSchema(Schema):
     present_value = fields.Float(required=True, metadata={
         "description": "payment x probability x discount."})
     both_alive = fields.Float(metadata={"description": "Two lives: probability both alive."})
-    first_only = fields.Float(metadata={"description": "Two lives: only the first alive."})
-    second_only = fields.Float(metadata={"description": "Two lives: only the second alive."})
+    first_only = fields.Float(metadata={
+        "description": "Two lives: probability only the first is alive (and start_requires "
+                       "was met at the end of the deferral)."})
+    second_only = fields.Float(metadata={
+        "description": "Two lives: probability only the second is alive (and start_requires "
+                       "was met at the end of the deferral)."})
 
 
 class ScheduleTotalsSchema(Schema):
@@ -240,6 +317,7 @@ class ScheduleResponseSchema(Schema):
     rows = fields.List(fields.Nested(ScheduleRowSchema), required=True)
     totals = fields.Nested(ScheduleTotalsSchema, required=True)
     method = fields.Nested(MethodSchema, required=True)
+    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
 
 
@@ -306,7 +384,11 @@ class LifeTableSchema(Schema):
     basis = fields.String(required=True)
     sex = fields.String(required=True)
     duration = fields.Integer(allow_none=True, required=True)
-    radix = fields.Float(required=True)
+    radix = fields.Float(required=True, metadata={"description": "l at radix_age."})
+    radix_age = fields.Integer(required=True, metadata={
+        "description": "The table's first age for the ultimate table, as published tables "
+                       "print l; for a select life (duration given), its age at selection. "
+                       "from_age and to_age only choose the rows shown."})
     rows = fields.List(fields.Nested(LifeTableRowSchema), required=True)
     audit = fields.Nested(AuditSchema, required=True)
 

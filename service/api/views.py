@@ -15,17 +15,17 @@ from service.api.schemas import (
     LifeTableQuerySchema,
     ScheduleRequestSchema,
 )
+from service.api.warnings import request_warnings
 from service.bases import UnknownBasisError
 from service.engine.annuity import (
     Item,
     Life,
     Payments,
     Valuation,
-    annuity_values,
     cash_flow_schedule,
-    method_of,
+    value_annuities,
 )
-from service.engine.errors import ItemError, WorkLimitError
+from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.lifetable import life_table_columns
 
 bp = Blueprint("api", __name__)
@@ -118,22 +118,18 @@ def life_table(ref: str):
     if duration is not None and duration < table.select_period:
         default_from = table.select_first_age + duration
     from_age = query["from_age"] if query["from_age"] is not None else default_from
-    to_age = query["to_age"]
-    if to_age is not None and not from_age <= to_age <= table.last_age:
-        raise ProblemError(422, "The ages asked for lie outside the table.", errors={
-            "to_age": [f"Must lie between {from_age} and {table.last_age}."]})
     try:
-        cols = life_table_columns(table, from_age, to_age=to_age, duration=duration)
-    except ValueError as exc:
-        field = "duration" if duration is not None and "selection" in str(exc) else "from_age"
+        cols = life_table_columns(table, from_age, to_age=query["to_age"], duration=duration)
+    except FieldError as exc:
         raise ProblemError(422, "The ages asked for lie outside the table.",
-                           errors={field: [str(exc)]}) from None
+                           errors={exc.field: [exc.message]}) from None
     rows = [{"age": int(a), "q": float(q), "p": float(p), "l": float(lv), "d": float(d),
              "e": float(e)}
             for a, q, p, lv, d, e in zip(cols.age, cols.q, cols.p, cols.l, cols.d, cols.e,
                                          strict=True)]
     return jsonify({"basis": basis.ref, "sex": basis.sexes[index], "duration": duration,
-                    "radix": 100_000.0, "rows": rows, "audit": audit_block()})
+                    "radix": cols.radix, "radix_age": cols.radix_age, "rows": rows,
+                    "audit": audit_block()})
 
 
 def _engine_items(basis, items, path_of):
@@ -154,8 +150,8 @@ def _engine_items(basis, items, path_of):
         payments = Payments(timing=item["timing"], frequency=item["frequency"],
                             term=item["term"], deferral=item["deferral"],
                             guarantee=item["guarantee"], escalation=item["escalation"])
-        survivorship = item["survivorship"] or (1.0, 1.0, 1.0)
-        out.append(Item(tuple(lives), payments, survivorship))
+        survivorship = item["survivorship"] or (1.0, 1.0, 1.0)  # (one life: it is paid)
+        out.append(Item(tuple(lives), payments, survivorship, item["start_requires"]))
     if missing:
         raise ProblemError(422, "The request has invalid fields.", errors=missing)
     return out
@@ -188,21 +184,24 @@ def annuity_factors():
     valuation = _valuation(basis, data["interest_rate"])
     items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
     limit = current_app.config["MAX_EVALUATION_POINTS"]
+    warnings = request_warnings(basis, data, [(f"items.{n}", item)
+                                              for n, item in enumerate(data["items"])])
     try:
-        values = annuity_values(basis.tables, items, valuation, max_work=limit)
+        valued = value_annuities(basis.tables, items, valuation, max_work=limit)
     except ItemError as exc:
         raise _item_problem(exc, "items.") from None
     except WorkLimitError as exc:
         raise ProblemError(413, f"Valuing this batch needs {exc.work} payment dates; one "
                                 f"request may evaluate at most {exc.limit}. Split the batch.",
                            title="Batch too large to value") from None
-    bad = np.flatnonzero(~np.isfinite(values))
+    bad = np.flatnonzero(~np.isfinite(valued.value))
     if bad.size:
-        _finite(values, f"items.{int(bad[0])}")
+        _finite(valued.value, f"items.{int(bad[0])}")
     FACTORS.labels(basis.ref, "factor").inc(len(items))
-    results = [{"value": float(v), "method": method_of(item, valuation)}
-               for v, item in zip(values.tolist(), items, strict=True)]
-    return jsonify({"results": results, "audit": audit_block()})
+    results = [{"value": v, "method": valued.methods[code]}
+               for v, code in zip(valued.value.tolist(), valued.method_code.tolist(),
+                                  strict=True)]
+    return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
 
 
 _CSV_COLUMNS = ("time", "payment", "probability", "discount", "present_value")
@@ -220,6 +219,7 @@ def cash_flow_schedules():
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data["interest_rate"])
     (item,) = _engine_items(basis, [data["item"]], lambda n: "item")
+    warnings = request_warnings(basis, data, [("item", data["item"])])
     try:
         sched = cash_flow_schedule(basis.tables, item, valuation)
     except ItemError as exc:
@@ -239,18 +239,18 @@ def cash_flow_schedules():
         _finite(values, f"rows.{name}")
     factor = float(np.sum(sched.present_value))
     total = factor * amount
-    method = method_of(item, valuation, exact=True)
+    method = sched.method
     names = list(columns)
     lists = [columns[n].tolist() for n in names]
     if wants_csv:
-        return _csv_response(names, lists, total, factor, amount, method)
+        return _csv_response(names, lists, total, factor, amount, method, warnings)
     rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
     return jsonify({"rows": rows,
                     "totals": {"present_value": total, "factor": factor, "amount": amount},
-                    "method": method, "audit": audit_block()})
+                    "method": method, "warnings": warnings, "audit": audit_block()})
 
 
-def _csv_response(names, lists, total, factor, amount, method):
+def _csv_response(names, lists, total, factor, amount, method, warnings):
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(names)
@@ -261,6 +261,7 @@ def _csv_response(names, lists, total, factor, amount, method):
         "X-Basis-Id": audit["basis"]["id"],
         "X-Basis-Version": audit["basis"]["version"],
         "X-Basis-Digest": audit["basis"]["digest"],
+        "X-Basis-Status": audit["basis"]["status"],
         "X-Interest-Kind": audit["interest"]["kind"],
         "X-Interest-Rate": repr(audit["interest"]["rate"]),
         "X-Interest-Source": audit["interest"]["source"],
@@ -273,6 +274,8 @@ def _csv_response(names, lists, total, factor, amount, method):
         "X-Service": f"{audit['service']['name']}/{audit['service']['version']}",
         "X-Computed-At": audit["computed_at"],
     }
+    if warnings:
+        headers["X-Warnings"] = " | ".join(f"{w['path']}: {w['message']}" for w in warnings)
     response.headers.update(headers)
     return response
 

@@ -28,6 +28,8 @@ from service.engine.survival import ASSUMPTIONS, Lives, build_lives
 
 TIMINGS = ("advance", "arrears", "continuous")
 APPROXIMATIONS = ("exact", "woolhouse-2", "woolhouse-3")
+#: Who must be alive at the end of the deferral for payments (and the guarantee) to start.
+START_REQUIREMENTS = ("any", "first", "both")
 MAX_FREQUENCY = 365
 #: Payment dates evaluated at once; larger batches are split to bound memory.
 _CHUNK_POINTS = 250_000
@@ -68,6 +70,7 @@ class Item:
     lives: tuple[Life, ...]
     payments: Payments = Payments()
     survivorship: tuple[float, float, float] = LAST_SURVIVOR
+    start_requires: str = "any"
 
 
 @dataclass(frozen=True)
@@ -91,27 +94,43 @@ class Valuation:
         return math.log1p(self.interest)
 
 
-def method_of(item: Item, valuation: Valuation, *, exact: bool = False) -> dict:
-    """Describe how ``item`` is valued, for the audit trail."""
-    p = item.payments
-    if p.timing == "continuous":
-        if valuation.fractional_age == "balducci":
-            # Balducci's curve has a pole; see integrals.balducci and integrals.balducci_pair.
-            evaluation = ("integral of payment rate x discount x survival per year of age: "
-                          "exponential-integral closed form, or Gauss-Legendre exact to "
-                          "rounding where the pole is far")
-        else:
-            evaluation = ("integral of payment rate x discount x survival, closed form per "
-                          "year of age")
-        approximation = "exact"
+#: What each kind of valuation did; ``Values.method_code`` indexes these.
+EXACT_SUM, WOOLHOUSE_SUM, INTEGRAL = 0, 1, 2
+
+_FORCE_ESTIMATE = (
+    "the law's own force A + B c^x where the life follows the basis' law; otherwise at a "
+    "whole age -(ln p(x-1) + ln p(x)) / 2 on the life's own rates (-ln p(x) where it has no "
+    "rate for the year before), and between whole ages the fractional-age assumption's force")
+
+
+def methods(valuation: Valuation) -> tuple[dict, dict, dict]:
+    """Return the method blocks of exact sums, Woolhouse sums and integrals under ``valuation``.
+
+    The engine decides per item which one it used (``Values.method_code``); these describe
+    them for the audit trail.
+    """
+    frac = valuation.fractional_age
+    exact = {"evaluation": "sum of payment x discount factor x probability of payment",
+             "fractional_age": frac, "approximation": "exact"}
+    woolhouse = {
+        "evaluation": (
+            "sum of payment x discount factor x probability of payment, with each whole "
+            "life-contingent year of the window by Woolhouse's formula; the guarantee, part "
+            "years and any year whose Woolhouse value falls outside 0 and the value of its "
+            "payments made for certain are summed exactly"),
+        "fractional_age": frac, "approximation": valuation.approximation}
+    if valuation.approximation == "woolhouse-3":
+        woolhouse["force_of_mortality"] = _FORCE_ESTIMATE
+    if frac == "balducci":
+        # Balducci's curve has a pole; see integrals.balducci and integrals.balducci_pair.
+        evaluation = ("integral of payment rate x discount x survival per year of age: "
+                      "exponential-integral closed form, or Gauss-Legendre exact to "
+                      "rounding where the pole is far")
     else:
-        evaluation = "sum of payment x discount factor x probability of payment"
-        # Woolhouse applies only to whole life-contingent years of the window.
-        whole_years = p.term is None or math.floor(p.term + _EPS) > math.ceil(p.guarantee - _EPS)
-        woolhouse = not exact and p.frequency > 1 and whole_years
-        approximation = valuation.approximation if woolhouse else "exact"
-    return {"evaluation": evaluation, "fractional_age": valuation.fractional_age,
-            "approximation": approximation}
+        evaluation = ("integral of payment rate x discount x survival, closed form per "
+                      "year of age")
+    integral = {"evaluation": evaluation, "fractional_age": frac, "approximation": "exact"}
+    return exact, woolhouse, integral
 
 
 # ---------------------------------------------------------------------------------------------
@@ -121,6 +140,21 @@ def method_of(item: Item, valuation: Valuation, *, exact: bool = False) -> dict:
 def _multiple_of(value: float, m: int) -> bool:
     scaled = value * m
     return abs(scaled - round(scaled)) <= _EPS * max(1.0, abs(scaled))
+
+
+_PERIODS = {1: ("year", "years"), 2: ("half-year", "half-years"), 4: ("quarter", "quarters"),
+            12: ("month", "months"), 26: ("fortnight", "fortnights"), 52: ("week", "weeks"),
+            365: ("day", "days")}
+
+
+def _not_whole_periods(value: float, m: int, *, least: int = 0) -> str:
+    """Say that ``value`` years is not a whole number of 1/m-year periods, and name the nearest
+    valid value (at least ``least`` periods)."""
+    one, many = _PERIODS.get(m, (f"period of 1/{m} year", f"periods of 1/{m} year"))
+    n = max(least, math.floor(value * m + 0.5))
+    how = "" if m in _PERIODS else f" (payments {m} times a year)"
+    return (f"{value:.6g} is not a whole number of {many}{how}; "
+            f"nearest: {n / m!r} ({n} {one if n == 1 else many})")
 
 
 def _check_item(item: Item) -> dict[str, list[str]]:
@@ -153,8 +187,9 @@ def _check_item(item: Item) -> dict[str, list[str]]:
         for name in ("term", "deferral", "guarantee"):
             v = getattr(p, name)
             if v is not None and name not in errors and not _multiple_of(v, p.frequency):
-                add(name, f"must be a whole multiple of 1/{p.frequency} year for payments "
-                          f"{p.frequency} times a year")
+                add(name, _not_whole_periods(v, p.frequency, least=int(name == "term")))
+    if item.start_requires not in START_REQUIREMENTS:
+        add("start_requires", f"must be one of {', '.join(START_REQUIREMENTS)}")
     for k, amount in enumerate(item.survivorship):
         if not (math.isfinite(amount) and 0 <= amount <= 1):
             add(f"survivorship.{k}", "amounts must lie between 0 and 1")
@@ -186,16 +221,22 @@ class _Batch:
     growth: np.ndarray  # ln(1 + escalation)
     amounts: np.ndarray  # (n, 3)
     horizon: np.ndarray  # time after which every life is dead for certain
-    certain_weight: np.ndarray  # amount x P(some life alive at the deferral)
+    certain_weight: np.ndarray  # amount x P(the lives that must be alive at the deferral are)
     guaranteed: np.ndarray  # number of guaranteed payments, g x m (discrete items)
+    # (n, 2): the probability that the other life meets the start requirement, by which the
+    # first-only (column 0) and second-only (column 1) probabilities at t >= u are scaled
+    # down from p1 and p2; 1 where nothing is required of it.
+    reach: np.ndarray
 
     def state_probabilities(self, own, t):
-        """Return (both, first_only, second_only) probabilities at times ``t``."""
+        """Return the probabilities, at times ``t`` at or after the deferral, that both lives,
+        only the first and only the second are alive and the start requirement was met."""
         p1 = self.lives.survival(self.first[own], t)
         has2 = self.second[own] >= 0
         p2 = np.where(has2, self.lives.survival(np.maximum(self.second[own], 0), t), 0.0)
         both = p1 * p2
-        return both, p1 - both, p2 - both
+        reach = self.reach[own]
+        return both, reach[:, 0] * p1 - both, reach[:, 1] * p2 - both
 
     def weight(self, own, both, one, two):
         """Return the expected fraction of the full amount payable, given the states."""
@@ -213,18 +254,19 @@ class _Batch:
         has2 = self.second[own] >= 0
         s2 = np.maximum(self.second[own], 0)
         p2 = np.where(has2, lives.survival(s2, t), 0.0)
-        # Where the force is infinite (q = 1 under constant-force or Balducci) the point
-        # contributes no slope: Woolhouse's third term is dropped there.
+        # Where the force is infinite (q = 1) and the life alive, the slope is -inf and the
+        # year fails Woolhouse's bounds (it is then summed exactly).
         d1 = _survival_slope(p1, lives.force(self.first[own], t))
         d2 = np.where(has2, _survival_slope(p2, lives.force(s2, t)), 0.0)
         dboth = np.where(has2, d1 * p2 + p1 * d2, 0.0)
-        return self.weight(own, dboth, d1 - dboth, d2 - dboth)
+        reach = self.reach[own]
+        return self.weight(own, dboth, reach[:, 0] * d1 - dboth, reach[:, 1] * d2 - dboth)
 
 
 def _survival_slope(p, mu):
-    """Return d/dt of survival p, -mu p; 0 where p is 0 or mu is infinite."""
-    finite = np.isfinite(mu) & (p > 0)
-    return np.where(finite, -np.where(finite, mu, 0.0) * p, 0.0)
+    """Return d/dt of survival p, -mu p: 0 where p is 0, -inf where mu is."""
+    alive = p > 0
+    return np.where(alive, -np.where(alive, mu, 0.0) * p, 0.0)
 
 
 def _prepare(tables, items, valuation: Valuation) -> _Batch:
@@ -266,23 +308,29 @@ def _prepare(tables, items, valuation: Valuation) -> _Batch:
     amounts = np.array([item.survivorship if len(item.lives) == 2 else LAST_SURVIVOR
                         for item in items], dtype=float).reshape(count, 3)
     last = np.array([tables[life.table].last_age for _, _, life in life_rows], dtype=float)
+    # Who must be alive at the deferral: P(first alive at u), P(second alive at u).
+    alive1 = lives.survival(first, deferral)
+    alive2 = np.where(second >= 0, lives.survival(np.maximum(second, 0), deferral), 0.0)
+    requires = np.array([item.start_requires for item in items], dtype=object)
+    needs_first = (requires == "first") | (requires == "both")
+    needs_second = (requires == "both") & (second >= 0)
+    reach = np.column_stack([np.where(needs_second, alive2, 1.0),
+                             np.where(needs_first, alive1, 1.0)])
+    start = np.where(needs_first, alive1 * np.where(needs_second, alive2, 1.0),
+                     alive1 + alive2 - alive1 * alive2)
     ages = lives.anchor + lives.frac
     # Under UDD a life may survive into the year after the last age; beyond it none does.
     life_horizon = last + 1.0 - ages
     horizon = np.where(second >= 0, np.maximum(life_horizon[first], life_horizon[second]),
                        life_horizon[first])
-    batch = _Batch(
+    return _Batch(
         lives=lives, first=first, second=second, m=m,
         arrears=np.array([p.timing == "arrears" for p in pay], dtype=bool),
         continuous=continuous, term=term, deferral=deferral, guarantee=guarantee,
         growth=np.log1p(np.array([p.escalation for p in pay], dtype=float)),
-        amounts=amounts, horizon=horizon, certain_weight=np.zeros(count),
-        guaranteed=np.rint(guarantee * m).astype(np.int64),
+        amounts=amounts, horizon=horizon, certain_weight=amounts[:, 0] * start,
+        guaranteed=np.rint(guarantee * m).astype(np.int64), reach=reach,
     )
-    own = np.arange(count)
-    both, one, two = batch.state_probabilities(own, deferral)
-    object.__setattr__(batch, "certain_weight", amounts[:, 0] * (both + one + two))
-    return batch
 
 
 # ---------------------------------------------------------------------------------------------
@@ -368,23 +416,34 @@ def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
 
 
 def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximation: str):
+    """Return the values of the discrete items ``which`` and whether Woolhouse valued any
+    year of each."""
     values = _guaranteed_values(batch, which, delta)
     count = _payment_count(batch)[which]
     first = np.minimum(batch.guaranteed[which], count)  # the first life-contingent payment
     m = batch.m[which]
-    k0, k1 = _woolhouse_years(batch, which, approximation)
     local = np.arange(which.size)
-    for part in _chunks(count - first):
-        head_stop = np.maximum(np.minimum(k0[part] * m[part], count[part]), first[part])
-        tail_start = np.maximum(k1[part] * m[part], head_stop)
-        o1, j1 = _expand(local[part], first[part], head_stop)
-        o2, j2 = _expand(local[part], tail_start, count[part])
-        loc = np.concatenate([o1, o2])
-        pts = _points(batch, which[loc], np.concatenate([j1, j2]), delta)
-        values += np.bincount(loc, weights=pts.present_value, minlength=which.size)
+    k0, k1 = _woolhouse_years(batch, which, approximation)
+    head_stop = np.maximum(np.minimum(k0 * m, count), first)
+    tail_start = np.maximum(k1 * m, head_stop)
+    # Ranges of payments summed exactly: before and after the Woolhouse years, and the
+    # Woolhouse years whose formula left its bounds.
+    owner, lo, hi = [local, local], [first, tail_start], [head_stop, count]
+    used = np.zeros(which.size, dtype=bool)
     if (k1 > k0).any():
-        values += _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation)
-    return values
+        loc, k, block, ok = _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation)
+        values += np.bincount(loc[ok], weights=block[ok], minlength=which.size)
+        used[loc[ok & (block > 0)]] = True  # a year no one can reach tells nothing
+        bad = ~ok
+        owner.append(loc[bad])
+        lo.append(k[bad] * m[loc[bad]])
+        hi.append(np.minimum((k[bad] + 1) * m[loc[bad]], count[loc[bad]]))
+    owner, lo, hi = np.concatenate(owner), np.concatenate(lo), np.concatenate(hi)
+    for part in _chunks(np.maximum(hi - lo, 0)):
+        o, j = _expand(owner[part], lo[part], hi[part])
+        pts = _points(batch, which[o], j, delta)
+        values += np.bincount(o, weights=pts.present_value, minlength=which.size)
+    return values, used
 
 
 def _woolhouse_years(batch: _Batch, which: np.ndarray, approximation: str):
@@ -410,13 +469,19 @@ def _work(batch: _Batch) -> np.ndarray:
 
 
 def _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation):
-    """Sum Woolhouse's formula over whole life-contingent years of the window.
+    """Value whole life-contingent years of the window by Woolhouse's formula.
 
     For f(t) = v^t W(t), W the expected fraction payable, one year [k, k + 1) paid m-thly
     in advance is approximately f(k) - (m-1)/(2m) (f(k) - f(k+1))
     + (m^2-1)/(12 m^2) (f'(k) - f'(k+1)) (the last term for the three-term form);
     in arrears add (f(k+1) - f(k)) / m. Over a whole life these telescope to the textbook
     a-due^(m) = a-due - (m-1)/(2m) - (m^2-1)/(12 m^2) (delta + mu).
+
+    Returns ``(loc, k, block, ok)``: for each year k of each item ``loc``, its Woolhouse value
+    and whether that value lies between 0 and the same formula's value for the year's
+    payments made for certain at the largest amount. Where the force of mortality is very
+    high (near the end of a table) the third term leaves those bounds; the caller sums such
+    years exactly.
     """
     loc, k = _expand(local, k0, k1)
     own = which[loc]
@@ -428,12 +493,23 @@ def _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation):
     block = f0 - (m - 1) / (2 * m) * (f0 - f1)
     if approximation == "woolhouse-3":
         # f'(t) = v^t W'(t) - delta f(t)
-        g0 = np.exp(-delta * t0) * batch.life_weight_slope(own, t0) - delta * f0
-        g1 = np.exp(-delta * t1) * batch.life_weight_slope(own, t1) - delta * f1
-        block = block + (m * m - 1) / (12 * m * m) * (g0 - g1)
-    block = np.where(batch.arrears[own], block + (f1 - f0) / m, block)
-    block = block * np.exp(k * batch.growth[own])
-    return np.bincount(loc, weights=block, minlength=which.size)
+        with np.errstate(invalid="ignore"):
+            g0 = np.exp(-delta * t0) * batch.life_weight_slope(own, t0) - delta * f0
+            g1 = np.exp(-delta * t1) * batch.life_weight_slope(own, t1) - delta * f1
+            block = block + (m * m - 1) / (12 * m * m) * (g0 - g1)
+    arrears = batch.arrears[own]
+    block = np.where(arrears, block + (f1 - f0) / m, block)
+    # The same formula for the year's payments made for certain at the largest amount: no
+    # value of the year can exceed it (the two-term form never does; the third term, with
+    # a very high force of mortality, can).
+    v0, v1 = np.exp(-delta * t0), np.exp(-delta * t1)
+    bound = v0 - (m - 1) / (2 * m) * (v0 - v1)
+    if approximation == "woolhouse-3":
+        bound = bound - (m * m - 1) / (12 * m * m) * delta * (v0 - v1)
+    bound = batch.amounts[own].max(axis=1) * np.where(arrears, bound + (v1 - v0) / m, bound)
+    ok = (block >= 0) & (block <= bound * (1 + 1e-12))  # False for NaN
+    growth = np.exp(k * batch.growth[own])
+    return loc, k, block * growth, ok
 
 
 # ---------------------------------------------------------------------------------------------
@@ -516,7 +592,9 @@ def _segment_integral(batch, own, t1, length, mid, certain, delta):
         j2 = np.where(has2, _single(assumption, q2, r2, delta, length) * s2, 0.0)
         j12 = np.where(has2, _pair(assumption, q1, r1, q2, r2, delta, length) * s1 * s2, 0.0)
     a = batch.amounts[own]
-    life = (a[:, 0] - a[:, 1] - a[:, 2]) * j12 + a[:, 1] * j1 + a[:, 2] * j2
+    reach = batch.reach[own]
+    life = ((a[:, 0] - a[:, 1] - a[:, 2]) * j12 + a[:, 1] * reach[:, 0] * j1
+            + a[:, 2] * reach[:, 1] * j2)
     sure = batch.certain_weight[own] * integrals.certain(delta, length)
     return np.exp(-delta * t1) * np.where(certain, sure, life)
 
@@ -549,9 +627,25 @@ def _continuous_values(batch: _Batch, which: np.ndarray, delta: float):
 # Entry points
 
 
-def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None = None
-                   ) -> np.ndarray:
-    """Return the present value of 1 p.a. for each item, as a float array.
+@dataclass(frozen=True, eq=False)
+class Values:
+    """Present values of a batch and how each was computed.
+
+    ``method_code[n]`` indexes ``methods`` (see :func:`methods`): the one decision that
+    valued item n, so the audit trail cannot say otherwise.
+    """
+
+    value: np.ndarray
+    method_code: np.ndarray
+    methods: tuple[dict, dict, dict]
+
+    def method(self, n: int) -> dict:
+        return self.methods[int(self.method_code[n])]
+
+
+def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None
+                    ) -> Values:
+    """Return the present value of 1 p.a. for each item, and the method that valued it.
 
     Parameters
     ----------
@@ -575,14 +669,23 @@ def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None 
         if work > max_work:
             raise WorkLimitError(work, max_work)
     values = np.zeros(len(items))
+    code = np.full(len(items), INTEGRAL, dtype=np.int8)
     delta = valuation.delta
     discrete = np.flatnonzero(~batch.continuous)
     if discrete.size:
-        values[discrete] = _discrete_values(batch, discrete, delta, valuation.approximation)
+        values[discrete], used = _discrete_values(batch, discrete, delta,
+                                                  valuation.approximation)
+        code[discrete] = np.where(used, WOOLHOUSE_SUM, EXACT_SUM)
     cont = np.flatnonzero(batch.continuous)
     if cont.size:
         values[cont] = _continuous_values(batch, cont, delta)
-    return values
+    return Values(values, code, methods(valuation))
+
+
+def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None = None
+                   ) -> np.ndarray:
+    """Return the present value of 1 p.a. for each item (see :func:`value_annuities`)."""
+    return value_annuities(tables, items, valuation, max_work=max_work).value
 
 
 @dataclass(frozen=True, eq=False)
@@ -597,6 +700,7 @@ class Schedule:
     both: np.ndarray
     first_only: np.ndarray
     second_only: np.ndarray
+    method: dict
 
 
 def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
@@ -615,7 +719,8 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
         own, j = _expand(which, np.zeros(1, dtype=np.int64), _payment_count(batch))
         pts = _points(batch, own, j, delta)
         return Schedule(pts.time, pts.amount, pts.probability, pts.discount, pts.present_value,
-                        pts.both, pts.first_only, pts.second_only)
+                        pts.both, pts.first_only, pts.second_only,
+                        methods(valuation)[EXACT_SUM])
     seg = _segments(batch, which, delta, expected=True)
     years = int(seg.year.max()) + 1 if seg.year.size else 0
     pv = np.bincount(seg.year, weights=seg.present_value, minlength=years)
@@ -629,4 +734,5 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
         discount = np.where(expected > 0, pv / np.where(expected > 0, expected, 1.0),
                             np.exp(-delta * start))
     both, one, two = batch.state_probabilities(np.zeros(years, dtype=np.intp), start)
-    return Schedule(start, payment, probability, discount, pv, both, one, two)
+    return Schedule(start, payment, probability, discount, pv, both, one, two,
+                    methods(valuation)[INTEGRAL])

@@ -17,6 +17,15 @@ class ItemError(EngineError):
         super().__init__(f"{first[0]}: {first[1][0]}")
 
 
+class FieldError(EngineError, ValueError):
+    """One input field is impossible under the basis; ``field`` names it for the caller."""
+
+    def __init__(self, field: str, message: str):
+        self.field = field
+        self.message = message
+        super().__init__(message)
+
+
 class TableError(EngineError):
     """A mortality table is not usable (bad rates, wrong shape, unknown law)."""
 

@@ -94,11 +94,22 @@ def _balducci_exact_tail(p, beta, q, delta, length):
     a = delta / q
     u1 = beta
     u2 = beta + q * length
+    # Where |a| u2 is small the two E1 values nearly cancel (and E1(0) is infinite): use
+    # E1(x) = -gamma - ln x - sum_k (-x)^k / (k k!) (Abramowitz and Stegun 5.1.11), so that
+    # E1(a u1) - E1(a u2) = ln(u2/u1) + sum_k (-a u1)^k ((u2/u1)^k - 1) / (k k!).
+    small = np.abs(a) * u2 < _SERIES_BELOW
+    log_ratio = np.log1p(q * length / u1)
+    x = np.where(small, -a * u1, 0.0)
+    series = log_ratio.copy()
+    term = np.ones_like(x)
+    for k in range(1, _SERIES_TERMS + 1):
+        term = term * x / k
+        series = series + term * np.expm1(k * log_ratio) / k
     with np.errstate(over="ignore", invalid="ignore", divide="ignore"):
-        pos = (p / q) * np.exp(a * u1) * (special.exp1(a * u1) - special.exp1(a * u2))
-        neg = (p / q) * np.exp(a * u1) * (special.expi(-a * u2) - special.expi(-a * u1))
-        zero = (p / q) * np.log(u2 / u1)
-    return np.where(a > 0, pos, np.where(a < 0, neg, zero))
+        pos = (special.exp1(a * u1) - special.exp1(a * u2))
+        neg = (special.expi(-a * u2) - special.expi(-a * u1))
+        large = np.where(a > 0, pos, neg)
+        return (p / q) * np.exp(a * u1) * np.where(small, series, large)
 
 
 def balducci(q, r, delta, length):

@@ -71,6 +71,8 @@ class Lives:
     start: np.ndarray  # S(x) relative to the anchor, > 0
     assumption: str
     q_prev: np.ndarray  # rate of the year before the anchor (NaN where there is none)
+    law: np.ndarray  # (n, 3) Makeham (A, B, c) of the life's table; NaN where none
+    on_law: np.ndarray  # (n, W + 1) the year's rate is the law's (column 0: year before)
 
     def _locate(self, idx, t):
         s = self.frac[idx] + np.asarray(t, dtype=float)
@@ -87,23 +89,39 @@ class Lives:
         return self.cum[idx, k] * fraction_survival(qk, r, self.assumption) / self.start[idx]
 
     def force(self, idx, t):
-        """Return the force of mortality of life ``idx`` at time ``t``.
+        """Return the force of mortality of life ``idx`` at time ``t``, as Woolhouse needs it.
 
-        At an integer age the left and right limits are averaged (common practice); where one
-        of them is infinite or undefined (the table's first age, the year of selection) the
-        other is used.
+        - Where the life follows its table's law on both sides of the point (no select rate,
+          no multiplier, before the table's closing age; at the table's first age, on the
+          side after it), the law's own force A + B c^y.
+        - Otherwise, at a whole age y, the estimate -(ln p(y-1) + ln p(y)) / 2 from the life's
+          own rates (Dickson, Hardy and Waters, Actuarial Mathematics for Life Contingent
+          Risks, section on Woolhouse's formula; recalled from memory), or -ln p(y) where the
+          life has no rate for the year before (the table's first age, the year of selection).
+        - Between whole ages, the force of the fractional-age assumption within the year.
+
+        Where q = 1 the estimate is infinite.
         """
         idx = np.asarray(idx, dtype=np.intp)
         k, r = self._locate(idx, t)
         last = self.q.shape[1] - 1
-        right = fraction_force(self.q[idx, np.minimum(k, last)], r, self.assumption)
+        qk = self.q[idx, np.minimum(k, last)]
+        within = fraction_force(qk, r, self.assumption)
         before = np.where(k > 0, self.q[idx, np.clip(k - 1, 0, last)], self.q_prev[idx])
-        left = np.where(np.isnan(before), np.inf,
-                        fraction_force(np.nan_to_num(before), 1.0, self.assumption))
-        # Where one limit is infinite (q = 1, or no year before) the finite one is taken.
-        both = np.isfinite(left) & np.isfinite(right)
-        mean = np.where(both, 0.5 * (left + right), np.where(np.isfinite(left), left, right))
-        return np.where(r == 0, mean, right)
+        with np.errstate(divide="ignore"):
+            here = -np.log1p(-qk)
+            prior = -np.log1p(-np.nan_to_num(before))
+        whole = np.where(np.isnan(before), here, 0.5 * (prior + here))
+        estimate = np.where(r == 0, whole, within)
+        # The law: its force at the adjusted age, where the rates on both sides are the law's
+        # (at the table's first age only the right side exists).
+        col = np.minimum(k, last) + 1  # on_law column 0 is the year before the anchor
+        on_law = self.on_law[idx, col] & ((r > 0) | self.on_law[idx, col - 1] | np.isnan(before))
+        a, b, c = self.law[idx, 0], self.law[idx, 1], self.law[idx, 2]
+        y = self.anchor[idx] + self.frac[idx] + np.asarray(t, dtype=float)
+        with np.errstate(invalid="ignore", over="ignore"):
+            law = a + b * np.power(np.where(on_law, c, 1.0), y)
+        return np.where(on_law, law, estimate)
 
     def year_rate(self, idx, k):
         """Return q for year ``k`` (integer offset from the anchor) of life ``idx``."""
@@ -154,14 +172,19 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     # Column 0 is the year before the life's integer age (for the force of mortality there);
     # columns 1.. are the life's chain of rates from its integer age.
     chain = np.full((n, width + 1), np.nan)
+    selected = np.zeros((n, width + 1), dtype=bool)
     for ti, table in enumerate(tables):
         members = np.flatnonzero(table_index == ti)
         if members.size:
-            chain[members] = _chain(table, anchor[members], durations[members], width,
-                                    members, problems)
+            chain[members], selected[members] = _chain(table, anchor[members], durations[members],
+                                                       width, members, problems)
     # The multiplier applies to every rate, but a table that closes with q = 1 stays closed.
     last = np.array([t.last_age for t in tables])[table_index]
     ages_of = anchor[:, None] + np.arange(-1, width)[None, :]
+    law = np.array([t.law if t.law is not None else (np.nan,) * 3 for t in tables],
+                   dtype=float).reshape(len(tables), 3)[table_index]
+    on_law = ((~np.isnan(law[:, :1])) & (multipliers[:, None] == 1.0) & ~selected
+              & ~np.isnan(chain) & (ages_of < last[:, None]))
     chain = np.where(ages_of >= last[:, None], 1.0, np.minimum(chain * multipliers[:, None], 1.0))
     q_prev = chain[:, 0]
     q = chain[:, 1:]
@@ -176,12 +199,13 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
             problems[int(pos)] = ("age", "the life cannot be alive at this age under the "
                                          "adjusted table (survival from its integer age is 0)")
     start = np.where(start > 0, start, 1.0)
-    lives = Lives(anchor, frac, q, cum, start, assumption, q_prev)
+    lives = Lives(anchor, frac, q, cum, start, assumption, q_prev, law, on_law)
     return lives, problems
 
 
 def _chain(table: MortalityTable, anchor, durations, width, members, problems):
-    """Rates for years -1, 0, ..., width-1 from each integer age (NaN before the table)."""
+    """Rates for years -1, 0, ..., width-1 from each integer age (NaN before the table), and
+    which of them are select rates."""
     offsets = np.arange(-1, width)[None, :]
     index = anchor[:, None] - table.first_age + offsets
     rates = np.where(index < 0, np.nan,
@@ -189,7 +213,7 @@ def _chain(table: MortalityTable, anchor, durations, width, members, problems):
                               1.0))
     period = table.select_period
     if not period:
-        return rates
+        return rates, np.zeros(rates.shape, dtype=bool)
     selected = np.flatnonzero(np.isfinite(durations) & (durations < period))
     d = durations[selected].astype(np.int64)
     sel_age = anchor[selected] - d
@@ -204,7 +228,9 @@ def _chain(table: MortalityTable, anchor, durations, width, members, problems):
     rows, cols = np.nonzero(in_select)
     rates[selected[rows], cols] = table.select_q[sel_age[rows] - table.select_first_age,
                                                  years[rows, cols]]
+    is_select = np.zeros(rates.shape, dtype=bool)
+    is_select[selected[rows], cols] = True
     # Before selection there is no rate of this life's own history.
     before_rows, before_cols = np.nonzero(years < 0)
     rates[selected[before_rows], before_cols] = np.nan
-    return rates
+    return rates, is_select

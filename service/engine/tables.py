@@ -30,6 +30,9 @@ class MortalityTable:
     q: np.ndarray
     select_first_age: int = 0
     select_q: np.ndarray = field(default_factory=lambda: _frozen(np.empty((0, 0))))
+    #: Makeham parameters (A, B, c) where the ultimate rates were tabulated from that law
+    #: (Gompertz: A = 0); the law then also gives the force of mortality at any age.
+    law: tuple[float, float, float] | None = None
 
     def __post_init__(self):
         object.__setattr__(self, "q", _frozen(self.q))
@@ -97,7 +100,9 @@ def table_from_law(law: str, params: dict, first_age: int, *, last_age: int = LA
     else:
         raise TableError(f"unknown law {law!r}; known: makeham, gompertz")
     q[-1] = 1.0
-    return with_select_factors(MortalityTable(first_age, q), select_factors)
+    a = 0.0 if law == "gompertz" else float(params["A"])
+    table = MortalityTable(first_age, q, law=(a, float(params["B"]), float(params["c"])))
+    return with_select_factors(table, select_factors)
 
 
 def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
@@ -112,4 +117,4 @@ def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
     idx = np.arange(len(table.q))[:, None] + np.arange(period)[None, :]
     ultimate = np.where(idx < len(table.q), table.q[np.minimum(idx, len(table.q) - 1)], 1.0)
     select_q = np.where(idx < len(table.q) - 1, np.minimum(ultimate * factors[None, :], 1.0), 1.0)
-    return MortalityTable(table.first_age, table.q, table.first_age, select_q)
+    return MortalityTable(table.first_age, table.q, table.first_age, select_q, law=table.law)

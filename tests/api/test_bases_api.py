@@ -86,7 +86,8 @@ def test_basis_detail_gives_its_defaults(client, key):
     body = response.get_json()
     doc = SHIPPED[key]
     assert (body["id"], body["version"], body["digest"]) == (*key, doc["digest"])
-    assert body["audit"]["basis"] == {"id": key[0], "version": key[1], "digest": doc["digest"]}
+    assert body["audit"]["basis"] == {"id": key[0], "version": key[1], "digest": doc["digest"],
+                                      "status": doc["status"]}
     defaults = body["defaults"]
     assert defaults["interest"] == {"kind": "flat", "rate": doc["interest"]["rate"],
                                     "source": "basis"}
@@ -149,12 +150,36 @@ def assert_consistent(body):
     # Common practice: p = 1 - q, l(k+1) = l(k) p(k), d = l q, e(k) = p(k) (1 + e(k+1)).
     np.testing.assert_array_equal(np.diff(col["age"]), 1)
     np.testing.assert_allclose(col["p"], 1.0 - col["q"], rtol=0, atol=1e-15)
-    assert col["l"][0] == pytest.approx(body["radix"], rel=1e-15)
+    if col["age"][0] == body["radix_age"]:
+        assert col["l"][0] == pytest.approx(body["radix"], rel=1e-15)
+    else:
+        assert col["age"][0] > body["radix_age"] and col["l"][0] <= body["radix"]
     np.testing.assert_allclose(col["l"][1:], col["l"][:-1] * col["p"][:-1], rtol=1e-12, atol=0)
     np.testing.assert_allclose(col["d"], col["l"] * col["q"], rtol=1e-12, atol=0)
     np.testing.assert_allclose(col["e"][:-1], col["p"][:-1] * (1.0 + col["e"][1:]),
                                rtol=1e-12, atol=1e-12)
     assert ((col["q"] >= 0) & (col["q"] <= 1)).all()
+
+
+@pytest.mark.parametrize("age, printed", [(40, 99338.3), (60, 96634.1), (65, 94579.7),
+                                          (80, 75657.2)])
+def test_l_column_matches_the_printed_table(client, age, printed):
+    # Dickson, Hardy and Waters, AMLCR, Standard Ultimate Survival Model table: l with radix
+    # 100,000 at age 20, printed to one decimal (recalled from memory). from_age only picks rows.
+    body = life_table(client, "standard-ultimate", from_age=age, to_age=age)
+    assert body["radix_age"] == 20
+    assert round(body["rows"][0]["l"], 1) == printed
+
+
+def test_select_l_starts_at_the_age_of_selection(client):
+    body = life_table(client, "standard-select", from_age=47, duration=2)
+    assert body["radix_age"] == 45
+    q45, q46 = 0.81 * life_table(client, "standard-ultimate", from_age=45, to_age=45)[
+        "rows"][0]["q"], 0.9 * life_table(client, "standard-ultimate", from_age=46,
+                                          to_age=46)["rows"][0]["q"]
+    # l[45]+2 = radix p[45] p[45]+1, the select rates being 0.9^(2-s) q(x+s) (the model's
+    # definition).
+    assert body["rows"][0]["l"] == pytest.approx(100_000 * (1 - q45) * (1 - q46), rel=1e-13)
 
 
 @pytest.mark.parametrize("ref, query", [

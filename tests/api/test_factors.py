@@ -117,7 +117,7 @@ def test_audit_names_the_basis_used(client, ref, key):
     audit = response.get_json()["audit"]
     entry = listed(client)[key]
     assert audit["basis"] == {"id": entry["id"], "version": entry["version"],
-                              "digest": entry["digest"]}
+                              "digest": entry["digest"], "status": entry["status"]}
     assert set(audit["service"]) == {"name", "version"}
 
 
@@ -184,7 +184,8 @@ def test_demo_basis_needs_sex(client):
 
 def test_missing_sex_is_located_in_a_batch(client):
     items = [{"lives": [{"age": 65, "sex": "male"}], "timing": "advance"},
-             {"lives": [{"age": 65, "sex": "male"}, {"age": 61}], "timing": "advance"}]
+             {"lives": [{"age": 65, "sex": "male"}, {"age": 61}], "timing": "advance",
+              "survivorship": "joint-life"}]
     body = assert_problem(post(client, {"basis": "fernhollow-annuitants", "items": items}),
                           422, "items.1.lives.1.sex")
     assert list(body["errors"]) == ["items.1.lives.1.sex"]
@@ -294,7 +295,8 @@ def test_invalid_requests_are_refused(client, body, status, path):
 
 
 def test_impossible_item_is_located_in_a_batch(client):
-    items = [LIFE_65, LIFE_65, {"lives": [{"age": 65}, {"age": 140}], "timing": "advance"}]
+    items = [LIFE_65, LIFE_65, {"lives": [{"age": 65}, {"age": 140}], "timing": "advance",
+                                "survivorship": "last-survivor"}]
     body = assert_problem(post(client, {"basis": "standard-ultimate", "items": items}), 422,
                           "items.2.lives.1.age")
     assert list(body["errors"]) == ["items.2.lives.1.age"]

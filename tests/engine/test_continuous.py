@@ -109,3 +109,21 @@ class TestContinuousAtZeroAndNegativeInterest:
         life = DirectLife.of(table.q, table.first_age, 60.5, assumption)
         expected = continuous_value([life], i, deferral=1.25, guarantee=2.0, escalation=0.01)
         assert_allclose(got, expected, rtol=1e-9, atol=0)
+
+
+class TestBalducciNearZeroInterest:
+    """Regression: the exponential-integral form cancelled (or gave inf) as delta went to 0."""
+
+    @pytest.mark.parametrize("delta", (5e-324, 1e-300, 1e-12, 1e-8, 1e-4, -1e-6))
+    @pytest.mark.parametrize(("q", "r", "length"), ((0.9, 0.0, 1.0), (0.7, 0.3, 0.25),
+                                                    (0.99, 0.5, 1e-3)))
+    def test_single_year_against_quad(self, delta, q, r, length):
+        from scipy.integrate import quad
+
+        from service.engine.integrals import balducci
+
+        p = 1 - q
+        # The integral's definition, integrated numerically by scipy.
+        expected, _ = quad(lambda h: np.exp(-delta * h) * p / (p + q * (r + h)), 0, length,
+                           epsabs=0, epsrel=1e-13)
+        assert_allclose(balducci(q, r, delta, length), expected, rtol=1e-12)

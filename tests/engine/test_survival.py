@@ -74,31 +74,74 @@ class TestLivesSurvival:
         assert problems[0][0] == "age" and problems[2][0] == "age"
 
 
+def _rates_only(table):
+    """The same rates without the law, as a table read from a file would be."""
+    from service.engine.tables import MortalityTable
+
+    return MortalityTable(table.first_age, table.q)
+
+
 class TestLivesForce:
+    """The force of mortality that Woolhouse's third term uses."""
+
+    @pytest.mark.parametrize("assumption", ASSUMPTIONS)
+    @pytest.mark.parametrize("t", (0.0, 0.3, 2.75, 5.0, 10.5))
+    def test_a_law_table_gives_the_law(self, assumption, t):
+        # Makeham's law mu(y) = A + B c^y (the table's definition, published-values.md).
+        lives, _ = build_lives([models.susm()], [0], [60.0], [math.inf], [1.0], assumption)
+        a, b, c = models.SUSM["A"], models.SUSM["B"], models.SUSM["c"]
+        assert_allclose(lives.force(0, t), a + b * c ** (60 + t), rtol=1e-13)
+
     @pytest.mark.parametrize("assumption", ASSUMPTIONS)
     @pytest.mark.parametrize("t", (0.3, 2.75, 10.5))
-    def test_inside_a_year(self, assumption, t):
-        table = models.susm()
+    def test_inside_a_year_the_assumption_gives_it(self, assumption, t):
+        table = _rates_only(models.susm())
         lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.0], assumption)
         q = table.q[math.floor(60 + t) - 20]
         r = t - math.floor(t)
+        # The force of r p under each assumption (any life-contingencies text).
         expected = {"udd": q / (1 - r * q), "constant-force": -math.log1p(-q),
                     "balducci": q / (1 - (1 - r) * q)}[assumption]
         assert_allclose(lives.force(0, t), expected, rtol=1e-13)
 
     @pytest.mark.parametrize("assumption", ASSUMPTIONS)
     @pytest.mark.parametrize("t", (0.0, 1.0, 5.0))
-    def test_at_an_integer_age_limits_are_averaged(self, assumption, t):
-        table = models.susm()
+    def test_at_a_whole_age_the_log_average(self, assumption, t):
+        # mu(y) ~ -(ln p(y-1) + ln p(y)) / 2: Dickson, Hardy and Waters, AMLCR, Woolhouse's
+        # formula (recalled from memory).
+        table = _rates_only(models.susm())
         age = 60 + int(t)
         before, at = table.q[age - 1 - 20], table.q[age - 20]
-        # The engine's stated convention: left and right limits averaged at an integer age.
-        left = {"udd": before / (1 - before), "constant-force": -math.log1p(-before),
-                "balducci": before}[assumption]
-        right = {"udd": at, "constant-force": -math.log1p(-at),
-                 "balducci": at / (1 - at)}[assumption]
         lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.0], assumption)
-        assert_allclose(lives.force(0, t), (left + right) / 2, rtol=1e-13)
+        expected = -(math.log1p(-before) + math.log1p(-at)) / 2
+        assert_allclose(lives.force(0, t), expected, rtol=1e-13)
+
+    def test_a_multiplier_leaves_the_law_for_the_estimate(self):
+        table = models.susm()
+        lives, _ = build_lives([table], [0], [60.0], [math.inf], [1.5], "udd")
+        before, at = 1.5 * table.q[59 - 20], 1.5 * table.q[60 - 20]
+        assert_allclose(lives.force(0, 0.0), -(math.log1p(-before) + math.log1p(-at)) / 2,
+                        rtol=1e-13)
+
+    def test_select_years_use_their_own_rates(self):
+        table = models.susm_select()
+        lives, _ = build_lives([table], [0], [60.0], [0.0], [1.0], "udd")
+        # No rate before selection: -ln p[60]; at 61 both select years; at 62 the ultimate
+        # rate follows the second select year; from 63 the law again.
+        q60, q61 = 0.81 * table.q[40], 0.9 * table.q[41]
+        assert_allclose(lives.force(0, 0.0), -math.log1p(-q60), rtol=1e-13)
+        assert_allclose(lives.force(0, 1.0), -(math.log1p(-q60) + math.log1p(-q61)) / 2,
+                        rtol=1e-13)
+        assert_allclose(lives.force(0, 2.0), -(math.log1p(-q61) + math.log1p(-table.q[42])) / 2,
+                        rtol=1e-13)
+        a, b, c = models.SUSM["A"], models.SUSM["B"], models.SUSM["c"]
+        assert_allclose(lives.force(0, 3.0), a + b * c**63, rtol=1e-13)
+
+    def test_the_first_age_and_the_closing_year(self):
+        table = _rates_only(models.susm_short())
+        lives, _ = build_lives([table], [0, 0], [20.0, 105.0], [math.inf] * 2, [1.0] * 2, "udd")
+        assert_allclose(lives.force(0, 0.0), -math.log1p(-table.q[0]), rtol=1e-13)
+        assert lives.force(1, 0.0) == math.inf
 
 
 class TestAgesNearAWholeAge:

@@ -1,0 +1,47 @@
+"""Warnings: inputs the basis ignores and values that look mistaken. They never change a number."""
+
+#: At most this many warnings are listed; a last entry counts the rest.
+MAX_WARNINGS = 100
+#: A rate outside this range looks like a percentage given as a number (4.5 for 4.5%).
+_PLAUSIBLE_RATE = (-0.05, 0.25)
+#: A multiplier above this looks like a percentage (125 for 125%).
+_PLAUSIBLE_MULTIPLIER = 10.0
+
+_STATUS = {
+    "demo": "This basis is demo data (status 'demo'), not approved for use.",
+    "retired": "This basis version is retired: use it only to reproduce past results.",
+}
+
+
+def request_warnings(basis, data: dict, items: list[tuple[str, dict]]) -> list[dict]:
+    """Return the warnings for a loaded request under ``basis``.
+
+    ``items`` pairs each loaded item with the path that names it (``items.3`` or ``item``).
+    """
+    found: list[tuple[str, str]] = []
+    if basis.status in _STATUS:
+        found.append(("basis", _STATUS[basis.status]))
+    rate = data.get("interest_rate")
+    if rate is not None and not _PLAUSIBLE_RATE[0] <= rate <= _PLAUSIBLE_RATE[1]:
+        found.append(("interest_rate", f"{rate:g} is read as {rate:.2%} a year; a rate of "
+                                       f"4.5% is given as 0.045."))
+    for path, item in items:
+        for k, life in enumerate(item["lives"]):
+            where = f"{path}.lives.{k}"
+            if life["sex"] is not None and not basis.sex_distinct:
+                found.append((f"{where}.sex", "Ignored: this basis is unisex."))
+            index = basis.table_index(life["sex"])
+            select = index is not None and basis.tables[index].select_period > 0
+            if life["duration"] is not None and index is not None and not select:
+                found.append((f"{where}.duration", "Ignored: this basis has no select rates; "
+                                                   "the life follows the ultimate rates."))
+            multiplier = life["mortality_multiplier"]
+            if multiplier > _PLAUSIBLE_MULTIPLIER:
+                found.append((f"{where}.mortality_multiplier",
+                              f"{multiplier:g} is read as {multiplier:g} times the table's "
+                              f"rates ({multiplier:.0%}); 125% is given as 1.25."))
+    warnings = [{"path": path, "message": message} for path, message in found[:MAX_WARNINGS]]
+    if len(found) > MAX_WARNINGS:
+        warnings.append({"path": "warnings", "message": f"{len(found) - MAX_WARNINGS} more "
+                                                        "warnings are not listed."})
+    return warnings
