@@ -154,7 +154,7 @@ class ItemSchema(_Strict):
                                                                "instead of guarantee."})
     escalation = StrictFloat(load_default=0.0, validate=validate.Range(-0.5, 1.0),
                              metadata={"description": "Compound annual rate of increase."})
-    survivorship = SurvivorshipField(load_default=None, metadata=SURVIVORSHIP_DOC)
+    survivorship = SurvivorshipField(metadata=SURVIVORSHIP_DOC)
     start_requires = fields.String(
         load_default="any", validate=validate.OneOf(START_REQUIREMENTS), metadata={
             "description": (

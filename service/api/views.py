@@ -150,7 +150,7 @@ def _engine_items(basis, items, path_of):
         payments = Payments(timing=item["timing"], frequency=item["frequency"],
                             term=item["term"], deferral=item["deferral"],
                             guarantee=item["guarantee"], escalation=item["escalation"])
-        survivorship = item["survivorship"] or (1.0, 1.0, 1.0)  # (one life: it is paid)
+        survivorship = item.get("survivorship", (1.0, 1.0, 1.0))  # (one life: it is paid)
         out.append(Item(tuple(lives), payments, survivorship, item["start_requires"]))
     if missing:
         raise ProblemError(422, "The request has invalid fields.", errors=missing)

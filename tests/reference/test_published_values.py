@@ -151,7 +151,8 @@ class TestWoolhouse:
         got = value(table, whole_life(age, frequency=m), 0.05, assumption, "woolhouse-3")
         # Dickson, Hardy and Waters, chapter on annuities: a-due^(m) = a-due - (m-1)/(2m)
         # - (m^2-1)/(12 m^2) (delta + mu(x)), with the law's own force mu(x).
-        expected = annual - (m - 1) / (2 * m) - (m * m - 1) / (12 * m * m) * (delta + law_force(age))
+        mu = law_force(age)
+        expected = annual - (m - 1) / (2 * m) - (m * m - 1) / (12 * m * m) * (delta + mu)
         assert_allclose(got, expected, rtol=0, atol=TELESCOPED_TOLERANCE)
 
     @pytest.mark.parametrize("assumption", ASSUMPTIONS)
