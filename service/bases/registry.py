@@ -257,7 +257,7 @@ def load_basis(path: Path, name: str) -> Basis:
     digest = content_digest(doc, data_digests)
     recorded = doc.get("digest")
     if recorded is None and status != "demo":
-        raise BasisFileError(f"{name}: an {status} basis must record its digest; add "
+        raise BasisFileError(f"{name}: a basis with status '{status}' must record its digest; add "
                              f'digest = "{digest}" after checking the content')
     if recorded is not None and recorded != digest:
         raise BasisFileError(f"{name}: recorded digest {recorded} does not match the content "

@@ -37,8 +37,7 @@ class TestStandardUltimateSurvivalModel:
     def test_annuity_due(self, age, a_due, insurance):
         got = value(models.susm(), whole_life(age), 0.05)
         # Dickson, Hardy and Waters, Actuarial Mathematics for Life Contingent Risks, Standard
-        # Ultimate Survival Model tables (values recalled from memory; each was reproduced to
-        # every printed digit by summing the law annually)
+        # Ultimate Survival Model tables, printed to 4 or 5 decimals (recalled from memory)
         assert_allclose(got, a_due, rtol=0, atol=0.5e-4)
 
     @pytest.mark.parametrize(("age", "a_due", "insurance"), PUBLISHED)
@@ -46,8 +45,7 @@ class TestStandardUltimateSurvivalModel:
         d = 0.05 / 1.05
         got = 1.0 - d * value(models.susm(), whole_life(age), 0.05)
         # Dickson, Hardy and Waters, Actuarial Mathematics for Life Contingent Risks, Standard
-        # Ultimate Survival Model tables (values recalled from memory; each was reproduced to
-        # every printed digit by summing the law annually)
+        # Ultimate Survival Model tables, printed to 4 or 5 decimals (recalled from memory)
         assert_allclose(got, insurance, rtol=0, atol=0.5e-5)
 
     @pytest.mark.parametrize(("age", "a_due", "insurance"), PUBLISHED)
@@ -58,8 +56,7 @@ class TestStandardUltimateSurvivalModel:
         v = 1.0 / 1.05
         got = np.sum(v ** np.arange(1, q.size + 1) * alive * q)
         # Dickson, Hardy and Waters, Actuarial Mathematics for Life Contingent Risks, Standard
-        # Ultimate Survival Model tables (values recalled from memory; each was reproduced to
-        # every printed digit by summing the law annually)
+        # Ultimate Survival Model tables, printed to 4 or 5 decimals (recalled from memory)
         assert_allclose(got, insurance, rtol=0, atol=0.5e-5)
 
 
@@ -69,13 +66,13 @@ class TestIllustrativeLifeTable:
     def test_annuity_due(self):
         got = value(models.ilt(), whole_life(65), 0.06)
         # Bowers, Gerber, Hickman, Jones and Nesbitt, Actuarial Mathematics (2nd ed.),
-        # Illustrative Life Table (recalled from memory; reproduced by computing the law)
+        # Illustrative Life Table (recalled from memory)
         assert_allclose(got, 9.8969, rtol=0, atol=0.5e-4)
 
     def test_insurance_per_thousand(self):
         got = 1000.0 * (1.0 - 0.06 / 1.06 * value(models.ilt(), whole_life(65), 0.06))
         # Bowers, Gerber, Hickman, Jones and Nesbitt, Actuarial Mathematics (2nd ed.),
-        # Illustrative Life Table (recalled from memory; reproduced by computing the law)
+        # Illustrative Life Table (recalled from memory)
         assert_allclose(got, 439.80, rtol=0, atol=0.005)
 
 
@@ -89,11 +86,11 @@ def udd_constants(i, m):
 class TestUddMthlyConstants:
     def test_alpha_and_beta_at_six_percent_monthly(self):
         alpha, beta = udd_constants(0.06, 12)
-        # Bowers et al., Actuarial Mathematics, chapter on life annuities (recalled from
-        # memory; matches direct computation)
+        # Bowers et al., Actuarial Mathematics, chapter on life annuities, the UDD m-thly
+        # functions at 6% (recalled from memory)
         assert_allclose(alpha, 1.00028, rtol=0, atol=0.5e-5)
-        # Bowers et al., Actuarial Mathematics, chapter on life annuities (recalled from
-        # memory; matches direct computation)
+        # Bowers et al., Actuarial Mathematics, chapter on life annuities, the UDD m-thly
+        # functions at 6% (recalled from memory)
         assert_allclose(beta, 0.46812, rtol=0, atol=0.5e-5)
 
     @pytest.mark.parametrize(("table_name", "age", "i", "m"), (
