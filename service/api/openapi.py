@@ -32,6 +32,7 @@ _ERRORS = {
     "413": "Body or batch too large, or the batch needs more payment dates than one request "
            "may evaluate.",
     "415": "The body is not application/json.",
+    "406": "The Accept header allows neither application/json nor text/csv.",
     "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
     "401": "Bearer-token authentication is configured and no valid token was sent.",
 }
@@ -117,8 +118,18 @@ def build_spec(max_items: int, version: str = "") -> dict:
                                                       "enum": list(s.SEX_VALUES)}},
             {"name": "duration", "in": "query", "schema": {"type": "integer", "minimum": 0,
                                                            "maximum": 200}},
+            {"name": "columns", "in": "query", "schema": {
+                "type": "string", "enum": ["basic", "commutation"], "default": "basic"},
+             "description": "'commutation' adds D, N, C, M, S, R and the annuity-due N/D."},
+            {"name": "interest_rate", "in": "query", "schema": {
+                "type": "number", "minimum": -0.5, "maximum": 1.0},
+             "description": "Flat effective annual rate for the commutation columns; default "
+                            "the basis' rate."},
         ],
-        "responses": _ok("LifeTable", "The rows.") | _problem_responses("401", "404", "422")}})
+        "responses": _ok("LifeTable", "The rows; as CSV with Accept: text/csv (the audit "
+                                      "block then travels in X- headers).",
+                         {"text/csv": {"schema": {"type": "string"}}})
+        | _problem_responses("401", "404", "406", "422")}})
     spec.path("/v1/annuity-factors", operations={"post": {
         "operationId": "annuityFactors", "security": _AUTH,
         "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
@@ -135,7 +146,7 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "responses": _ok("ScheduleResponse", "One row per possible payment date (one per year "
                                              "of the window for continuous payments).",
                          {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "401", "404", "413", "415", "422")}})
+        | _problem_responses("400", "401", "404", "406", "413", "415", "422")}})
     spec.path("/livez", operations={"get": {
         "operationId": "livez", "summary": "Liveness: the process answers.",
         "responses": _ok("Health", "Alive.")}})

@@ -371,6 +371,16 @@ class LifeTableRowSchema(Schema):
     l = fields.Float(required=True)  # noqa: E741 - the actuarial symbol
     d = fields.Float(required=True)
     e = fields.Float(required=True, metadata={"description": "Curtate expectation of life."})
+    e_complete = fields.Float(required=True, metadata={
+        "description": "Complete expectation of life, survival within each year of age under "
+                       "the basis' fractional-age assumption."})
+    D = fields.Float(metadata={"description": "v^x l (columns=commutation)."})
+    N = fields.Float(metadata={"description": "Sum of D from this age on."})
+    C = fields.Float(metadata={"description": "v^(x+1) d."})
+    M = fields.Float(metadata={"description": "Sum of C from this age on."})
+    S = fields.Float(metadata={"description": "Sum of N from this age on."})
+    R = fields.Float(metadata={"description": "Sum of M from this age on."})
+    a_due = fields.Float(metadata={"description": "Whole-life annuity-due N / D at the rate."})
 
 
 class LifeTableQuerySchema(_Strict):
@@ -378,6 +388,15 @@ class LifeTableQuerySchema(_Strict):
     to_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
     sex = fields.String(load_default=None, validate=validate.OneOf(SEX_VALUES))
     duration = fields.Integer(load_default=None, validate=validate.Range(0, 200))
+    columns = fields.String(load_default="basic", validate=validate.OneOf(["basic",
+                                                                          "commutation"]),
+                            metadata={"description": "'commutation' adds D, N, C, M, S, R and "
+                                                     "the annuity-due N/D at a flat rate."})
+    interest_rate = fields.Float(load_default=None, allow_nan=False,
+                                 validate=validate.Range(-0.5, 1.0),
+                                 metadata={"description": "Flat effective annual rate for the "
+                                                          "commutation columns; default the "
+                                                          "basis' rate."})
 
 
 class LifeTableSchema(Schema):

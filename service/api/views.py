@@ -101,12 +101,19 @@ def get_basis(ref: str):
     return jsonify(body)
 
 
+_LIFE_TABLE_COLUMNS = ("age", "q", "p", "l", "d", "e", "e_complete")
+_COMMUTATION_COLUMNS = ("D", "N", "C", "M", "S", "R", "a_due")
+
+
 @bp.get("/v1/bases/<ref>/life-table")
 def life_table(ref: str):
     """The basis' table as rows for one life followed from an age."""
+    wants_csv = _wants_csv()
     basis = _basis(ref)
-    use_basis(basis)
     query = load(_life_table_query, request.args.to_dict())
+    commutation = query["columns"] == "commutation"
+    rate = query["interest_rate"]
+    use_basis(basis, rate)
     sex = query["sex"]
     index = basis.table_index(sex)
     if index is None:
@@ -119,17 +126,36 @@ def life_table(ref: str):
         default_from = table.select_first_age + duration
     from_age = query["from_age"] if query["from_age"] is not None else default_from
     try:
-        cols = life_table_columns(table, from_age, to_age=query["to_age"], duration=duration)
+        cols = life_table_columns(
+            table, from_age, to_age=query["to_age"], duration=duration,
+            assumption=basis.fractional_age,
+            rate=(basis.interest_rate if rate is None else rate) if commutation else None)
     except FieldError as exc:
         raise ProblemError(422, "The ages asked for lie outside the table.",
                            errors={exc.field: [exc.message]}) from None
-    rows = [{"age": int(a), "q": float(q), "p": float(p), "l": float(lv), "d": float(d),
-             "e": float(e)}
-            for a, q, p, lv, d, e in zip(cols.age, cols.q, cols.p, cols.l, cols.d, cols.e,
-                                         strict=True)]
+    columns = {name: getattr(cols, name) for name in _LIFE_TABLE_COLUMNS}
+    if commutation:
+        columns |= cols.commutation
+    names = list(columns)
+    lists = [np.asarray(columns[n]).tolist() for n in names]
+    lists[0] = [int(a) for a in lists[0]]
+    if wants_csv:
+        return _csv_response(names, lists, {"X-Radix": repr(cols.radix),
+                                            "X-Radix-Age": str(cols.radix_age)})
+    rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
     return jsonify({"basis": basis.ref, "sex": basis.sexes[index], "duration": duration,
                     "radix": cols.radix, "radix_age": cols.radix_age, "rows": rows,
                     "audit": audit_block()})
+
+
+def _wants_csv() -> bool:
+    """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV."""
+    if not request.accept_mimetypes:
+        return False  # no Accept header: JSON
+    best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+    if best is None:
+        raise ProblemError(406, "This answer is available as application/json or text/csv.")
+    return best == "text/csv"
 
 
 def _engine_items(basis, items, path_of):
@@ -211,8 +237,7 @@ _STATE_COLUMNS = ("both_alive", "first_only", "second_only")
 @bp.post("/v1/cash-flow-schedules")
 def cash_flow_schedules():
     """The expected payment schedule behind one factor."""
-    wants_csv = request.accept_mimetypes.best_match(["application/json", "text/csv"]) == \
-        "text/csv"
+    wants_csv = _wants_csv()
     body = json_body()
     data = load(_schedule_request, body)
     g.item_count = 1
@@ -243,18 +268,25 @@ def cash_flow_schedules():
     names = list(columns)
     lists = [columns[n].tolist() for n in names]
     if wants_csv:
-        return _csv_response(names, lists, total, factor, amount, method, warnings)
+        return _csv_response(names, lists, {
+            "X-Method-Evaluation": method["evaluation"],
+            "X-Method-Fractional-Age": method["fractional_age"],
+            "X-Method-Approximation": method["approximation"],
+            "X-Total-Present-Value": repr(total), "X-Factor": repr(factor),
+            "X-Amount": repr(amount)}, warnings)
     rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
     return jsonify({"rows": rows,
                     "totals": {"present_value": total, "factor": factor, "amount": amount},
                     "method": method, "warnings": warnings, "audit": audit_block()})
 
 
-def _csv_response(names, lists, total, factor, amount, method, warnings):
+def _csv_response(names, lists, extra: dict, warnings=()):
+    """Answer columns as CSV, with the audit block (and ``extra``) in response headers."""
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(names)
-    writer.writerows(zip(*[[repr(v) for v in col] for col in lists], strict=True))
+    writer.writerows(zip(*[[v if isinstance(v, int) else repr(v) for v in col]
+                           for col in lists], strict=True))
     response = Response(out.getvalue(), mimetype="text/csv")
     audit = audit_block()
     headers = {
@@ -265,12 +297,7 @@ def _csv_response(names, lists, total, factor, amount, method, warnings):
         "X-Interest-Kind": audit["interest"]["kind"],
         "X-Interest-Rate": repr(audit["interest"]["rate"]),
         "X-Interest-Source": audit["interest"]["source"],
-        "X-Method-Evaluation": method["evaluation"],
-        "X-Method-Fractional-Age": method["fractional_age"],
-        "X-Method-Approximation": method["approximation"],
-        "X-Total-Present-Value": repr(total),
-        "X-Factor": repr(factor),
-        "X-Amount": repr(amount),
+        **extra,
         "X-Service": f"{audit['service']['name']}/{audit['service']['version']}",
         "X-Computed-At": audit["computed_at"],
     }
