@@ -25,20 +25,25 @@ def _serve(args) -> int:
 
 def _check_tables(args) -> int:
     from service.bases import load_registry
+    from service.bases.registry import printable
 
     logging.basicConfig(level=logging.ERROR, format="%(message)s")
     try:
         registry = load_registry(args.directory)
     except OSError as exc:
-        print(f"error: {exc}", file=sys.stderr)
+        print(f"error: {printable(str(exc))}", file=sys.stderr)
         return 2
+    # Everything printed is escaped: a file name or a refused file's content could hold
+    # control characters (terminal escapes, new lines) or look-alike letters.
     for basis in registry.listing():
         marker = " (default)" if registry.defaults.get(basis.id) == basis.version else ""
-        print(f"ok       {basis.ref}{marker}  {basis.status}  {basis.digest}  {basis.file}")
+        print(printable(f"ok       {basis.ref}{marker}  {basis.status}  {basis.digest}  "
+                        f"{basis.file}"))
     for refusal in registry.refused:
-        print(f"REFUSED  {refusal.file}: {refusal.reason}")
+        print(f"REFUSED  {printable(refusal.file)}: {printable(refusal.detail)}")
     if not registry.bases and not registry.refused:
-        print(f"error: no basis files (*.toml) under {args.directory}", file=sys.stderr)
+        print(f"error: no basis files (*.toml) under {printable(str(args.directory))}",
+              file=sys.stderr)
         return 1
     return 1 if registry.refused else 0
 

@@ -1,12 +1,28 @@
-"""Strict JSON request bodies: one media type, UTF-8, no duplicates, no NaN or Infinity."""
+"""Strict JSON request bodies: one media type, UTF-8, no duplicates, no NaN or Infinity.
 
+Invalid input is reported cheaply: at most ``MAX_ERROR_PATHS`` error paths are listed, and
+validation stops taking list elements (items, lives) once that many have been found, so a
+large batch of bad items costs about as much as its first few. The paths listed are the
+first ones, in order, that validating the whole body would give, with the same messages.
+"""
+
+import contextvars
+import copy
 import json
 import math
+import weakref
 
 from flask import request
-from marshmallow import Schema, ValidationError
+from marshmallow import RAISE, Schema, ValidationError, fields, utils
+from marshmallow.decorators import PRE_LOAD, VALIDATES_SCHEMA
+from werkzeug.exceptions import RequestEntityTooLarge
 
-from service.api.problems import ProblemError
+from service.api.problems import MAX_ERROR_PATHS, ProblemError
+
+#: Members one JSON object below the top level may have. No object in a request has more
+#: than a dozen fields; the limit keeps unknown-field checking cheap (the top level has no
+#: limit: its unknown fields are counted, not each checked).
+MAX_OBJECT_MEMBERS = 1000
 
 
 class _BodyError(ValueError):
@@ -33,6 +49,39 @@ def _finite_float(text):
     return value
 
 
+def _read_body() -> bytes:
+    """Return the raw body; 413 when it is over the limit, however it is framed."""
+    limit = request.max_content_length
+    # With a Content-Length over the limit this raises 413 before reading anything.
+    raw = request.get_data(cache=False)
+    if limit is not None and request.content_length is None and len(raw) >= limit:
+        # A chunked body has no Content-Length: the stream stops quietly at the limit, so
+        # one more byte from the server's stream is what tells a body over the limit from
+        # one exactly at it.
+        if request.environ["wsgi.input"].read(1):
+            raise RequestEntityTooLarge()
+    return raw
+
+
+def _parse(text: str):
+    oversized = []
+
+    def pairs_hook(pairs):
+        obj = _no_duplicates(pairs)
+        if len(obj) > MAX_OBJECT_MEMBERS:
+            oversized.append(obj)
+        return obj
+
+    value = json.loads(text, object_pairs_hook=pairs_hook, parse_constant=_reject_constant,
+                       parse_float=_finite_float)
+    inner = [obj for obj in oversized if obj is not value]
+    if inner:
+        raise ProblemError(413, f"An object in the body has {len(inner[0])} members; an "
+                                f"object below the top level may have at most "
+                                f"{MAX_OBJECT_MEMBERS}.")
+    return value
+
+
 def json_body():
     """Return the parsed JSON body, or raise a 4xx problem saying what is wrong with it."""
     if request.mimetype != "application/json":
@@ -40,14 +89,13 @@ def json_body():
     charset = request.mimetype_params.get("charset", "utf-8").lower()
     if charset not in ("utf-8", "utf8"):
         raise ProblemError(415, f"Send the body as UTF-8 JSON, not {charset}.")
-    raw = request.get_data(cache=False)  # enforces MAX_CONTENT_LENGTH (413) before parsing
+    raw = _read_body()
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise ProblemError(400, f"The body is not valid UTF-8 (byte {exc.start}).") from None
     try:
-        return json.loads(text, object_pairs_hook=_no_duplicates,
-                          parse_constant=_reject_constant, parse_float=_finite_float)
+        return _parse(text)
     except _BodyError as exc:
         raise ProblemError(400, f"The body is not acceptable JSON: {exc}.") from None
     except json.JSONDecodeError as exc:
@@ -72,13 +120,171 @@ def flatten_errors(messages, prefix: str = "") -> dict[str, list[str]]:
     return flat
 
 
+# ---- validation that stops once enough errors are found ------------------------------------
+
+
+class _Budget:
+    """Error paths found so far in list elements, and list elements left unchecked."""
+
+    def __init__(self, cap: int):
+        self.cap = cap
+        self.found = 0
+        self.unchecked = 0
+
+    @property
+    def spent(self) -> bool:
+        return self.found >= self.cap
+
+
+_BUDGET: contextvars.ContextVar[_Budget | None] = contextvars.ContextVar("error_budget",
+                                                                         default=None)
+
+
+class _CappedList(fields.List):
+    """``fields.List`` that stops taking elements once the error budget is spent.
+
+    Element by element it does exactly what ``fields.List`` does; the elements it does not
+    take are counted as unchecked and contribute no error.
+    """
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        budget = _BUDGET.get()
+        if budget is None or not utils.is_collection(value):
+            return super()._deserialize(value, attr, data, **kwargs)
+        result = []
+        errors = {}
+        stopped = False
+        for idx, each in enumerate(value):
+            if budget.spent:
+                budget.unchecked += len(value) - idx
+                stopped = True
+                break
+            before = budget.found
+            try:
+                result.append(self.inner.deserialize(each, **kwargs))
+            except ValidationError as error:
+                if error.valid_data is not None:
+                    result.append(error.valid_data)
+                errors[idx] = error.messages
+                # Lists inside the element counted their own paths: count the element's
+                # paths once, in place of those.
+                budget.found = before + len(flatten_errors(error.messages))
+        if errors:
+            raise ValidationError(errors, valid_data=result)
+        if stopped:
+            # Errors elsewhere already fail the request; this list says nothing (its own
+            # validators would judge a list cut short).
+            raise ValidationError({})
+        return result
+
+
+_TWINS: dict[type, type] = {}
+
+
+def _twin_field(field: fields.Field) -> fields.Field | None:
+    """Return a copy of ``field`` whose lists stop early, or None when nothing changes."""
+    if type(field) is fields.List:
+        twin = copy.deepcopy(field)
+        twin.__class__ = _CappedList
+        inner = _twin_field(field.inner)
+        if inner is not None:
+            twin.inner = inner
+        return twin
+    if type(field) is fields.Nested and isinstance(field.nested, type) and \
+            issubclass(field.nested, Schema):
+        twin = copy.deepcopy(field)
+        twin.nested = _twin_class(field.nested)
+        return twin
+    return None
+
+
+def _twin_class(schema_class: type) -> type:
+    """The same schema with every plain ``List`` (at any depth) stopping early."""
+    if schema_class not in _TWINS:
+        overrides = {}
+        for name, field in schema_class._declared_fields.items():
+            twin = _twin_field(field)
+            if twin is not None:
+                overrides[name] = twin
+        # Not registered by name: string references keep meaning the original schemas.
+        overrides["Meta"] = type("Meta", (schema_class.Meta,), {"register": False})
+        _TWINS[schema_class] = type(schema_class.__name__, (schema_class,), overrides)
+    return _TWINS[schema_class]
+
+
+def _twin(schema: Schema) -> Schema:
+    return _twin_class(type(schema))(only=schema.only, exclude=schema.exclude,
+                                     many=schema.many, partial=schema.partial,
+                                     unknown=schema.unknown)
+
+
+_TWIN_INSTANCES: "weakref.WeakKeyDictionary[Schema, Schema]" = weakref.WeakKeyDictionary()
+
+
+def _twin_of(schema: Schema) -> Schema:
+    twin = _TWIN_INSTANCES.get(schema)
+    if twin is None:
+        twin = _TWIN_INSTANCES[schema] = _twin(schema)
+    return twin
+
+
+def validate_capped(schema: Schema, data: dict, *, cap: int = MAX_ERROR_PATHS):
+    """Load ``data`` with ``schema``, stopping once ``cap`` error paths are found.
+
+    Returns ``(result, errors, omitted, unchecked)``: the loaded data (None when invalid),
+    the first ``cap`` error paths in the order a full validation gives them, how many
+    further paths were found, and how many list elements were never checked. Unknown
+    top-level fields are listed after the others, in body order, and counted, not checked
+    one by one.
+    """
+    twin = _twin_of(schema)
+    hooks = twin._hooks[PRE_LOAD] or twin._hooks[VALIDATES_SCHEMA]
+    unknown: list[str] = []
+    if twin.unknown == RAISE and not hooks:
+        known = {f.data_key or name for name, f in twin.load_fields.items()}
+        unknown = [key for key in data if key not in known]
+        if unknown:
+            data = {key: value for key, value in data.items() if key in known}
+    budget = _Budget(cap)
+    token = _BUDGET.set(budget)
+    try:
+        result = twin.load(data)
+        messages = {}
+    except ValidationError as exc:
+        result, messages = None, exc.messages
+    finally:
+        _BUDGET.reset(token)
+    if not messages and not unknown:
+        return result, {}, 0, 0
+    errors: dict[str, list[str]] = {}
+    omitted = 0
+    for path, msgs in flatten_errors(messages).items():
+        if len(errors) < cap:
+            errors[path] = msgs
+        else:
+            omitted += 1
+    message = twin.error_messages["unknown"]
+    for n, key in enumerate(unknown):
+        if key in errors:
+            errors[key].append(message)
+        elif len(errors) < cap:
+            errors[key] = [message]
+        else:
+            omitted += len(unknown) - n
+            break
+    return None, errors, omitted, budget.unchecked
+
+
 def load(schema: Schema, data):
     """Validate ``data`` with ``schema``; raise a 422 problem with field paths if it fails."""
     if not isinstance(data, dict):
         raise ProblemError(422, "The body must be a JSON object.", errors={"body": [
             "Must be an object."]})
-    try:
-        return schema.load(data)
-    except ValidationError as exc:
-        raise ProblemError(422, "The request has invalid fields.",
-                           errors=flatten_errors(exc.messages)) from None
+    result, errors, omitted, unchecked = validate_capped(schema, data)
+    if result is not None:
+        return result
+    detail = "The request has invalid fields."
+    if unchecked:
+        detail += (f" Checking stopped once {MAX_ERROR_PATHS} error paths were found: "
+                   f"{unchecked} further list elements were not checked.")
+    raise ProblemError(422, detail, errors=errors, errors_omitted=omitted)

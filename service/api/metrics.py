@@ -47,9 +47,26 @@ def publish_registry(registry) -> None:
     BASES_REFUSED.set(len(registry.refused))
 
 
+#: Methods that keep their own label value; any other is counted as "other", so a caller
+#: cannot add series (and grow the metrics files) by inventing methods.
+METHODS = frozenset({"GET", "HEAD", "POST", "PUT", "DELETE", "PATCH", "OPTIONS"})
+#: The route label of a request that matched no route (whatever its path).
+UNMATCHED = "unmatched"
+
+
+def method_label(method: str) -> str:
+    return method if method in METHODS else "other"
+
+
+def status_label(status: int) -> str:
+    return str(status) if 100 <= status <= 599 else "other"
+
+
 def observe(route: str, method: str, status: int, seconds: float) -> None:
-    REQUESTS.labels(route, method, str(status)).inc()
-    LATENCY.labels(route, method, str(status)).observe(seconds)
+    """Count one answered request; ``route`` is a route rule or ``UNMATCHED``."""
+    labels = (route, method_label(method), status_label(status))
+    REQUESTS.labels(*labels).inc()
+    LATENCY.labels(*labels).observe(seconds)
 
 
 @bp.get("/metrics")

@@ -18,7 +18,7 @@ access_log = logging.getLogger("service.access")
 
 def _route() -> str:
     rule = request.url_rule
-    return rule.rule if rule is not None else "unmatched"
+    return rule.rule if rule is not None else metrics.UNMATCHED
 
 
 def _check_token(app: Flask) -> None:

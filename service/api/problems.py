@@ -10,6 +10,8 @@ from service.api.audit import audit_block, request_id
 log = logging.getLogger(__name__)
 
 PROBLEM_BASE = "https://annuity-factor-service.invalid/problems/"
+#: Error paths one problem lists; further ones are counted in ``errors_omitted``.
+MAX_ERROR_PATHS = 100
 _TYPES = {
     400: "malformed-request",
     401: "unauthorised",
@@ -27,18 +29,26 @@ class ProblemError(Exception):
     """An error with an HTTP status, raised anywhere in the web layer."""
 
     def __init__(self, status: int, detail: str, *, title: str | None = None,
-                 errors: dict[str, list[str]] | None = None):
+                 errors: dict[str, list[str]] | None = None, errors_omitted: int = 0):
         super().__init__(detail)
         self.status = status
         self.detail = detail
         self.title = title
         self.errors = errors
+        self.errors_omitted = errors_omitted
 
 
 def problem_response(status: int, detail: str, *, title: str | None = None,
-                     errors: dict | None = None):
+                     errors: dict | None = None, errors_omitted: int = 0):
     from http import HTTPStatus
 
+    if errors and len(errors) > MAX_ERROR_PATHS:
+        paths = list(errors)
+        errors_omitted += len(paths) - MAX_ERROR_PATHS
+        errors = {path: errors[path] for path in paths[:MAX_ERROR_PATHS]}
+    if errors_omitted:
+        detail += (f" The first {len(errors or ())} error paths are listed; "
+                   f"{errors_omitted} more are counted in errors_omitted.")
     body = {
         "type": PROBLEM_BASE + _TYPES.get(status, "error"),
         "title": title or HTTPStatus(status).phrase,
@@ -48,6 +58,8 @@ def problem_response(status: int, detail: str, *, title: str | None = None,
     }
     if errors:
         body["errors"] = errors
+    if errors_omitted:
+        body["errors_omitted"] = errors_omitted
     body["audit"] = audit_block()
     response = jsonify(body)
     response.status_code = status
@@ -58,7 +70,8 @@ def problem_response(status: int, detail: str, *, title: str | None = None,
 def init_app(app: Flask) -> None:
     @app.errorhandler(ProblemError)
     def _problem(exc: ProblemError):
-        return problem_response(exc.status, exc.detail, title=exc.title, errors=exc.errors)
+        return problem_response(exc.status, exc.detail, title=exc.title, errors=exc.errors,
+                                errors_omitted=exc.errors_omitted)
 
     @app.errorhandler(HTTPException)
     def _http(exc: HTTPException):

@@ -418,7 +418,12 @@ class ProblemSchema(Schema):
     status = fields.Integer(required=True)
     detail = fields.String(required=True)
     request_id = fields.String(required=True)
-    errors = fields.Dict(keys=fields.String(), values=fields.List(fields.String()))
+    errors = fields.Dict(keys=fields.String(), values=fields.List(fields.String()), metadata={
+        "description": "Field path to messages, for invalid input; at most 100 paths."})
+    errors_omitted = fields.Integer(metadata={
+        "description": "Further error paths found but not listed (present only when some "
+                       "were left out). Checking stops once 100 paths are found, so the "
+                       "detail may also say how many list elements were not checked."})
     audit = fields.Nested(AuditSchema, required=True)
 
 

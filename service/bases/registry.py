@@ -2,7 +2,13 @@
 
 A basis file is TOML, one file per basis version, anywhere under the folder (``*.toml``).
 Mortality data are CSV files named relative to the basis file, or a law with parameters.
-Each refused file is logged with its reason; the others still load.
+Every file read must lie inside the folder once symbolic links are resolved.
+
+Each refused file gets a short reason, made only of fixed words, names the service chose
+and line numbers (never text read from a file), which ``/readyz`` may show to anyone; the
+detail, which may quote the file, goes to the log and to ``check-tables``. A bad file is
+refused, never raised, whatever is in it; the others still load. Two files claiming the
+same id and version are both refused.
 """
 
 import hashlib
@@ -12,6 +18,7 @@ import logging
 import math
 import os
 import re
+import stat
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,10 +38,27 @@ STATUSES = ("approved", "demo", "retired")
 SEXES = ("female", "male", "unisex")
 LAWS = ("makeham", "gompertz")
 _LAW_PARAMETERS = {"makeham": ("A", "B", "c"), "gompertz": ("B", "c")}
+#: Basis ids and versions: lowercase ASCII letters, digits, '.' and '-', starting and ending
+#: with a letter or digit (so no control characters and no look-alike letters).
+_NAME = re.compile(r"[a-z0-9](?:[a-z0-9.-]*[a-z0-9])?")
+MAX_ID_LENGTH = 64
+MAX_VERSION_LENGTH = 32
+#: The largest basis or data file read (the shipped ones are a few kilobytes).
+MAX_FILE_BYTES = 16 * 1024 * 1024
+#: Nesting a basis file may have (the format itself needs four levels).
+MAX_DEPTH = 8
 
 
 class BasisFileError(Exception):
-    """A basis file or its data cannot be accepted; the message names where and why."""
+    """A basis file or its data cannot be accepted.
+
+    The message (the detail) names where and why and may quote the file; ``reason`` says
+    the same briefly with no text taken from any file.
+    """
+
+    def __init__(self, detail: str, *, reason: str):
+        super().__init__(detail)
+        self.reason = reason
 
 
 class UnknownBasisError(LookupError):
@@ -78,8 +102,24 @@ class Basis:
 
 @dataclass(frozen=True)
 class Refusal:
+    """A refused basis file: ``reason`` is safe to show anyone, ``detail`` is for the log."""
+
     file: str
     reason: str
+    detail: str = ""
+
+
+def printable(text: str) -> str:
+    """Return ``text`` with everything but printable ASCII escaped (for logs and terminals)."""
+    if text.isascii() and text.isprintable():
+        return text
+    return "".join(c if " " <= c <= "~" else c.encode("unicode_escape").decode("ascii")
+                   for c in text)
+
+
+def _refuse(refused: list, file: str, reason: str, detail: str) -> None:
+    refused.append(Refusal(file, reason, detail))
+    log.warning("refused basis file %s: %s", printable(file), printable(detail))
 
 
 @dataclass(frozen=True, eq=False)
@@ -113,31 +153,40 @@ def load_registry(directory) -> Registry:
     root = Path(directory)
     if not root.is_dir():
         raise NotADirectoryError(f"tables folder {root} is not a readable directory")
+    real_root = root.resolve()
     files = sorted(_basis_files(root))
     loaded: list[Basis] = []
     refused: list[Refusal] = []
     for path in files:
         name = str(path.relative_to(root))
         try:
-            loaded.append(load_basis(path, name))
+            loaded.append(load_basis(path, name, root=real_root))
         except BasisFileError as exc:
-            refused.append(Refusal(name, str(exc)))
-            log.warning("refused basis file %s: %s", name, exc)
-    bases: dict[tuple[str, str], Basis] = {}
+            _refuse(refused, name, exc.reason, str(exc))
+        except Exception as exc:  # a bad file is refused, never raised
+            _refuse(refused, name, "the file could not be loaded",
+                    f"{name}: could not be loaded ({type(exc).__name__}: {exc})")
+            log.debug("loading %s failed", printable(name), exc_info=True)
+    claims: dict[tuple[str, str], list[Basis]] = {}
     for basis in loaded:
-        key = (basis.id, basis.version)
-        if key in bases:
-            reason = f"{basis.ref} is already defined by {bases[key].file}"
-            refused.append(Refusal(basis.file, reason))
-            log.warning("refused basis file %s: %s", basis.file, reason)
+        claims.setdefault((basis.id, basis.version), []).append(basis)
+    bases: dict[tuple[str, str], Basis] = {}
+    for key, claimants in claims.items():
+        if len(claimants) == 1:
+            bases[key] = claimants[0]
             continue
-        bases[key] = basis
+        # Neither file can be trusted to be the one meant: refuse every claimant.
+        names = [b.file for b in claimants]
+        for basis in claimants:
+            others = ", ".join(n for n in names if n != basis.file)
+            _refuse(refused, basis.file, "another file defines the same id and version",
+                    f"{basis.file}: {basis.ref} is also defined by {others}; every file "
+                    f"defining it is refused ({', '.join(names)})")
     defaults, conflicts = _defaults(bases.values())
     for basis in conflicts:
         del bases[(basis.id, basis.version)]
-        reason = f"another version of {basis.id} is also marked default"
-        refused.append(Refusal(basis.file, reason))
-        log.warning("refused basis file %s: %s", basis.file, reason)
+        _refuse(refused, basis.file, "another version of this id is also marked default",
+                f"{basis.file}: another version of {basis.id} is also marked default")
     defaults, _ = _defaults(bases.values())
     return Registry(MappingProxyType(bases), MappingProxyType(defaults), tuple(refused))
 
@@ -186,70 +235,157 @@ def _defaults(bases):
     return defaults, conflicts
 
 
-def _require(doc: dict, key: str, kind, where: str):
+def _require(doc: dict, key: str, kind, name: str, section: str = ""):
+    where = f"{name} {section}" if section else name
+    brief = f"{section} " if section else ""
     if key not in doc:
-        raise BasisFileError(f"{where}: missing '{key}'")
+        raise BasisFileError(f"{where}: missing '{key}'", reason=f"{brief}'{key}' is missing")
     value = doc[key]
     if kind is float and isinstance(value, int) and not isinstance(value, bool):
         value = float(value)
     if not isinstance(value, kind) or isinstance(value, bool) and kind is not bool:
-        raise BasisFileError(f"{where}: '{key}' must be {kind.__name__}")
+        raise BasisFileError(f"{where}: '{key}' must be {kind.__name__}",
+                             reason=f"{brief}'{key}' must be {kind.__name__}")
     return value
 
 
-def load_basis(path: Path, name: str) -> Basis:
-    """Read, validate and hash one basis file; raise BasisFileError naming the problem."""
+def _read_inside(path: Path, root: Path, label: str, what: str, brief: str = "") -> bytes:
+    """Read a regular file that lies inside ``root`` once links are resolved.
+
+    ``label`` starts the detail of a refusal and ``brief`` its short reason.
+    """
     try:
-        raw = path.read_bytes()
+        real = path.resolve(strict=True)
+        info = real.stat()
+    except (OSError, RuntimeError) as exc:  # RuntimeError: a loop of symbolic links
+        strerror = getattr(exc, "strerror", None) or str(exc)
+        raise BasisFileError(f"{label}: cannot read the {what} ({strerror})",
+                             reason=f"{brief}cannot read the {what}") from exc
+    if not real.is_relative_to(root):
+        raise BasisFileError(f"{label}: the {what} is a link to {real}, outside the tables "
+                             "folder", reason=f"{brief}the {what} links outside the tables folder")
+    if not stat.S_ISREG(info.st_mode):
+        raise BasisFileError(f"{label}: the {what} is not a regular file",
+                             reason=f"{brief}the {what} is not a regular file")
+    too_large = BasisFileError(f"{label}: the {what} is larger than {MAX_FILE_BYTES} bytes",
+                               reason=f"{brief}the {what} is too large")
+    if info.st_size > MAX_FILE_BYTES:
+        raise too_large
+    try:
+        with open(real, "rb") as handle:
+            raw = handle.read(MAX_FILE_BYTES + 1)
     except OSError as exc:
-        raise BasisFileError(f"cannot read the file ({exc.strerror})") from exc
+        raise BasisFileError(f"{label}: cannot read the {what} ({exc.strerror})",
+                             reason=f"{brief}cannot read the {what}") from exc
+    if len(raw) > MAX_FILE_BYTES:
+        raise too_large
+    return raw
+
+
+def _too_deep(value) -> bool:
+    """Whether ``value`` nests tables or arrays more than MAX_DEPTH deep (no recursion)."""
+    stack = [(value, 0)]
+    while stack:
+        item, depth = stack.pop()
+        if isinstance(item, dict | list):
+            if depth >= MAX_DEPTH:
+                return True
+            children = item.values() if isinstance(item, dict) else item
+            stack.extend((child, depth + 1) for child in children)
+    return False
+
+
+def _check_name(value: str, what: str, limit: int, name: str) -> None:
+    if len(value) <= limit and _NAME.fullmatch(value):
+        return
+    raise BasisFileError(
+        f"{name}: {what} {ascii(value)} is not allowed: use 1 to {limit} lowercase letters, "
+        "digits, '.' and '-', starting and ending with a letter or digit",
+        reason=f"{what} not allowed (lowercase letters, digits, '.' and '-' only)")
+
+
+def _toml_position(exc: tomllib.TOMLDecodeError) -> str:
+    found = re.search(r"\(at (line \d+, column \d+|end of document)\)$", str(exc))
+    return f" at {found.group(1)}" if found else ""
+
+
+def load_basis(path: Path, name: str, *, root: Path | None = None) -> Basis:
+    """Read, validate and hash one basis file; raise BasisFileError naming the problem.
+
+    Every file read (the basis file and its data) must lie inside ``root`` (by default the
+    basis file's folder) once symbolic links are resolved.
+    """
+    root = Path(root).resolve() if root is not None else path.parent.resolve()
+    raw = _read_inside(path, root, name, "file")
     try:
         doc = tomllib.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
-        raise BasisFileError(f"not valid TOML: {exc}") from exc
+    except UnicodeDecodeError as exc:
+        raise BasisFileError(f"{name}: not valid TOML: {exc}",
+                             reason="not valid TOML (not UTF-8)") from exc
+    except tomllib.TOMLDecodeError as exc:
+        raise BasisFileError(f"{name}: not valid TOML: {exc}",
+                             reason=f"not valid TOML{_toml_position(exc)}") from exc
+    except RecursionError as exc:
+        raise BasisFileError(f"{name}: not valid TOML: nested too deeply to read",
+                             reason="not valid TOML: nested too deeply") from exc
+    if _too_deep(doc):
+        raise BasisFileError(f"{name}: tables or arrays nested more than {MAX_DEPTH} deep",
+                             reason="nested too deeply")
 
     basis_id = _require(doc, "id", str, name)
     version = _require(doc, "version", str, name)
-    if not basis_id or "@" in basis_id or "/" in basis_id or not version or "@" in version:
-        raise BasisFileError(f"{name}: id and version must be non-empty and free of '@' and '/'")
+    _check_name(basis_id, "id", MAX_ID_LENGTH, name)
+    _check_name(version, "version", MAX_VERSION_LENGTH, name)
     source = _require(doc, "source", str, name)
     if not source.strip():
-        raise BasisFileError(f"{name}: 'source' must say where the basis comes from")
+        raise BasisFileError(f"{name}: 'source' must say where the basis comes from",
+                             reason="'source' must say where the basis comes from")
     status = _require(doc, "status", str, name)
     if status not in STATUSES:
-        raise BasisFileError(f"{name}: status '{status}' is not one of {', '.join(STATUSES)}")
+        raise BasisFileError(f"{name}: status '{status}' is not one of {', '.join(STATUSES)}",
+                             reason=f"status is not one of {', '.join(STATUSES)}")
     interest = _require(doc, "interest", dict, name)
     if interest.get("kind", "flat") != "flat":
-        raise BasisFileError(f"{name}: interest kind '{interest.get('kind')}' is not supported")
-    rate = _require(interest, "rate", float, f"{name} [interest]")
+        raise BasisFileError(f"{name}: interest kind '{interest.get('kind')}' is not supported",
+                             reason="[interest] kind is not supported")
+    rate = _require(interest, "rate", float, name, "[interest]")
     if not (math.isfinite(rate) and rate > -1):
-        raise BasisFileError(f"{name} [interest]: rate {rate} must be finite and above -1")
+        raise BasisFileError(f"{name} [interest]: rate {rate} must be finite and above -1",
+                             reason="[interest] rate must be finite and above -1")
     methods = doc.get("methods", {})
+    if not isinstance(methods, dict):
+        raise BasisFileError(f"{name}: [methods] must be a table",
+                             reason="[methods] must be a table")
     fractional_age = methods.get("fractional_age", "udd")
     approximation = methods.get("mthly", "exact")
     if fractional_age not in ASSUMPTIONS:
         raise BasisFileError(f"{name} [methods]: fractional_age '{fractional_age}' is not one "
-                             f"of {', '.join(ASSUMPTIONS)}")
+                             f"of {', '.join(ASSUMPTIONS)}",
+                             reason=f"[methods] fractional_age is not one of "
+                                    f"{', '.join(ASSUMPTIONS)}")
     if approximation not in APPROXIMATIONS:
         raise BasisFileError(f"{name} [methods]: mthly '{approximation}' is not one of "
-                             f"{', '.join(APPROXIMATIONS)}")
+                             f"{', '.join(APPROXIMATIONS)}",
+                             reason=f"[methods] mthly is not one of {', '.join(APPROXIMATIONS)}")
 
     mortality = _require(doc, "mortality", dict, name)
     sexes = tuple(s for s in SEXES if s in mortality)
     unknown = set(mortality) - set(SEXES)
     if unknown:
-        raise BasisFileError(f"{name} [mortality]: unknown sex '{sorted(unknown)[0]}'")
+        raise BasisFileError(f"{name} [mortality]: unknown sex {ascii(sorted(unknown)[0])}",
+                             reason="[mortality] unknown sex")
     if sexes not in (("unisex",), ("female", "male")):
-        raise BasisFileError(f"{name} [mortality]: give either 'unisex' or both 'female' and "
-                             "'male'")
+        message = "give either 'unisex' or both 'female' and 'male'"
+        raise BasisFileError(f"{name} [mortality]: {message}", reason=f"[mortality] {message}")
     tables = []
     data_digests = {}
     for sex in sexes:
         spec = mortality[sex]
-        where = f"{name} [mortality.{sex}]"
+        section = f"[mortality.{sex}]"
         if not isinstance(spec, dict):
-            raise BasisFileError(f"{where}: must be a table")
-        table, digest_part = _load_table(path.parent, spec, where)
+            raise BasisFileError(f"{name} {section}: must be a table",
+                                 reason=f"{section} must be a table")
+        table, digest_part = _load_table(path.parent, root, spec, name, section)
         tables.append(table)
         if digest_part:
             data_digests[spec["file"]] = digest_part
@@ -257,11 +393,13 @@ def load_basis(path: Path, name: str) -> Basis:
     digest = content_digest(doc, data_digests)
     recorded = doc.get("digest")
     if recorded is None and status != "demo":
-        raise BasisFileError(f"{name}: a basis with status '{status}' must record its digest; add "
-                             f'digest = "{digest}" after checking the content')
+        raise BasisFileError(f"{name}: a basis with status '{status}' must record its "
+                             f'digest; add digest = "{digest}" after checking the content',
+                             reason=f"a basis with status '{status}' must record its digest")
     if recorded is not None and recorded != digest:
         raise BasisFileError(f"{name}: recorded digest {recorded} does not match the content "
-                             f"({digest}); the basis or its data changed")
+                             f"({digest}); the basis or its data changed",
+                             reason="the recorded digest does not match the content")
     return Basis(
         id=basis_id, version=version, title=str(doc.get("title", basis_id)), status=status,
         default=bool(doc.get("default", False)), purpose=str(doc.get("purpose", "")),
@@ -304,76 +442,96 @@ def _describe(spec: dict, table: MortalityTable) -> dict:
     return out
 
 
-def _load_table(folder: Path, spec: dict, where: str):
+def _load_table(folder: Path, root: Path, spec: dict, name: str, section: str):
+    where = f"{name} {section}"
     if "source" not in spec or not isinstance(spec["source"], str) or not spec["source"].strip():
-        raise BasisFileError(f"{where}: every table must name its 'source'")
+        raise BasisFileError(f"{where}: every table must name its 'source'",
+                             reason=f"{section} every table must name its 'source'")
     if ("law" in spec) == ("file" in spec):
-        raise BasisFileError(f"{where}: give exactly one of 'law' or 'file'")
+        raise BasisFileError(f"{where}: give exactly one of 'law' or 'file'",
+                             reason=f"{section} give exactly one of 'law' or 'file'")
     if "law" in spec:
-        return _law_table(spec, where), ""
-    return _csv_table(folder, spec, where)
+        return _law_table(spec, name, section), ""
+    return _csv_table(folder, root, spec, name, section)
 
 
-def _law_table(spec: dict, where: str) -> MortalityTable:
+def _law_table(spec: dict, name: str, section: str) -> MortalityTable:
+    where = f"{name} {section}"
     law = spec["law"]
     if law not in LAWS:
-        raise BasisFileError(f"{where}: unknown law '{law}'; known: {', '.join(LAWS)}")
-    params = _require(spec, "parameters", dict, where)
+        raise BasisFileError(f"{where}: unknown law {ascii(law)}; known: {', '.join(LAWS)}",
+                             reason=f"{section} unknown law; known: {', '.join(LAWS)}")
+    params = _require(spec, "parameters", dict, name, section)
     values = {}
     for key in _LAW_PARAMETERS[law]:
-        values[key] = _require(params, key, float, f"{where} parameters")
+        values[key] = _require(params, key, float, name, f"{section} parameters")
     extra = set(params) - set(_LAW_PARAMETERS[law])
     if extra:
-        raise BasisFileError(f"{where}: unexpected parameter '{sorted(extra)[0]}' for {law}")
-    first_age = _require(spec, "min_age", int, where)
+        raise BasisFileError(f"{where}: unexpected parameter {ascii(sorted(extra)[0])} for "
+                             f"{law}", reason=f"{section} unexpected parameter for {law}")
+    first_age = _require(spec, "min_age", int, name, section)
     factors = spec.get("select_factors", [])
     try:
         return table_from_law(law, values, first_age, select_factors=factors)
-    except (TableError, ValueError) as exc:
-        raise BasisFileError(f"{where}: {exc}") from exc
+    except (TableError, ValueError, TypeError, OverflowError) as exc:
+        raise BasisFileError(f"{where}: {exc}",
+                             reason=f"{section} the law's parameters give no valid table") \
+            from exc
 
 
-def _csv_table(folder: Path, spec: dict, where: str):
+class _Data:
+    """Where in a data file a problem lies, for the detail and for the brief reason."""
+
+    def __init__(self, name: str, section: str, rel: str):
+        self.label = f"{name} {section} {rel}"
+        self.brief = f"{section} {ascii(rel)[1:-1]}"
+
+    def error(self, line: int | None, detail: str, reason: str) -> BasisFileError:
+        at = f" line {line}" if line else ""
+        return BasisFileError(f"{self.label}{at}: {detail}",
+                              reason=f"{self.brief}{at}: {reason}")
+
+
+def _csv_table(folder: Path, root: Path, spec: dict, name: str, section: str):
     rel = spec["file"]
     if not isinstance(rel, str) or Path(rel).is_absolute() or ".." in Path(rel).parts:
-        raise BasisFileError(f"{where}: 'file' must be a path inside the tables folder")
-    path = folder / rel
-    try:
-        raw = path.read_bytes()
-    except OSError as exc:
-        raise BasisFileError(f"{where}: cannot read data file {rel} ({exc.strerror})") from exc
+        raise BasisFileError(f"{name} {section}: 'file' must be a path inside the tables "
+                             "folder",
+                             reason=f"{section} 'file' must be a path inside the tables folder")
+    at = _Data(name, section, rel)
+    raw = _read_inside(folder / rel, root, at.label, "data file", f"{at.brief}: ")
     normalised = raw.replace(b"\r\n", b"\n")
     digest = hashlib.sha256(normalised).hexdigest()
-    label = f"{where} {rel}"
     try:
         # Parse the very bytes that were hashed.
         frame = pd.read_csv(io.BytesIO(normalised), dtype=str, keep_default_na=False,
                             comment="#")
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise BasisFileError(f"{label}: not a readable CSV ({exc})") from exc
-    columns = list(frame.columns)
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
+            ValueError) as exc:
+        raise at.error(None, f"not a readable CSV ({exc})", "not a readable CSV") from exc
+    columns = [str(c) for c in frame.columns]
     select_cols = [c for c in columns if c.startswith("q_select_")]
     expected = ["age", "q"] + [f"q_select_{s}" for s in range(len(select_cols))]
     if columns != expected:
-        raise BasisFileError(f"{label}: columns must be {','.join(expected)} "
-                             f"(got {','.join(columns)})")
+        raise at.error(None, f"columns must be {','.join(expected)} (got {','.join(columns)})",
+                       "the columns must be age,q then q_select_0, q_select_1, ...")
     lines = _data_line_numbers(normalised, len(frame))
-    ages = _numbers(frame["age"], lines, label, "age")
+    ages = _numbers(frame["age"], lines, at, "age")
+    if len(ages) == 0:
+        raise at.error(None, "no rows", "no rows")
     if not np.all(ages == np.round(ages)):
         bad = int(np.flatnonzero(ages != np.round(ages))[0])
-        raise BasisFileError(f"{label} line {lines[bad]}: age {ages[bad]} is not whole")
+        raise at.error(lines[bad], f"age {ages[bad]} is not whole", "an age is not whole")
     ages = ages.astype(np.int64)
     steps = np.diff(ages)
-    if len(ages) == 0:
-        raise BasisFileError(f"{label}: no rows")
     if (steps != 1).any():
         bad = int(np.flatnonzero(steps != 1)[0]) + 1
-        raise BasisFileError(f"{label} line {lines[bad]}: age {ages[bad]} follows age "
-                             f"{ages[bad - 1]}; ages must run without gaps")
-    q = _rates(frame["q"], lines, ages, label, "q")
+        raise at.error(lines[bad], f"age {ages[bad]} follows age {ages[bad - 1]}; ages must "
+                                   "run without gaps", "ages must run up by one, without gaps")
+    q = _rates(frame["q"], lines, ages, at, "q")
     if q[-1] != 1.0:
-        raise BasisFileError(f"{label} line {lines[-1]}: the table must close with q = 1 at its "
-                             f"last age ({ages[-1]})")
+        raise at.error(lines[-1], f"the table must close with q = 1 at its last age "
+                                  f"({ages[-1]})", "the table must close with q = 1")
     first_age = int(ages[0])
     if not select_cols:
         return MortalityTable(first_age, q), digest
@@ -382,16 +540,17 @@ def _csv_table(folder: Path, spec: dict, where: str):
     n_sel = int(np.argmin(filled)) if not filled.all() else len(frame)
     if filled[n_sel:].any():
         bad = n_sel + int(np.argmax(filled[n_sel:]))
-        raise BasisFileError(f"{label} line {lines[bad]}: select rates resume after a blank "
-                             "row; blanks are allowed only at the end")
+        raise at.error(lines[bad], "select rates resume after a blank row; blanks are allowed "
+                                   "only at the end", "select rates resume after a blank row")
     if n_sel == 0:
-        raise BasisFileError(f"{label}: select columns are present but empty")
-    select = np.column_stack([_rates(frame[c].iloc[:n_sel], lines, ages, label, c)
+        raise at.error(None, "select columns are present but empty",
+                       "select columns are present but empty")
+    select = np.column_stack([_rates(frame[c].iloc[:n_sel], lines, ages, at, c)
                               for c in select_cols])
     try:
         return MortalityTable(first_age, q, first_age, select), digest
     except TableError as exc:
-        raise BasisFileError(f"{label}: {exc}") from exc
+        raise at.error(None, str(exc), "the select rates do not make a valid table") from exc
 
 
 def _data_line_numbers(text: bytes, rows: int) -> list[int]:
@@ -405,24 +564,24 @@ def _data_line_numbers(text: bytes, rows: int) -> list[int]:
     return numbers[1:rows + 1] + [0] * max(0, rows + 1 - len(numbers))
 
 
-def _numbers(column, lines, label, what) -> np.ndarray:
+def _numbers(column, lines, at: _Data, what) -> np.ndarray:
     values = np.empty(len(column))
     for r, text in enumerate(column):
         try:
             values[r] = float(text)
         except ValueError:
-            raise BasisFileError(f"{label} line {lines[r]}: {what} '{text}' is not a number") \
-                from None
+            raise at.error(lines[r], f"{what} {ascii(text)} is not a number",
+                           f"{what} is not a number") from None
         if not math.isfinite(values[r]):
-            raise BasisFileError(f"{label} line {lines[r]}: {what} is {text}")
+            raise at.error(lines[r], f"{what} is {ascii(text)}", f"{what} is not finite")
     return values
 
 
-def _rates(column, lines, ages, label, what) -> np.ndarray:
-    q = _numbers(column, lines, label, what)
+def _rates(column, lines, ages, at: _Data, what) -> np.ndarray:
+    q = _numbers(column, lines, at, what)
     bad = (q < 0) | (q > 1)
     if bad.any():
         r = int(np.flatnonzero(bad)[0])
-        raise BasisFileError(f"{label} line {lines[r]}: {what} at age {ages[r]} is {q[r]}, "
-                             "outside [0, 1]")
+        raise at.error(lines[r], f"{what} at age {ages[r]} is {q[r]}, outside [0, 1]",
+                       f"{what} outside [0, 1]")
     return q

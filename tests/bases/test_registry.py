@@ -103,21 +103,26 @@ def served_over_http(folder) -> list[tuple[str, str]]:
 
 
 def assert_refused_beside_sound(folder, caplog, bad_file: str, *fragments: str) -> str:
-    """Check the refusal of ``bad_file`` and that the sound basis is still served."""
+    """Check the refusal of ``bad_file`` and that the sound basis is still served.
+
+    The ``fragments`` must be in the refusal's detail, which is logged; its brief reason
+    (the one /readyz shows) is printable ASCII on one line. Returns the detail.
+    """
     registry = load_logged(folder, caplog)
     refusals = [r for r in registry.refused if r.file == bad_file]
     assert len(refusals) == 1, registry.refused
-    reason = refusals[0].reason
+    detail = refusals[0].detail
     for fragment in fragments:
-        assert fragment in reason, (fragment, reason)
+        assert fragment in detail, (fragment, detail)
+    assert refusals[0].reason.isascii() and refusals[0].reason.isprintable()
     logged = [rec.getMessage() for rec in caplog.records
               if rec.name == REGISTRY_LOGGER and rec.levelno >= logging.WARNING]
-    assert any(bad_file in message and reason in message for message in logged), logged
+    assert any(bad_file in message and detail in message for message in logged), logged
     # Nothing but the sound basis was loaded, and it resolves.
     assert list(registry.bases) == [(SOUND_ID, SOUND_VERSION)]
     assert registry.resolve(SOUND_ID).ref == f"{SOUND_ID}@{SOUND_VERSION}"
     assert served_over_http(folder) == [(SOUND_ID, SOUND_VERSION)]
-    return reason
+    return detail
 
 
 # ---- refusals: one test per case ------------------------------------------------------------
@@ -208,7 +213,7 @@ def test_approved_basis_with_its_digest_recorded_loads(folder):
     # The status is part of the content, so the demo digest no longer matches.
     registry = load_registry(folder)
     assert [r.file for r in registry.refused] == ["ok.toml"]
-    fixed = registry.refused[0].reason.split("(")[-1].split(")")[0]
+    fixed = registry.refused[0].detail.split("(")[-1].split(")")[0]
     write(folder, "ok.toml", basis_text("fernhollow-ok", "2026.1", law_mortality(),
                                         status="approved", digest=fixed))
     assert load_registry(folder).resolve("fernhollow-ok").status == "approved"
@@ -257,10 +262,22 @@ def test_data_file_outside_the_folder_is_refused(folder, caplog):
     assert_refused_beside_sound(folder, caplog, "bad.toml", "bad.toml", "inside the tables")
 
 
-def test_same_id_and_version_twice_refuses_the_second_file(folder, caplog):
-    write(folder, "zz-copy.toml", basis_text(SOUND_ID, SOUND_VERSION, law_mortality()))
-    assert_refused_beside_sound(folder, caplog, "zz-copy.toml", f"{SOUND_ID}@{SOUND_VERSION}",
-                                SOUND_FILE)
+def test_same_id_and_version_in_two_files_refuses_both(folder, caplog):
+    # Neither file can be trusted to be the one meant, whatever order they sort in.
+    write(folder, "aa-copy.toml", basis_text(SOUND_ID, SOUND_VERSION, law_mortality()))
+    registry = load_logged(folder, caplog)
+    refused = {r.file: r for r in registry.refused}
+    assert set(refused) == {"aa-copy.toml", SOUND_FILE}
+    for refusal in refused.values():
+        assert "same id and version" in refusal.reason
+        # Each detail names the basis and both files.
+        for fragment in (f"{SOUND_ID}@{SOUND_VERSION}", "aa-copy.toml", SOUND_FILE):
+            assert fragment in refusal.detail, refusal.detail
+    logged = " ".join(r.getMessage() for r in caplog.records if r.name == REGISTRY_LOGGER)
+    assert "aa-copy.toml" in logged and SOUND_FILE in logged
+    assert registry.bases == {}
+    with pytest.raises(UnknownBasisError):
+        registry.resolve(f"{SOUND_ID}@{SOUND_VERSION}")
 
 
 # ---- versions and references ---------------------------------------------------------------
@@ -314,10 +331,11 @@ def test_two_versions_both_marked_default_are_refused(folder, caplog):
     write(folder, "b.toml", basis_text("fernhollow-clash", "2026.1", law_mortality(),
                                        default=True))
     registry = load_logged(folder, caplog)
-    refused = {r.file: r.reason for r in registry.refused}
+    refused = {r.file: r for r in registry.refused}
     assert set(refused) == {"a.toml", "b.toml"}
-    for reason in refused.values():
-        assert "default" in reason and "fernhollow-clash" in reason
+    for refusal in refused.values():
+        assert "default" in refusal.reason
+        assert "default" in refusal.detail and "fernhollow-clash" in refusal.detail
     messages = " ".join(r.getMessage() for r in caplog.records if r.name == REGISTRY_LOGGER)
     assert "a.toml" in messages and "b.toml" in messages
     for ref in ("fernhollow-clash", "fernhollow-clash@2025.1", "fernhollow-clash@2026.1"):
@@ -365,7 +383,7 @@ def test_recorded_digest_refuses_a_changed_table(folder, caplog):
     write(folder, "data/recorded.csv", csv_text(dict(RATES) | {65: 0.0177}))
     registry = load_logged(folder, caplog)
     assert [r.file for r in registry.refused] == ["recorded.toml"]
-    assert recorded in registry.refused[0].reason
+    assert recorded in registry.refused[0].detail
     assert registry.resolve(SOUND_ID).version == SOUND_VERSION
 
 

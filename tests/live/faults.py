@@ -213,7 +213,7 @@ def scenario_bad_tables() -> dict:
         reason = next((r for r in ready["refused"] if "fernhollow-annuitants-2025.1" in r), "")
         corrupt = {"readyz": ready_status, "reason": reason, "good_basis_served": served,
                    "bases_loaded": len(loaded),
-                   "passed": ready_status == 503 and "1.5" in reason and served == 200
+                   "passed": ready_status == 503 and "outside [0, 1]" in reason and served == 200
                    and "fernhollow-annuitants@2025.1" not in loaded and len(loaded) == 4}
     finally:
         shutil.rmtree(folder, ignore_errors=True)
