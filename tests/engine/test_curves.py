@@ -55,12 +55,18 @@ def value(mapping, times=TIMES, amounts=AMOUNTS):
 
 
 class TestFromMapping:
-    @pytest.mark.parametrize("mapping", EXAMPLES)
-    def test_describe_gives_back_the_structure(self, mapping):
+    @pytest.mark.parametrize(("mapping", "described"), (
+        (FLAT, {"kind": "flat", "rate": 0.04}),
+        (SPOT, {"kind": "spot", "terms": [1.0, 5.0, 10.0, 30.0],
+                "rates": [0.031, 0.036, 0.04, 0.042]}),
+        (SEGMENTS, {"kind": "segments", "edges": [5.0, 20.0], "rates": [0.045, 0.052, 0.055]}),
+        (FORWARD, {"kind": "forward", "edges": [10.0], "rates": [0.05, 0.035]}),
+    ))
+    def test_describe_gives_back_the_structure(self, mapping, described):
         c = curve(mapping)
-        assert c.describe() == {k: (float(v) if not isinstance(v, list | str)
-                                    else [float(x) for x in v] if isinstance(v, list) else v)
-                                for k, v in mapping.items()}
+        assert c.describe() == described
+        assert all(isinstance(x, float) for v in c.describe().values() if isinstance(v, list)
+                   for x in v)
         assert Curve.from_mapping(c.describe()) == c
 
     def test_flat_shortcut(self):
@@ -142,6 +148,23 @@ class TestDigest:
             as_ints, {**as_ints, "rates": [0.045, 0.052, 0.0550001]},
             {**as_ints, "kind": "forward"}, {**as_ints, "edges": [5, 21]})}
         assert len(digests) == 4
+
+
+class TestFactorsAndMethod:
+    def test_factors_name_each_key_rate(self):
+        assert curve(SPOT).factors() == ({"term": 1.0}, {"term": 5.0}, {"term": 10.0},
+                                         {"term": 30.0})
+        assert curve(SEGMENTS).factors() == ({"from": 0.0, "to": 5.0},
+                                             {"from": 5.0, "to": 20.0},
+                                             {"from": 20.0, "to": None})
+        assert curve(FLAT).factors() == ({"from": 0.0, "to": None},)
+
+    def test_method_says_how_a_curved_structure_is_integrated(self):
+        assert "Gauss-Legendre" in curve(SPOT).method()["continuous"]
+        for mapping in (FLAT, SEGMENTS, FORWARD, {"kind": "spot", "terms": [1, 2],
+                                                  "rates": [0.03, 0.03]}):
+            assert "Gauss-Legendre" not in curve(mapping).method()["continuous"]
+        assert "band edges" in curve(SEGMENTS).method()["continuous"]
 
 
 class TestFlatEquivalents:
