@@ -54,42 +54,47 @@ Discrete payments
     ``_points``: ``discount = curve.discount(t)`` instead of ``np.exp(-delta * t)``.
     ``_guaranteed_values``: the annuity-certain closed form needs one force of interest; keep it
     when ``curve.constant_force is not None`` (use that force as delta) and otherwise value the
-    guaranteed payment dates as points like the others (expand them with ``_expand``).
-    Woolhouse blocks: ``v^t`` becomes ``curve.discount(t)`` and ``delta f(t)`` in the third term
-    becomes ``curve.forward_force(t) * f(t)``. Schedules: ``discount = curve.discount(time)``.
+    guaranteed payment dates as points like the others (expand them with ``_expand``; they then
+    count as work). Woolhouse blocks: ``v^t`` becomes ``curve.discount(t)`` and ``delta f(t)``
+    in the third term becomes ``curve.forward_force(t) * f(t)``; under segment rates D jumps at
+    an edge, so a Woolhouse year that straddles an edge should be summed exactly instead.
+    Schedules: ``discount = curve.discount(time)``.
 
 Continuous payments
-    ``_segments``: add ``curve.nodes()`` to the cut times of every window (one more entry of
-    ``pieces``: ``(np.repeat(local, nodes.size), np.tile(nodes, local.size))``; the existing
-    clip to [u, end] and de-duplication keep only those inside), so that no segment straddles
-    a node.
+    ``_segments``: add ``nodes = curve.nodes()`` to the cut times of every window (one more
+    entry of its list: ``(np.repeat(local, nodes.size), np.tile(nodes, local.size))``; the
+    existing clip to [u, end] and de-duplication keep those inside), so that no segment
+    straddles a node.
     ``_segment_integral``: with ``pc = curve.pieces(t1, length)`` replace every
     ``np.exp(-delta * t1) * F(..., delta, length)`` by ``pc.factor * F(..., pc.force, length)``
     (the closed forms of integrals.py take an array of forces unchanged). Within a piece
     D(t1 + h) = factor exp(-force h - curvature h (h - length)); the curvature is 0 except on a
-    spot curve between two terms. Where it is not 0 (``curve.curved``), add the correction
-    ``rule = curve.gauss_rule(t1, length, correction=True, decay=..., pole=...)``: evaluate the
-    integrand without discount, g(t) = certain weight or ``batch.life_weight(own, t)``, at
-    ``rule.time`` for the pieces ``rule.piece`` and add
-    ``np.bincount(rule.piece, rule.weight * g, minlength=t1.size)`` to the segment integrals
-    (before the escalation factor is applied); ``order=8`` is enough for the correction, whose
-    integrand carries the factor expm1(-curvature h (h - length)), at most about 1e-3 on
-    market curves. The undiscounted expected amount (delta = 0) does not involve the curve.
+    spot curve between two terms. Where the structure is curved (``curve.curved``), add the
+    correction ``rule = curve.gauss_rule(t1, length, order=8, correction=True, decay=...,
+    pole=...)`` (see below for decay and pole): with ``o = own[rule.piece]`` evaluate the
+    integrand without discount, ``g = np.where(certain[rule.piece], batch.certain_weight[o],
+    batch.life_weight(o, rule.time))``, and add ``np.bincount(rule.piece, rule.weight * g,
+    minlength=t1.size)`` to the segment integrals before the escalation factor. Order 8 is
+    ample there: the correction's integrand carries expm1(-curvature h (h - length)), below
+    1e-3 in size on market curves. The undiscounted expected amount (delta = 0) does not
+    involve the curve.
 
 Sensitivities (on request)
     Collect per-point (owner, time, present value) and call ``curve.moments(owner, time, pv,
     size)``; :class:`Moments` add up, so chunks, guaranteed and life-contingent parts are summed
-    with ``+`` and ``moments.measures()`` gives value, duration, convexity and key-rate
-    durations per item. Discrete items: the payment dates themselves (exact summation; the
-    guaranteed dates expanded as points). Continuous items: ``rule = curve.gauss_rule(t1,
-    length, decay=..., pole=...)`` on every segment gives points ``time = rule.time`` with
-    present value ``rule.weight * growth * g(rule.time)``; a Gauss-Legendre rule integrates
-    g D, t g D and t^2 g D alike. ``decay`` is the rate of the exponential in g (under the
+    with ``+``, and ``moments.measures()`` gives value, duration, convexity and key-rate
+    durations per item (NaN where an item's value is 0, as for a life dead for certain before
+    its window opens: the API should answer null there); ``curve.factors()`` names the
+    key rates. Discrete items: the payment dates themselves (exact summation, the guaranteed
+    dates expanded as points). Continuous items: ``rule = curve.gauss_rule(t1, length,
+    decay=..., pole=...)`` on every segment gives points ``time = rule.time`` with present
+    value ``rule.weight * growth * g`` (g as above); a Gauss-Legendre rule integrates g D,
+    t g D and t^2 g D alike. ``decay`` is the rate of the exponential in g (under the
     constant-force assumption -ln p of each life's year, summed for two lives; 0 under UDD,
-    whose survival is a polynomial) and ``pole`` the distance from the piece's start back to the
-    nearest singularity of g (under Balducci (p + q r) / q for each life, r the position in the
-    year at the piece's start; inf otherwise). With those the rule is exact to rounding. The
-    rule makes about ``order`` points per segment: build it chunk by chunk as the engine does.
+    whose survival is a polynomial) and ``pole`` the distance from the piece's start back to
+    the nearest singularity of g (under Balducci (p + q r) / q for each life, r the position in
+    the year at the piece's start; inf otherwise). With those the rule is exact to rounding.
+    It makes about ``order`` points per segment: build it chunk by chunk as the engine does.
 
 Method block: ``curve.method()`` gives the discounting and the continuous integration in
 words, for the engine's ``method_of``.
@@ -467,12 +472,14 @@ class Curve:
         if self.kind == "segments":
             b = self._band(t)
             return b, t, b, np.zeros_like(t)
-        terms, n = self._t, self._t.size
-        k, _, inside = self._spot_interval(t)
-        lo = np.where(t < terms[0], 0, np.where(inside, k, n - 1))
-        width = terms[np.minimum(k + 1, n - 1)] - terms[k]
-        lam = np.where(inside, (t - terms[k]) / np.where(width > 0, width, 1.0), 0.0)
-        return lo, t * (1.0 - lam), np.minimum(lo + 1, n - 1), t * lam
+        n = self._t.size
+        if n == 1:
+            return np.zeros(t.shape, dtype=np.intp), t, np.zeros(t.shape, dtype=np.intp), 0 * t
+        # Position among the terms, k + (t - T_k)/(T_k+1 - T_k), held at 0 and n - 1 outside.
+        position = np.interp(t, self._t, np.arange(n, dtype=float))
+        k = np.minimum(position.astype(np.intp), n - 2)
+        lam = position - k
+        return k, t * (1.0 - lam), k + 1, t * lam
 
     def exposure(self, t):
         """Return h_k(t) = dL(t)/dy_k for every factor k, shape ``t.shape + (K,)``.
