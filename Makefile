@@ -41,6 +41,7 @@ check-tables: install
 
 bench: install
 	$(BIN)/python bench/run.py
+	$(BIN)/python bench/curves.py
 
 clean:
 	rm -rf $(VENV)

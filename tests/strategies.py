@@ -156,3 +156,36 @@ def factor_requests(draw) -> dict:
     if draw(st.booleans()):
         body["interest_rate"] = draw(st.floats(-0.02, 0.12))
     return body
+
+
+# ---- interest structures (service.engine.curves) ---------------------------------------------
+
+CURVE_KINDS = ("flat", "spot", "segments", "forward")
+
+
+def curve_rates(size):
+    return st.lists(st.floats(-0.02, 0.12, allow_nan=False, allow_infinity=False),
+                    min_size=size, max_size=size)
+
+
+@st.composite
+def curve_mappings(draw, kinds=CURVE_KINDS):
+    """A valid interest structure as the mapping a basis or a request gives."""
+    kind = draw(st.sampled_from(kinds))
+    if kind == "flat":
+        return {"kind": "flat", "rate": draw(curve_rates(1))[0]}
+    count = draw(st.integers(0 if kind != "spot" else 1, 8))
+    # Distinct knots in quarter years up to 60 years, sorted.
+    steps = draw(st.lists(st.integers(1, 240), min_size=count, max_size=count, unique=True))
+    knots = [k / 4 for k in sorted(steps)]
+    rates = draw(curve_rates(count if kind == "spot" else count + 1))
+    return {"kind": kind, "terms" if kind == "spot" else "edges": knots, "rates": rates}
+
+
+@st.composite
+def cash_flows(draw, max_size=30):
+    """Payment times (years, > 0) and positive amounts."""
+    size = draw(st.integers(1, max_size))
+    times = draw(st.lists(st.floats(0.01, 80.0), min_size=size, max_size=size))
+    amounts = draw(st.lists(st.floats(0.01, 10.0), min_size=size, max_size=size))
+    return times, amounts
