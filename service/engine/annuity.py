@@ -17,11 +17,14 @@ continuous payments as the exact integral of the same product within each year o
 """
 
 import math
+import numbers
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
 from service.engine import integrals
+from service.engine.curves import Curve, Measures, Moments
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.interest import annuity_certain
 from service.engine.survival import ASSUMPTIONS, Lives, build_lives
@@ -75,23 +78,33 @@ class Item:
 
 @dataclass(frozen=True)
 class Valuation:
-    """Basis-level settings: flat effective annual interest and methods."""
+    """Basis-level settings: interest (a flat effective annual rate or a :class:`Curve`) and
+    methods."""
 
-    interest: float
+    interest: float | Curve
     fractional_age: str = "udd"
     approximation: str = "exact"
 
     def __post_init__(self):
-        if not (math.isfinite(self.interest) and self.interest > -1):
-            raise ValueError("interest must be a finite rate above -1")
+        if not isinstance(self.interest, Curve) and not (
+                isinstance(self.interest, numbers.Real) and math.isfinite(self.interest)
+                and self.interest > -1):
+            raise ValueError("interest must be a Curve or a finite rate above -1")
         if self.fractional_age not in ASSUMPTIONS:
             raise ValueError(f"unknown fractional-age assumption {self.fractional_age!r}")
         if self.approximation not in APPROXIMATIONS:
             raise ValueError(f"unknown m-thly approximation {self.approximation!r}")
 
-    @property
-    def delta(self) -> float:
-        return math.log1p(self.interest)
+    @cached_property
+    def curve(self) -> Curve:
+        """The interest structure (a flat rate is a flat :class:`Curve`)."""
+        if isinstance(self.interest, Curve):
+            return self.interest
+        return Curve.flat(float(self.interest))
+
+
+#: No discounting: for undiscounted expected amounts.
+_UNDISCOUNTED = Curve.flat(0.0)
 
 
 #: What each kind of valuation did; ``Values.method_code`` indexes these.
@@ -110,15 +123,19 @@ def methods(valuation: Valuation) -> tuple[dict, dict, dict]:
     them for the audit trail.
     """
     frac = valuation.fractional_age
+    words = valuation.curve.method()
     exact = {"evaluation": "sum of payment x discount factor x probability of payment",
-             "fractional_age": frac, "approximation": "exact"}
+             "fractional_age": frac, "approximation": "exact",
+             "discounting": words["discounting"]}
     woolhouse = {
         "evaluation": (
             "sum of payment x discount factor x probability of payment, with each whole "
             "life-contingent year of the window by Woolhouse's formula; the guarantee, part "
             "years and any year whose Woolhouse value falls outside 0 and the value of its "
-            "payments made for certain are summed exactly"),
-        "fractional_age": frac, "approximation": valuation.approximation}
+            "payments made for certain (or across which segment rates change) are summed "
+            "exactly"),
+        "fractional_age": frac, "approximation": valuation.approximation,
+        "discounting": words["discounting"]}
     if valuation.approximation == "woolhouse-3":
         woolhouse["force_of_mortality"] = _FORCE_ESTIMATE
     if frac == "balducci":
@@ -129,7 +146,9 @@ def methods(valuation: Valuation) -> tuple[dict, dict, dict]:
     else:
         evaluation = ("integral of payment rate x discount x survival, closed form per "
                       "year of age")
-    integral = {"evaluation": evaluation, "fractional_age": frac, "approximation": "exact"}
+    integral = {"evaluation": evaluation + "; discounting: " + words["continuous"],
+                "fractional_age": frac, "approximation": "exact",
+                "discounting": words["discounting"]}
     return exact, woolhouse, integral
 
 
@@ -373,7 +392,7 @@ class PaymentPoints:
         return self.amount * self.probability * self.discount
 
 
-def _points(batch: _Batch, own, j, delta: float) -> PaymentPoints:
+def _points(batch: _Batch, own, j, curve: Curve) -> PaymentPoints:
     m = batch.m[own]
     t = batch.deferral[own] + (j + batch.arrears[own]) / m
     amount = np.exp((j // m) * batch.growth[own]) / m
@@ -381,7 +400,7 @@ def _points(batch: _Batch, own, j, delta: float) -> PaymentPoints:
     life = batch.weight(own, both, one, two)
     certain = j < batch.guaranteed[own]
     probability = np.where(certain, batch.certain_weight[own], life)
-    return PaymentPoints(own, t, amount, probability, np.exp(-delta * t), both, one, two)
+    return PaymentPoints(own, t, amount, probability, curve.discount(t), both, one, two)
 
 
 def _chunks(cost: np.ndarray):
@@ -396,7 +415,8 @@ def _chunks(cost: np.ndarray):
 
 
 def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
-    """Present value of the guaranteed payments, in closed form year by year.
+    """Present value of the guaranteed payments, in closed form year by year, under one
+    constant force of interest ``delta`` (other structures sum the dates).
 
     Year k of the guarantee holds n_k payments of (1 + r)^k / m, certain once some life is
     alive at the deferral u: its value is P (1 + r)^k v^(u + k) times the annuity-certain of
@@ -415,23 +435,30 @@ def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
     return np.bincount(loc, weights=pv, minlength=which.size).astype(float)
 
 
-def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximation: str):
+def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximation: str):
     """Return the values of the discrete items ``which`` and whether Woolhouse valued any
     year of each."""
-    values = _guaranteed_values(batch, which, delta)
     count = _payment_count(batch)[which]
-    first = np.minimum(batch.guaranteed[which], count)  # the first life-contingent payment
+    delta = curve.constant_force
+    if delta is None:
+        # No closed form for the guaranteed years: their dates are summed like the others.
+        values = np.zeros(which.size)
+        first = np.zeros(which.size, dtype=np.int64)
+        guaranteed = np.minimum(batch.guaranteed[which], count)
+    else:
+        values = _guaranteed_values(batch, which, delta)
+        first = guaranteed = np.minimum(batch.guaranteed[which], count)
     m = batch.m[which]
     local = np.arange(which.size)
     k0, k1 = _woolhouse_years(batch, which, approximation)
-    head_stop = np.maximum(np.minimum(k0 * m, count), first)
+    head_stop = np.maximum(np.minimum(k0 * m, count), guaranteed)
     tail_start = np.maximum(k1 * m, head_stop)
     # Ranges of payments summed exactly: before and after the Woolhouse years, and the
     # Woolhouse years whose formula left its bounds.
     owner, lo, hi = [local, local], [first, tail_start], [head_stop, count]
     used = np.zeros(which.size, dtype=bool)
     if (k1 > k0).any():
-        loc, k, block, ok = _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation)
+        loc, k, block, ok = _woolhouse_blocks(batch, which, local, k0, k1, curve, approximation)
         values += np.bincount(loc[ok], weights=block[ok], minlength=which.size)
         used[loc[ok & (block > 0)]] = True  # a year no one can reach tells nothing
         bad = ~ok
@@ -441,7 +468,7 @@ def _discrete_values(batch: _Batch, which: np.ndarray, delta: float, approximati
     owner, lo, hi = np.concatenate(owner), np.concatenate(lo), np.concatenate(hi)
     for part in _chunks(np.maximum(hi - lo, 0)):
         o, j = _expand(owner[part], lo[part], hi[part])
-        pts = _points(batch, which[o], j, delta)
+        pts = _points(batch, which[o], j, curve)
         values += np.bincount(o, weights=pts.present_value, minlength=which.size)
     return values, used
 
@@ -462,52 +489,62 @@ def _woolhouse_years(batch: _Batch, which: np.ndarray, approximation: str):
     return k0, np.where(woolhouse, np.maximum(k1, k0), k0)
 
 
-def _work(batch: _Batch) -> np.ndarray:
-    discrete = np.maximum(_payment_count(batch) - batch.guaranteed, 0)
+def _work(batch: _Batch, curve: Curve) -> np.ndarray:
+    """Evaluation points per item: payment dates summed, or continuous segments."""
+    count = _payment_count(batch)
+    closed_form = batch.guaranteed if curve.constant_force is not None else 0
+    discrete = np.maximum(count - closed_form, 0)
     span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
-    return np.where(batch.continuous, 3 * np.ceil(span + 2).astype(np.int64), discrete)
+    segments = 3 * np.ceil(span + 2).astype(np.int64) + curve.nodes().size
+    return np.where(batch.continuous, segments, discrete)
 
 
-def _woolhouse_blocks(batch, which, local, k0, k1, delta, approximation):
+def _woolhouse_blocks(batch, which, local, k0, k1, curve: Curve, approximation):
     """Value whole life-contingent years of the window by Woolhouse's formula.
 
-    For f(t) = v^t W(t), W the expected fraction payable, one year [k, k + 1) paid m-thly
-    in advance is approximately f(k) - (m-1)/(2m) (f(k) - f(k+1))
-    + (m^2-1)/(12 m^2) (f'(k) - f'(k+1)) (the last term for the three-term form);
-    in arrears add (f(k+1) - f(k)) / m. Over a whole life these telescope to the textbook
+    For f(t) = D(t) W(t), D the discount factor and W the expected fraction payable, one year
+    [k, k + 1) paid m-thly in advance is approximately f(k) - (m-1)/(2m) (f(k) - f(k+1))
+    + (m^2-1)/(12 m^2) (f'(k) - f'(k+1)) (the last term for the three-term form), with
+    f'(t) = D(t) W'(t) - F(t) f(t), F the forward force of interest; in arrears add
+    (f(k+1) - f(k)) / m. At a flat rate these telescope over a whole life to the textbook
     a-due^(m) = a-due - (m-1)/(2m) - (m^2-1)/(12 m^2) (delta + mu).
 
     Returns ``(loc, k, block, ok)``: for each year k of each item ``loc``, its Woolhouse value
     and whether that value lies between 0 and the same formula's value for the year's
     payments made for certain at the largest amount. Where the force of mortality is very
-    high (near the end of a table) the third term leaves those bounds; the caller sums such
-    years exactly.
+    high (near the end of a table) the third term leaves those bounds; under segment rates
+    the discount jumps at a band edge. The caller sums such years exactly.
     """
     loc, k = _expand(local, k0, k1)
     own = which[loc]
     m = batch.m[own].astype(float)
     t0 = batch.deferral[own] + k
     t1 = t0 + 1.0
-    f0 = np.exp(-delta * t0) * batch.life_weight(own, t0)
-    f1 = np.exp(-delta * t1) * batch.life_weight(own, t1)
-    block = f0 - (m - 1) / (2 * m) * (f0 - f1)
+    v0, v1 = curve.discount(t0), curve.discount(t1)
+    f0 = v0 * batch.life_weight(own, t0)
+    f1 = v1 * batch.life_weight(own, t1)
+    a = (m - 1) / (2 * m)
+    block = f0 - a * (f0 - f1)
+    # The same formula for the year's payments made for certain: no value of the year can
+    # exceed it at the largest amount (the two-term form never does; the third term, with a
+    # very high force of mortality, can).
+    bound = v0 - a * (v0 - v1)
     if approximation == "woolhouse-3":
-        # f'(t) = v^t W'(t) - delta f(t)
+        b = (m * m - 1) / (12 * m * m)
+        force0, force1 = curve.forward_force(t0), curve.forward_force(t1)
         with np.errstate(invalid="ignore"):
-            g0 = np.exp(-delta * t0) * batch.life_weight_slope(own, t0) - delta * f0
-            g1 = np.exp(-delta * t1) * batch.life_weight_slope(own, t1) - delta * f1
-            block = block + (m * m - 1) / (12 * m * m) * (g0 - g1)
+            g0 = v0 * batch.life_weight_slope(own, t0) - force0 * f0
+            g1 = v1 * batch.life_weight_slope(own, t1) - force1 * f1
+            block = block + b * (g0 - g1)
+        bound = bound + b * (force1 * v1 - force0 * v0)
     arrears = batch.arrears[own]
     block = np.where(arrears, block + (f1 - f0) / m, block)
-    # The same formula for the year's payments made for certain at the largest amount: no
-    # value of the year can exceed it (the two-term form never does; the third term, with
-    # a very high force of mortality, can).
-    v0, v1 = np.exp(-delta * t0), np.exp(-delta * t1)
-    bound = v0 - (m - 1) / (2 * m) * (v0 - v1)
-    if approximation == "woolhouse-3":
-        bound = bound - (m * m - 1) / (12 * m * m) * delta * (v0 - v1)
     bound = batch.amounts[own].max(axis=1) * np.where(arrears, bound + (v1 - v0) / m, bound)
     ok = (block >= 0) & (block <= bound * (1 + 1e-12))  # False for NaN
+    if curve.kind == "segments" and curve.nodes().size:
+        edges = curve.nodes()
+        nxt = np.searchsorted(edges, t0, side="right")
+        ok &= ~((nxt < edges.size) & (edges[np.minimum(nxt, edges.size - 1)] < t1))
     growth = np.exp(k * batch.growth[own])
     return loc, k, block * growth, ok
 
@@ -537,16 +574,32 @@ def _grid(owner, base, step_from, step_to):
     return o, base[o] + k
 
 
-def _segments(batch: _Batch, which: np.ndarray, delta: float, *,
-              expected: bool = False) -> Segments:
-    """Cut the windows of ``which`` into segments and integrate each (``expected``: also
-    the undiscounted expected amount, for schedules)."""
+@dataclass(frozen=True, eq=False)
+class _Cut:
+    """The segments of a set of windows: piece i is [t1, t1 + length] of item ``own``."""
+
+    owner: np.ndarray  # local index into the items cut
+    own: np.ndarray  # batch index
+    t1: np.ndarray
+    length: np.ndarray
+    mid: np.ndarray
+    year: np.ndarray  # year of the window, for escalation and schedules
+    certain: np.ndarray
+    growth: np.ndarray  # (1 + r)^year
+
+
+def _cut(batch: _Batch, which: np.ndarray, curve: Curve) -> _Cut:
+    """Cut the windows of ``which`` at whole ages, window years, the guarantee's end and the
+    interest structure's nodes, so that nothing changes its formula within a segment."""
     u = batch.deferral[which]
     end = _window_end(batch, which)
     local = np.arange(which.size)
     span = np.maximum(np.ceil(end - u), 0).astype(np.int64)
     pieces = [_grid(local, u, np.zeros_like(span), span + 1),
               (local, u + batch.guarantee[which]), (local, end)]
+    nodes = curve.nodes()
+    if nodes.size:
+        pieces.append((np.repeat(local, nodes.size), np.tile(nodes, local.size)))
     for life in (batch.first[which], batch.second[which]):
         present = life >= 0
         frac = np.where(present, batch.lives.frac[np.maximum(life, 0)], 0.0)
@@ -566,11 +619,19 @@ def _segments(batch: _Batch, which: np.ndarray, delta: float, *,
     mid = t1 + length / 2
     year = np.floor(mid - batch.deferral[own]).astype(np.int64)
     certain = mid < batch.deferral[own] + batch.guarantee[own]
-    pv = _segment_integral(batch, own, t1, length, mid, certain, delta)
-    growth = np.exp(year * batch.growth[own])
-    undiscounted = (growth * _segment_integral(batch, own, t1, length, mid, certain, 0.0)
+    return _Cut(seg_owner, own, t1, length, mid, year, certain,
+                np.exp(year * batch.growth[own]))
+
+
+def _segments(batch: _Batch, which: np.ndarray, curve: Curve, *,
+              expected: bool = False) -> Segments:
+    """Cut the windows of ``which`` into segments and integrate each (``expected``: also
+    the undiscounted expected amount, for schedules)."""
+    cut = _cut(batch, which, curve)
+    pv = _segment_integral(batch, cut, curve)
+    undiscounted = (cut.growth * _segment_integral(batch, cut, _UNDISCOUNTED)
                     if expected else None)
-    return Segments(seg_owner, year, growth * pv, undiscounted)
+    return Segments(cut.owner, cut.year, cut.growth * pv, undiscounted)
 
 
 def _life_part(batch, life, t1, mid):
@@ -580,23 +641,66 @@ def _life_part(batch, life, t1, mid):
     return lives.year_rate(life, k), r, lives.year_start(life, k)
 
 
-def _segment_integral(batch, own, t1, length, mid, certain, delta):
+def _weight_in(batch, cut: _Cut, piece, t):
+    """The integrand without discount at times ``t`` in pieces ``piece``: the certain weight
+    in the guarantee, else the expected fraction payable."""
+    own = cut.own[piece]
+    return np.where(cut.certain[piece], batch.certain_weight[own], batch.life_weight(own, t))
+
+
+def _rule_shape(assumption, rates):
+    """(decay, pole) of the survival within each piece, for :meth:`Curve.gauss_rule`.
+
+    Under a constant force survival decays at -ln p per life; Balducci's survival has a pole
+    (p + q r) / q before the piece's start; UDD's is a polynomial.
+    """
+    decay, pole = 0.0, np.inf
+    for q, r in rates:
+        alive = q < 1
+        if assumption == "constant-force":
+            decay = decay + np.where(alive, -np.log1p(-np.where(alive, q, 0.0)), 0.0)
+        elif assumption == "balducci":
+            with np.errstate(divide="ignore"):
+                far = np.where(alive & (q > 0), (1 - q + q * r) / np.where(q > 0, q, 1.0),
+                               np.inf)
+            pole = np.minimum(pole, far)
+    return decay, pole
+
+
+def _segment_integral(batch, cut: _Cut, curve: Curve):
+    """Integrate payment rate x discount x survival over each segment, before escalation.
+
+    Within a segment the discount is D(t1 + h) = factor exp(-force h - curvature h (h - D));
+    the closed forms of integrals.py are taken at that force, and on a moving spot curve
+    (curvature not 0) the rest is added by a Gauss-Legendre rule exact to rounding.
+    """
+    own, t1, length, mid, certain = cut.own, cut.t1, cut.length, cut.mid, cut.certain
+    pc = curve.pieces(t1, length)
+    force = pc.force
     assumption = batch.lives.assumption
     q1, r1, s1 = _life_part(batch, batch.first[own], t1, mid)
-    j1 = _single(assumption, q1, r1, delta, length) * s1
+    j1 = _single(assumption, q1, r1, force, length) * s1
     has2 = batch.second[own] >= 0
     j2 = np.zeros_like(j1)
     j12 = np.zeros_like(j1)
+    rates = [(q1, r1)]
     if has2.any():
         q2, r2, s2 = _life_part(batch, np.maximum(batch.second[own], 0), t1, mid)
-        j2 = np.where(has2, _single(assumption, q2, r2, delta, length) * s2, 0.0)
-        j12 = np.where(has2, _pair(assumption, q1, r1, q2, r2, delta, length) * s1 * s2, 0.0)
+        j2 = np.where(has2, _single(assumption, q2, r2, force, length) * s2, 0.0)
+        j12 = np.where(has2, _pair(assumption, q1, r1, q2, r2, force, length) * s1 * s2, 0.0)
+        rates.append((np.where(has2, q2, 0.0), r2))
     a = batch.amounts[own]
     reach = batch.reach[own]
     life = ((a[:, 0] - a[:, 1] - a[:, 2]) * j12 + a[:, 1] * reach[:, 0] * j1
             + a[:, 2] * reach[:, 1] * j2)
-    sure = batch.certain_weight[own] * integrals.certain(delta, length)
-    return np.exp(-delta * t1) * np.where(certain, sure, life)
+    sure = batch.certain_weight[own] * integrals.certain(force, length)
+    value = pc.factor * np.where(certain, sure, life)
+    if curve.curved:
+        decay, pole = _rule_shape(assumption, rates)
+        rule = curve.gauss_rule(t1, length, order=8, correction=True, decay=decay, pole=pole)
+        g = _weight_in(batch, cut, rule.piece, rule.time)
+        value = value + np.bincount(rule.piece, weights=rule.weight * g, minlength=t1.size)
+    return value
 
 
 def _single(assumption, q, r, delta, length):
@@ -615,10 +719,10 @@ def _pair(assumption, q1, r1, q2, r2, delta, length):
     return integrals.balducci_pair(q1, r1, q2, r2, delta, length)
 
 
-def _continuous_values(batch: _Batch, which: np.ndarray, delta: float):
+def _continuous_values(batch: _Batch, which: np.ndarray, curve: Curve):
     values = np.zeros(which.size)
-    for part in _chunks(_work(batch)[which]):
-        seg = _segments(batch, which[part], delta)
+    for part in _chunks(_work(batch, curve)[which]):
+        seg = _segments(batch, which[part], curve)
         values[part] += np.bincount(seg.owner, weights=seg.present_value, minlength=part.size)
     return values
 
@@ -664,22 +768,72 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
         When the batch needs more than ``max_work`` evaluation points.
     """
     batch = _prepare(tables, items, valuation)
-    if max_work is not None:
-        work = int(_work(batch).sum())
-        if work > max_work:
-            raise WorkLimitError(work, max_work)
+    curve = valuation.curve
+    _check_work(batch, curve, max_work)
     values = np.zeros(len(items))
     code = np.full(len(items), INTEGRAL, dtype=np.int8)
-    delta = valuation.delta
     discrete = np.flatnonzero(~batch.continuous)
     if discrete.size:
-        values[discrete], used = _discrete_values(batch, discrete, delta,
+        values[discrete], used = _discrete_values(batch, discrete, curve,
                                                   valuation.approximation)
         code[discrete] = np.where(used, WOOLHOUSE_SUM, EXACT_SUM)
     cont = np.flatnonzero(batch.continuous)
     if cont.size:
-        values[cont] = _continuous_values(batch, cont, delta)
+        values[cont] = _continuous_values(batch, cont, curve)
     return Values(values, code, methods(valuation))
+
+
+def _check_work(batch: _Batch, curve: Curve, max_work: int | None) -> None:
+    if max_work is not None:
+        work = int(_work(batch, curve).sum())
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
+
+
+def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = True,
+                     max_work: int | None = None) -> Measures:
+    """Return each item's value with its sensitivities to the interest structure.
+
+    Duration -(1/V) dV/dy, convexity (1/V) d2V/dy2 and the key-rate durations, for shifts y of
+    the continuously compounded rates (see :mod:`service.engine.curves`), computed from the
+    expected payments: sum t PV / V and so on, never by revaluing. Discrete payments are
+    taken date by date (exact summation, also under a Woolhouse basis); continuous ones by a
+    Gauss-Legendre rule on each segment, exact to rounding for the integrands involved.
+    The value returned is that of the same payments, so it is the exact value.
+    """
+    batch = _prepare(tables, items, valuation)
+    curve = valuation.curve
+    _check_work(batch, curve, max_work)
+    size = len(items)
+    total = Moments(np.zeros(size), np.zeros(size), np.zeros(size),
+                    np.zeros((size, curve.size)) if key_rates else None)
+    discrete = np.flatnonzero(~batch.continuous)
+    count = _payment_count(batch)
+    for part in _chunks(count[discrete]):
+        which = discrete[part]
+        own, j = _expand(which, np.zeros(which.size, dtype=np.int64), count[which])
+        pts = _points(batch, own, j, curve)
+        total = total + curve.moments(own, pts.time, pts.present_value, size,
+                                      key_rates=key_rates)
+    cont = np.flatnonzero(batch.continuous)
+    # A rule has up to 12 points per segment: chunks of a twelfth of the usual work.
+    for part in _chunks(_work(batch, curve)[cont] * 12):
+        which = cont[part]
+        cut = _cut(batch, which, curve)
+        q1, r1, _ = _life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
+        rates = [(q1, r1)]
+        has2 = batch.second[cut.own] >= 0
+        if has2.any():
+            q2, r2, _ = _life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1,
+                                   cut.mid)
+            rates.append((np.where(has2, q2, 0.0), r2))
+        decay, pole = _rule_shape(batch.lives.assumption, rates)
+        rule = curve.gauss_rule(cut.t1, cut.length, order=12, decay=decay, pole=pole)
+        pv = rule.weight * cut.growth[rule.piece] * _weight_in(batch, cut, rule.piece,
+                                                               rule.time)
+        total = total + curve.moments(cut.own[rule.piece], rule.time, pv, size,
+                                      key_rates=key_rates)
+    return total.measures()
 
 
 def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None = None
@@ -713,15 +867,15 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
     state probabilities are those at the start of the year.
     """
     batch = _prepare(tables, [item], valuation)
-    delta = valuation.delta
+    curve = valuation.curve
     which = np.array([0])
     if not batch.continuous[0]:
         own, j = _expand(which, np.zeros(1, dtype=np.int64), _payment_count(batch))
-        pts = _points(batch, own, j, delta)
+        pts = _points(batch, own, j, curve)
         return Schedule(pts.time, pts.amount, pts.probability, pts.discount, pts.present_value,
                         pts.both, pts.first_only, pts.second_only,
                         methods(valuation)[EXACT_SUM])
-    seg = _segments(batch, which, delta, expected=True)
+    seg = _segments(batch, which, curve, expected=True)
     years = int(seg.year.max()) + 1 if seg.year.size else 0
     pv = np.bincount(seg.year, weights=seg.present_value, minlength=years)
     expected = np.bincount(seg.year, weights=seg.expected_amount, minlength=years)
@@ -732,7 +886,7 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
     with np.errstate(invalid="ignore", divide="ignore"):
         probability = np.where(payment > 0, expected / payment, 0.0)
         discount = np.where(expected > 0, pv / np.where(expected > 0, expected, 1.0),
-                            np.exp(-delta * start))
+                            curve.discount(start))
     both, one, two = batch.state_probabilities(np.zeros(years, dtype=np.intp), start)
     return Schedule(start, payment, probability, discount, pv, both, one, two,
                     methods(valuation)[INTEGRAL])

@@ -161,16 +161,20 @@ def integrate_pieces(f, t0: float, t1: float, cuts) -> float:
 
 def discrete_value(lives, i: float, *, frequency: int = 1, timing: str = "advance", term=None,
                    deferral: float = 0.0, guarantee: float = 0.0, escalation: float = 0.0,
-                   amounts=(1.0, 1.0, 1.0)) -> float:
+                   amounts=(1.0, 1.0, 1.0), discount=None) -> float:
     """Sum of amount x v^t x probability over the payment dates of m-thly payments.
 
     ``lives`` holds one or two DirectLife objects; ``amounts`` are paid while (both, only the
     first, only the second) are alive. Payments for periods that start before
     deferral + guarantee are certain if some life is alive at the deferral; the certain amount
-    is the one payable while both are alive.
+    is the one payable while both are alive. ``discount(t)``, where given, replaces v^t (and
+    ``i`` is then ignored).
     """
     m = frequency
     v = 1.0 / (1.0 + i)
+    if discount is None:
+        def discount(t):
+            return v**t
     horizon = max(life.horizon for life in lives)
     n_term = math.inf if term is None else round(term * m)
     n_certain = round(guarantee * m)
@@ -182,7 +186,7 @@ def discrete_value(lives, i: float, *, frequency: int = 1, timing: str = "advanc
         if t > horizon + 1 and j >= n_certain:
             break
         prob = certain_weight if j < n_certain else _state_weight(lives, t, amounts)
-        total += (1.0 + escalation) ** (j // m) / m * v**t * prob
+        total += (1.0 + escalation) ** (j // m) / m * discount(t) * prob
         j += 1
     return total
 
@@ -203,13 +207,17 @@ def _state_weight(lives, t, amounts):
 
 def continuous_value(lives, i: float, *, term=None, deferral: float = 0.0,
                      guarantee: float = 0.0, escalation: float = 0.0,
-                     amounts=(1.0, 1.0, 1.0)) -> float:
+                     amounts=(1.0, 1.0, 1.0), discount=None, nodes=()) -> float:
     """Integral of rate(t) v^t x (expected fraction payable at t) over the payment window.
 
     The rate is (1 + escalation)^floor(t - deferral); the first ``guarantee`` years of the
-    window are certain if some life is alive at the deferral.
+    window are certain if some life is alive at the deferral. ``discount(t)``, where given,
+    replaces v^t; ``nodes`` are times where it is not smooth (quad integrates between them).
     """
     delta = math.log1p(i)
+    if discount is None:
+        def discount(t):
+            return math.exp(-delta * t)
     horizon = max(life.horizon for life in lives)
     end = deferral + (math.inf if term is None else term)
     life_end = min(end, max(deferral + guarantee, horizon))
@@ -220,6 +228,7 @@ def continuous_value(lives, i: float, *, term=None, deferral: float = 0.0,
 
     cuts = [deferral + k for k in range(0, math.ceil(life_end - deferral) + 1)]
     cuts.append(deferral + guarantee)
+    cuts.extend(nodes)
     for life in lives:
         cuts.extend(life.integer_age_times(deferral, life_end))
     total = 0.0
@@ -229,12 +238,11 @@ def continuous_value(lives, i: float, *, term=None, deferral: float = 0.0,
         mid = (a + b) / 2
         if mid < deferral + guarantee:
             level = rate(mid) * certain_weight
-            total += level * integrate.quad(lambda t: math.exp(-delta * t), a, b,
-                                            **QUAD_OPTIONS)[0]
+            total += level * integrate.quad(discount, a, b, **QUAD_OPTIONS)[0]
         else:
             level = rate(mid)
             total += level * integrate.quad(
-                lambda t: math.exp(-delta * t) * _state_weight(lives, t, amounts), a, b,
+                lambda t: discount(t) * _state_weight(lives, t, amounts), a, b,
                 **QUAD_OPTIONS)[0]
     return total
 
