@@ -26,14 +26,21 @@ def request_id() -> str:
     return g.request_id
 
 
-def use_basis(basis, rate_override: float | None = None) -> None:
-    """Record which basis and interest this request used, for its audit block."""
+def interest_block(curve, source: str) -> dict:
+    """The interest structure as the audit block names it: kind, terms or edges, rates,
+    digest and where it came from."""
+    return curve.describe() | {"digest": curve.digest(), "source": source}
+
+
+def use_basis(basis, curve=None) -> None:
+    """Record which basis and interest this request used, for its audit block.
+
+    ``curve`` is the request's own interest structure; None means the basis' interest.
+    """
     g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
                      "status": basis.status}
-    if rate_override is None:
-        g.audit_interest = {"kind": "flat", "rate": basis.interest_rate, "source": "basis"}
-    else:
-        g.audit_interest = {"kind": "flat", "rate": rate_override, "source": "request"}
+    g.audit_interest = interest_block(basis.interest if curve is None else curve,
+                                      "basis" if curve is None else "request")
 
 
 def audit_block() -> dict:

@@ -13,6 +13,7 @@ from marshmallow import (
 )
 
 from service.engine.annuity import MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS
+from service.engine.curves import KINDS, MAX_POINTS, Curve, CurveError
 
 #: Named survivorship patterns: amounts while (both alive, only first alive, only second alive).
 SURVIVORSHIP_SHORTCUTS = {
@@ -22,6 +23,8 @@ SURVIVORSHIP_SHORTCUTS = {
 }
 SEX_VALUES = ("female", "male")
 MAX_YEARS = 200.0
+#: Sensitivities an item may ask for.
+MEASURES = ("duration", "convexity", "key_rate_durations")
 #: Periods that may be given in years or in whole months.
 _MONTHS = ("term", "deferral", "guarantee")
 
@@ -155,6 +158,16 @@ class ItemSchema(_Strict):
     escalation = StrictFloat(load_default=0.0, validate=validate.Range(-0.5, 1.0),
                              metadata={"description": "Compound annual rate of increase."})
     survivorship = SurvivorshipField(metadata=SURVIVORSHIP_DOC)
+    measures = fields.List(
+        fields.String(validate=validate.OneOf(MEASURES)), load_default=list,
+        validate=validate.Length(max=len(MEASURES)), metadata={
+            "description": (
+                "Sensitivities to the interest structure, computed from the expected "
+                "payments: 'duration' -(1/V) dV/dy and 'convexity' (1/V) d2V/dy2 for a "
+                "parallel shift y of the continuously compounded rates, "
+                "'key_rate_durations' the duration for each spot term (triangular bump) or "
+                "band. Discrete payments are taken date by date (exact summation, also "
+                "under a Woolhouse basis).")})
     start_requires = fields.String(
         load_default="any", validate=validate.OneOf(START_REQUIREMENTS), metadata={
             "description": (
@@ -197,22 +210,75 @@ class ItemSchema(_Strict):
         return data
 
 
-class FactorRequestSchema(_Strict):
+#: Request rates (a flat interest_rate or each rate of an interest structure) lie here.
+RATE_RANGE = (-0.5, 1.0)
+
+
+class InterestField(fields.Field):
+    """An interest structure: flat, spot, segments or forward (service.engine.curves)."""
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        try:
+            curve = Curve.from_mapping(value, path="")
+        except CurveError as exc:
+            raise ValidationError({path.lstrip(".") or "_schema": msgs
+                                   for path, msgs in exc.errors.items()}) from None
+        lo, hi = RATE_RANGE
+        bad = {str(k): [f"Must be between {lo} and {hi}."]
+               for k, r in enumerate(curve.rates) if not lo <= r <= hi}
+        if bad:
+            raise ValidationError({"rate": bad["0"]} if curve.kind == "flat" else {"rates": bad})
+        return curve
+
+
+_RATES = {"type": "array", "minItems": 1, "maxItems": MAX_POINTS,
+          "items": {"type": "number", "minimum": RATE_RANGE[0], "maximum": RATE_RANGE[1]}}
+_KNOTS = {"type": "array", "maxItems": MAX_POINTS, "items": {"type": "number",
+                                                             "exclusiveMinimum": 0}}
+INTEREST_DOC = {
+    "description": (
+        "Interest as a structure, instead of interest_rate (never both). Annual effective "
+        "rates. 'flat': one rate. 'spot': spot rates by term in years, interpolated linearly "
+        "in the continuously compounded rate and held flat outside the terms; discount "
+        "exp(-t r(t)). 'segments': each payment discounted at the rate of the band its time "
+        "falls in (bands split at the increasing edges), as a spot rate for that time. "
+        "'forward': forward rates by band, compounded through the bands. One more rate than "
+        "edges; at most 200 points; terms and edges increasing."),
+    "oneOf": [
+        {"type": "object", "additionalProperties": False, "required": ["kind", "rate"],
+         "properties": {"kind": {"const": "flat"}, "rate": _RATES["items"]}},
+        {"type": "object", "additionalProperties": False, "required": ["kind", "terms", "rates"],
+         "properties": {"kind": {"const": "spot"}, "terms": _KNOTS | {"minItems": 1},
+                        "rates": _RATES}},
+        *({"type": "object", "additionalProperties": False,
+           "required": ["kind", "edges", "rates"],
+           "properties": {"kind": {"const": kind}, "edges": _KNOTS, "rates": _RATES}}
+          for kind in ("segments", "forward")),
+    ],
+    "example": {"kind": "spot", "terms": [1, 5, 10, 30], "rates": [0.031, 0.036, 0.04, 0.042]},
+}
+assert {o["properties"]["kind"]["const"] for o in INTEREST_DOC["oneOf"]} == set(KINDS)
+
+
+class _Priced(_Strict):
+    """A request under a basis, with the basis' interest or the request's own."""
+
     basis = fields.String(required=True, validate=validate.Length(1, 200),
                           metadata={"description": "ID (default version) or ID@VERSION.",
                                     "example": "fernhollow-annuitants@2026.1"})
     interest_rate = StrictFloat(load_default=None, allow_none=True,
-                                validate=validate.Range(-0.5, 1.0),
+                                validate=validate.Range(*RATE_RANGE),
                                 metadata={"description": "Flat effective annual rate that "
                                                          "replaces the basis' interest."})
+    interest = InterestField(metadata=INTEREST_DOC)
+
+
+class FactorRequestSchema(_Priced):
     items = fields.List(fields.Nested(ItemSchema), required=True,
                         validate=validate.Length(min=1))
 
 
-class ScheduleRequestSchema(_Strict):
-    basis = fields.String(required=True, validate=validate.Length(1, 200))
-    interest_rate = StrictFloat(load_default=None, allow_none=True,
-                                validate=validate.Range(-0.5, 1.0))
+class ScheduleRequestSchema(_Priced):
     item = fields.Nested(ItemSchema, required=True)
     amount = StrictFloat(load_default=1.0, validate=validate.Range(0, 1e12),
                          metadata={"description": "Annual amount; every row is scaled by it."})
@@ -230,8 +296,14 @@ class BasisRefSchema(Schema):
 
 
 class InterestSchema(Schema):
-    kind = fields.String(required=True, validate=validate.OneOf(["flat"]))
-    rate = fields.Float(required=True)
+    kind = fields.String(required=True, validate=validate.OneOf(KINDS))
+    rate = fields.Float(metadata={"description": "flat: the rate."})
+    terms = fields.List(fields.Float(), metadata={"description": "spot: the terms."})
+    edges = fields.List(fields.Float(), metadata={"description": "segments, forward: edges."})
+    rates = fields.List(fields.Float(), metadata={"description": "spot, segments, forward."})
+    digest = fields.String(required=True, metadata={
+        "description": "sha256 over the canonical structure (kind, terms or edges, rates), "
+                       "to match a quote to the curve of its day."})
     source = fields.String(required=True, validate=validate.OneOf(["basis", "request"]))
 
 
@@ -255,6 +327,8 @@ class MethodSchema(Schema):
         "description": "exact, or the Woolhouse form that valued some year of this item."})
     force_of_mortality = fields.String(metadata={
         "description": "Three-term Woolhouse only: how the force of mortality was estimated."})
+    discounting = fields.String(required=True, metadata={
+        "description": "How each payment's discount factor was computed."})
 
 
 class WarningSchema(Schema):
@@ -268,9 +342,23 @@ WARNINGS_DOC = {"description": (
     "entry says how many more there were.")}
 
 
+class KeyRateSchema(Schema):
+    term = fields.Float(metadata={"description": "spot: the term bumped."})
+    start = fields.Float(data_key="from", metadata={"description": "band: where it starts."})
+    to = fields.Float(allow_none=True, metadata={"description": "band: where it ends (null: "
+                                                                 "open)."})
+    duration = fields.Float(allow_none=True, required=True)
+
+
 class FactorResultSchema(Schema):
     value = fields.Float(required=True)
     method = fields.Nested(MethodSchema, required=True)
+    duration = fields.Float(allow_none=True, metadata={
+        "description": "With measures: -(1/V) dV/dy (null where the value is 0)."})
+    convexity = fields.Float(allow_none=True, metadata={
+        "description": "With measures: (1/V) d2V/dy2."})
+    key_rate_durations = fields.List(fields.Nested(KeyRateSchema), metadata={
+        "description": "With measures: one per spot term or band; they sum to the duration."})
 
 
 class FactorResponseSchema(Schema):

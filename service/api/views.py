@@ -2,11 +2,12 @@
 
 import csv
 import io
+import json
 
 import numpy as np
 from flask import Blueprint, Response, current_app, g, jsonify, request
 
-from service.api.audit import audit_block, use_basis
+from service.api.audit import audit_block, interest_block, use_basis
 from service.api.body import json_body, load
 from service.api.metrics import FACTORS
 from service.api.problems import ProblemError
@@ -22,9 +23,11 @@ from service.engine.annuity import (
     Life,
     Payments,
     Valuation,
+    annuity_measures,
     cash_flow_schedule,
     value_annuities,
 )
+from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.lifetable import life_table_columns
 
@@ -93,8 +96,7 @@ def get_basis(ref: str):
         "source": basis.source,
         "sex_distinct": basis.sex_distinct,
         "mortality": mortality,
-        "defaults": {"interest": {"kind": "flat", "rate": basis.interest_rate,
-                                  "source": "basis"},
+        "defaults": {"interest": interest_block(basis.interest, "basis"),
                      "fractional_age": basis.fractional_age, "mthly": basis.approximation},
         "audit": audit_block(),
     }
@@ -113,7 +115,7 @@ def life_table(ref: str):
     query = load(_life_table_query, request.args.to_dict())
     commutation = query["columns"] == "commutation"
     rate = query["interest_rate"]
-    use_basis(basis, rate)
+    use_basis(basis, None if rate is None else Curve.flat(rate))
     sex = query["sex"]
     index = basis.table_index(sex)
     if index is None:
@@ -125,11 +127,16 @@ def life_table(ref: str):
     if duration is not None and duration < table.select_period:
         default_from = table.select_first_age + duration
     from_age = query["from_age"] if query["from_age"] is not None else default_from
+    if commutation and rate is None:
+        rate = basis.interest_rate
+        if rate is None:
+            raise ProblemError(422, "Commutation columns need a flat rate.", errors={
+                "interest_rate": [f"This basis discounts on a {basis.interest.kind} "
+                                  "structure: give a flat interest_rate."]})
     try:
         cols = life_table_columns(
             table, from_age, to_age=query["to_age"], duration=duration,
-            assumption=basis.fractional_age,
-            rate=(basis.interest_rate if rate is None else rate) if commutation else None)
+            assumption=basis.fractional_age, rate=rate if commutation else None)
     except FieldError as exc:
         raise ProblemError(422, "The ages asked for lie outside the table.",
                            errors={exc.field: [exc.message]}) from None
@@ -183,9 +190,17 @@ def _engine_items(basis, items, path_of):
     return out
 
 
-def _valuation(basis, rate):
-    use_basis(basis, rate)
-    return Valuation(basis.interest_rate if rate is None else rate, basis.fractional_age,
+def _valuation(basis, data):
+    """The valuation settings of a request: the basis' methods, and its interest unless the
+    request gives ``interest`` or ``interest_rate``."""
+    curve = data.get("interest")
+    if data["interest_rate"] is not None:
+        if curve is not None:
+            raise ProblemError(422, "The request has invalid fields.", errors={
+                "interest": ["Give interest or interest_rate, not both."]})
+        curve = Curve.flat(data["interest_rate"])
+    use_basis(basis, curve)
+    return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
                      basis.approximation)
 
 
@@ -207,7 +222,7 @@ def annuity_factors():
     data = load(_factor_request, body)
     g.item_count = len(data["items"])
     basis = _basis(data["basis"])
-    valuation = _valuation(basis, data["interest_rate"])
+    valuation = _valuation(basis, data)
     items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
     limit = current_app.config["MAX_EVALUATION_POINTS"]
     warnings = request_warnings(basis, data, [(f"items.{n}", item)
@@ -227,7 +242,39 @@ def annuity_factors():
     results = [{"value": v, "method": valued.methods[code]}
                for v, code in zip(valued.value.tolist(), valued.method_code.tolist(),
                                   strict=True)]
+    _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
+                  valuation, limit)
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+
+
+def _add_measures(results, basis, items, asked, valuation, limit):
+    """Add the sensitivities that items asked for to their results."""
+    which = [n for n, measures in enumerate(asked) if measures]
+    if not which:
+        return
+    key_rates = any("key_rate_durations" in asked[n] for n in which)
+    try:
+        got = annuity_measures(basis.tables, [items[n] for n in which], valuation,
+                               key_rates=key_rates, max_work=limit)
+    except WorkLimitError as exc:
+        raise ProblemError(413, f"The measures asked for need {exc.work} evaluation points; "
+                                f"one request may evaluate at most {exc.limit}. Split the "
+                                "batch.", title="Batch too large to value") from None
+    factors = valuation.curve.factors()
+
+    def number(x):
+        return float(x) if np.isfinite(x) else None
+
+    for row, n in enumerate(which):
+        result = results[n]
+        if "duration" in asked[n]:
+            result["duration"] = number(got.duration[row])
+        if "convexity" in asked[n]:
+            result["convexity"] = number(got.convexity[row])
+        if "key_rate_durations" in asked[n]:
+            result["key_rate_durations"] = [
+                factor | {"duration": number(d)}
+                for factor, d in zip(factors, got.key_rate_durations[row], strict=True)]
 
 
 _CSV_COLUMNS = ("time", "payment", "probability", "discount", "present_value")
@@ -242,7 +289,7 @@ def cash_flow_schedules():
     data = load(_schedule_request, body)
     g.item_count = 1
     basis = _basis(data["basis"])
-    valuation = _valuation(basis, data["interest_rate"])
+    valuation = _valuation(basis, data)
     (item,) = _engine_items(basis, [data["item"]], lambda n: "item")
     warnings = request_warnings(basis, data, [("item", data["item"])])
     try:
@@ -295,7 +342,12 @@ def _csv_response(names, lists, extra: dict, warnings=()):
         "X-Basis-Digest": audit["basis"]["digest"],
         "X-Basis-Status": audit["basis"]["status"],
         "X-Interest-Kind": audit["interest"]["kind"],
-        "X-Interest-Rate": repr(audit["interest"]["rate"]),
+        **({"X-Interest-Rate": repr(audit["interest"]["rate"])}
+           if "rate" in audit["interest"] else {}),
+        **({} if "rate" in audit["interest"] else {"X-Interest-Structure": json.dumps(
+            {k: v for k, v in audit["interest"].items() if k not in ("digest", "source")},
+            separators=(",", ":"))}),
+        "X-Interest-Digest": audit["interest"]["digest"],
         "X-Interest-Source": audit["interest"]["source"],
         **extra,
         "X-Service": f"{audit['service']['name']}/{audit['service']['version']}",

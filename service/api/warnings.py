@@ -21,10 +21,17 @@ def request_warnings(basis, data: dict, items: list[tuple[str, dict]]) -> list[d
     found: list[tuple[str, str]] = []
     if basis.status in _STATUS:
         found.append(("basis", _STATUS[basis.status]))
-    rate = data.get("interest_rate")
-    if rate is not None and not _PLAUSIBLE_RATE[0] <= rate <= _PLAUSIBLE_RATE[1]:
-        found.append(("interest_rate", f"{rate:g} is read as {rate:.2%} a year; a rate of "
-                                       f"4.5% is given as 0.045."))
+    rates = []
+    if data.get("interest_rate") is not None:
+        rates.append(("interest_rate", data["interest_rate"]))
+    curve = data.get("interest")
+    if curve is not None:
+        rates += ([("interest.rate", curve.rates[0])] if curve.kind == "flat" else
+                  [(f"interest.rates.{k}", r) for k, r in enumerate(curve.rates)])
+    for path, rate in rates:
+        if not _PLAUSIBLE_RATE[0] <= rate <= _PLAUSIBLE_RATE[1]:
+            found.append((path, f"{rate:g} is read as {rate:.2%} a year; a rate of 4.5% is "
+                                "given as 0.045."))
     for path, item in items:
         for k, life in enumerate(item["lives"]):
             where = f"{path}.lives.{k}"

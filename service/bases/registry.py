@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 
 from service.engine.annuity import APPROXIMATIONS
+from service.engine.curves import Curve, CurveError
 from service.engine.errors import TableError
 from service.engine.survival import ASSUMPTIONS
 from service.engine.tables import MortalityTable, table_from_law
@@ -77,7 +78,7 @@ class Basis:
     purpose: str
     source: str
     digest: str
-    interest_rate: float
+    interest: Curve
     fractional_age: str
     approximation: str
     sexes: tuple[str, ...]
@@ -92,6 +93,11 @@ class Basis:
     @property
     def sex_distinct(self) -> bool:
         return self.sexes != ("unisex",)
+
+    @property
+    def interest_rate(self) -> float | None:
+        """The basis' flat rate; None where its interest is a curve or bands."""
+        return self.interest.rates[0] if self.interest.kind == "flat" else None
 
     def table_index(self, sex: str | None) -> int | None:
         """Return which table a life of ``sex`` follows, or None when the basis has none."""
@@ -344,14 +350,8 @@ def load_basis(path: Path, name: str, *, root: Path | None = None) -> Basis:
     if status not in STATUSES:
         raise BasisFileError(f"{name}: status '{status}' is not one of {', '.join(STATUSES)}",
                              reason=f"status is not one of {', '.join(STATUSES)}")
-    interest = _require(doc, "interest", dict, name)
-    if interest.get("kind", "flat") != "flat":
-        raise BasisFileError(f"{name}: interest kind '{interest.get('kind')}' is not supported",
-                             reason="[interest] kind is not supported")
-    rate = _require(interest, "rate", float, name, "[interest]")
-    if not (math.isfinite(rate) and rate > -1):
-        raise BasisFileError(f"{name} [interest]: rate {rate} must be finite and above -1",
-                             reason="[interest] rate must be finite and above -1")
+    interest, interest_data = _load_interest(path.parent, root,
+                                             _require(doc, "interest", dict, name), name)
     methods = doc.get("methods", {})
     if not isinstance(methods, dict):
         raise BasisFileError(f"{name}: [methods] must be a table",
@@ -378,7 +378,7 @@ def load_basis(path: Path, name: str, *, root: Path | None = None) -> Basis:
         message = "give either 'unisex' or both 'female' and 'male'"
         raise BasisFileError(f"{name} [mortality]: {message}", reason=f"[mortality] {message}")
     tables = []
-    data_digests = {}
+    data_digests = dict(interest_data)
     for sex in sexes:
         spec = mortality[sex]
         section = f"[mortality.{sex}]"
@@ -403,7 +403,7 @@ def load_basis(path: Path, name: str, *, root: Path | None = None) -> Basis:
     return Basis(
         id=basis_id, version=version, title=str(doc.get("title", basis_id)), status=status,
         default=bool(doc.get("default", False)), purpose=str(doc.get("purpose", "")),
-        source=source, digest=digest, interest_rate=rate,
+        source=source, digest=digest, interest=interest,
         fractional_age=fractional_age, approximation=approximation, sexes=sexes,
         tables=tuple(tables),
         mortality=_frozen({s: _describe(mortality[s], t)
@@ -492,8 +492,8 @@ class _Data:
                               reason=f"{self.brief}{at}: {reason}")
 
 
-def _csv_table(folder: Path, root: Path, spec: dict, name: str, section: str):
-    rel = spec["file"]
+def _read_csv(folder: Path, root: Path, rel, name: str, section: str):
+    """Read, hash and parse a data file; return ``(frame, digest, where, line numbers)``."""
     if not isinstance(rel, str) or Path(rel).is_absolute() or ".." in Path(rel).parts:
         raise BasisFileError(f"{name} {section}: 'file' must be a path inside the tables "
                              "folder",
@@ -509,13 +509,60 @@ def _csv_table(folder: Path, root: Path, spec: dict, name: str, section: str):
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError,
             ValueError) as exc:
         raise at.error(None, f"not a readable CSV ({exc})", "not a readable CSV") from exc
+    return frame, digest, at, _data_line_numbers(normalised, len(frame))
+
+
+#: The columns of an interest data file, by kind: spot terms, or the start of each band.
+_INTEREST_COLUMNS = {"spot": ("term", "rate"), "segments": ("from", "rate"),
+                     "forward": ("from", "rate")}
+
+
+def _load_interest(folder: Path, root: Path, spec: dict, name: str):
+    """Return the basis' interest structure and ``{file: digest}`` of its data file, if any.
+
+    ``[interest]`` holds a structure as a request's ``interest`` does (kind with rate, or
+    terms or edges with rates), or a kind and a ``file``: a CSV of ``term,rate`` rows for a
+    spot curve, or ``from,rate`` rows for segments and forward bands (the first band from 0).
+    """
+    section = "[interest]"
+    data = {}
+    mapping = {k: v for k, v in spec.items()}
+    mapping.setdefault("kind", "flat")
+    if "file" in spec:
+        kind = mapping["kind"]
+        if kind not in _INTEREST_COLUMNS:
+            raise BasisFileError(f"{name} {section}: a 'file' gives a spot curve, segments or "
+                                 "forward bands", reason=f"{section} 'file' needs a curve kind")
+        frame, digest, at, lines = _read_csv(folder, root, spec["file"], name, section)
+        columns = list(_INTEREST_COLUMNS[kind])
+        if [str(c) for c in frame.columns] != columns:
+            raise at.error(None, f"columns must be {','.join(columns)}",
+                           f"the columns must be {','.join(columns)}")
+        knots = _numbers(frame[columns[0]], lines, at, columns[0]).tolist()
+        rates = _numbers(frame["rate"], lines, at, "rate").tolist()
+        if kind != "spot":
+            if not knots or knots[0] != 0:
+                raise at.error(lines[0] if lines else None, "the first band must start at 0",
+                               "the first band must start at 0")
+            knots = knots[1:]
+        mapping = {"kind": kind, "terms" if kind == "spot" else "edges": knots, "rates": rates}
+        data[spec["file"]] = digest
+    try:
+        return Curve.from_mapping(mapping, path=section), data
+    except CurveError as exc:
+        where, messages = next(iter(exc.errors.items()))
+        raise BasisFileError(f"{name} {where}: {messages[0]}",
+                             reason=f"{where}: {messages[0]}") from exc
+
+
+def _csv_table(folder: Path, root: Path, spec: dict, name: str, section: str):
+    frame, digest, at, lines = _read_csv(folder, root, spec["file"], name, section)
     columns = [str(c) for c in frame.columns]
     select_cols = [c for c in columns if c.startswith("q_select_")]
     expected = ["age", "q"] + [f"q_select_{s}" for s in range(len(select_cols))]
     if columns != expected:
         raise at.error(None, f"columns must be {','.join(expected)} (got {','.join(columns)})",
                        "the columns must be age,q then q_select_0, q_select_1, ...")
-    lines = _data_line_numbers(normalised, len(frame))
     ages = _numbers(frame["age"], lines, at, "age")
     if len(ages) == 0:
         raise at.error(None, "no rows", "no rows")

@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 
 from service.app import DEFAULT_TABLES
+from service.engine.curves import Curve
 from tests.api.problem import assert_problem
 
 
@@ -89,8 +90,16 @@ def test_basis_detail_gives_its_defaults(client, key):
     assert body["audit"]["basis"] == {"id": key[0], "version": key[1], "digest": doc["digest"],
                                       "status": doc["status"]}
     defaults = body["defaults"]
-    assert defaults["interest"] == {"kind": "flat", "rate": doc["interest"]["rate"],
-                                    "source": "basis"}
+    interest = defaults["interest"]
+    assert interest["source"] == "basis"
+    if "file" in doc["interest"]:
+        # A curve read from a data file: what was read is shown, with its digest.
+        assert interest["kind"] == doc["interest"]["kind"] and interest["rates"]
+        assert interest["digest"] == Curve.from_mapping(
+            {k: v for k, v in interest.items() if k not in ("digest", "source")}).digest()
+    else:
+        assert interest == {"kind": "flat", "rate": doc["interest"]["rate"], "source": "basis",
+                            "digest": Curve.flat(doc["interest"]["rate"]).digest()}
     assert defaults["fractional_age"] == doc["methods"]["fractional_age"]
     assert defaults["mthly"] == doc["methods"]["mthly"]
     assert body["sex_distinct"] is ("unisex" not in doc["mortality"])
