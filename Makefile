@@ -19,7 +19,7 @@ $(STAMP): $(BIN)/python pyproject.toml requirements.lock
 install: $(STAMP)
 
 run: install
-	PORT=$(PORT) $(BIN)/gunicorn --config deploy/gunicorn.conf.py 'service.wsgi:create_app()'
+	$(BIN)/annuity-service serve --port $(PORT)
 
 test: install
 	$(BIN)/python -m pytest -q

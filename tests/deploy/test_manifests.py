@@ -6,6 +6,8 @@ from pathlib import Path
 import pytest
 import yaml
 
+from service.serving import GUNICORN_CONF
+
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 
 
@@ -72,11 +74,24 @@ class TestManifests:
     def test_grace_period_outlasts_gunicorn_drain(self, monkeypatch, tmp_path):
         # The config prepares the metrics folder it is given; keep that out of this process.
         monkeypatch.setenv("PROMETHEUS_MULTIPROC_DIR", str(tmp_path / "metrics"))
-        conf = runpy.run_path(str(DEPLOY / "gunicorn.conf.py"))
+        conf = runpy.run_path(str(GUNICORN_CONF))
         pod = _by_kind("Deployment")["spec"]["template"]["spec"]
         assert pod["terminationGracePeriodSeconds"] > conf["graceful_timeout"]
         assert conf["preload_app"] is True
         assert conf["workers"] >= 2
+
+
+    def test_trusts_no_forwarded_headers_and_no_shared_control_socket(self, monkeypatch,
+                                                                      tmp_path):
+        from gunicorn.config import Config
+
+        monkeypatch.delenv("FORWARDED_ALLOW_IPS", raising=False)
+        monkeypatch.setenv("PROMETHEUS_MULTIPROC_DIR", str(tmp_path / "metrics"))
+        conf = runpy.run_path(str(GUNICORN_CONF))
+        cfg = Config()
+        cfg.set("forwarded_allow_ips", conf["forwarded_allow_ips"])
+        assert cfg.forwarded_allow_ips == []
+        assert conf["control_socket_disable"] is True
 
 
 class TestContainerfile:
@@ -84,5 +99,7 @@ class TestContainerfile:
         text = (DEPLOY / "Containerfile").read_text()
         users = [line.split()[1] for line in text.splitlines() if line.startswith("USER ")]
         assert users and users[-1] not in {"root", "0"}
-        assert "COPY tables" in text
         assert "check-tables" in text
+        # tables/ is copied before the package that links to it is built.
+        assert text.index("COPY tables") < text.index("COPY service") < text.index("pip install")
+        assert 'CMD ["annuity-service", "serve"]' in text

@@ -25,6 +25,7 @@ import time
 import uuid
 from pathlib import Path
 
+from service.serving import GUNICORN_CONF
 from tests.live.server import GUNICORN, ROOT, free_port, running_service
 
 SINGLE = {"basis": "fernhollow-annuitants", "items": [
@@ -220,8 +221,7 @@ def scenario_bad_tables() -> dict:
     env = os.environ | {"PORT": str(free_port()), "ANNUITY_TABLES_DIR": "/nonexistent/tables",
                         "WEB_CONCURRENCY": "1",
                         "PROMETHEUS_MULTIPROC_DIR": tempfile.mkdtemp(prefix="annuity-m-")}
-    started = subprocess.run([str(GUNICORN), "--config", str(ROOT / "deploy" /
-                                                              "gunicorn.conf.py")],
+    started = subprocess.run([str(GUNICORN), "--config", str(GUNICORN_CONF)],
                              cwd=ROOT, env=env, capture_output=True, text=True, timeout=60,
                              check=False)
     message = next((line for line in started.stderr.splitlines()

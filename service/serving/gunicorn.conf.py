@@ -1,4 +1,5 @@
-"""Gunicorn settings for the Annuity Factor Service (used by `make run` and the container)."""
+"""Gunicorn settings for the Annuity Factor Service: the one configuration that `make run`,
+`annuity-service serve`, the image, the live tests and `make faults` use."""
 
 import multiprocessing
 import os
@@ -17,6 +18,13 @@ timeout = 60
 graceful_timeout = 30
 keepalive = 5
 limit_request_field_size = 8190
+# Trust no forwarded headers (X-Forwarded-Proto, SCRIPT_NAME, PATH_INFO...) from any peer:
+# behind a proxy in the same pod every peer is 127.0.0.1, which gunicorn would trust by
+# default. Name the proxy's addresses in FORWARDED_ALLOW_IPS to trust them.
+forwarded_allow_ips = os.environ.get("FORWARDED_ALLOW_IPS", "")
+# No runtime control socket: the shared default path would be one socket for every instance
+# on the machine (and cannot be made on a read-only filesystem).
+control_socket_disable = True
 accesslog = None  # the app writes one structured JSON line per request
 errorlog = "-"
 loglevel = os.environ.get("LOG_LEVEL", "info")
