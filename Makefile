@@ -18,8 +18,10 @@ $(STAMP): $(BIN)/python pyproject.toml requirements.lock
 
 install: $(STAMP)
 
+# The same gunicorn configuration as production (service/serving/gunicorn.conf.py), without
+# the proxy in front: see README "Deploying".
 run: install
-	PORT=$(PORT) $(BIN)/gunicorn --config deploy/gunicorn.conf.py 'service.wsgi:create_app()'
+	$(BIN)/annuity-service serve --port $(PORT)
 
 test: install
 	$(BIN)/python -m pytest -q
@@ -27,6 +29,7 @@ test: install
 fuzz: install
 	$(BIN)/python -m tests.live.fuzz --max-examples 300
 
+# Runs against nginx + gunicorn on loopback; installs Debian's nginx (apt-get) when missing.
 faults: install
 	$(BIN)/python -m tests.live.faults
 

@@ -2,14 +2,15 @@
 
 import logging
 import os
-from pathlib import Path
 
 from flask import Flask
 
 from service.bases import load_registry
+from service.serving import SHIPPED_TABLES
 
-#: The tables folder shipped with the service (the repository's tables/).
-DEFAULT_TABLES = Path(__file__).resolve().parent.parent / "tables"
+#: The tables folder shipped with the service (the repository's tables/ in a checkout, the
+#: copy inside the package once installed from a wheel).
+DEFAULT_TABLES = SHIPPED_TABLES
 
 
 def create_app(config: dict | None = None) -> Flask:

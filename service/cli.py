@@ -7,6 +7,7 @@ import sys
 from pathlib import Path
 
 from service.app import DEFAULT_TABLES
+from service.serving import GUNICORN_CONF, WSGI_APP
 
 ROOT = Path(__file__).resolve().parent.parent
 OPENAPI_FILE = ROOT / "openapi" / "openapi.json"
@@ -14,11 +15,20 @@ OPENAPI_FILE = ROOT / "openapi" / "openapi.json"
 DEFAULT_MAX_ITEMS = 10_000
 
 
+def serve_command(args) -> list[str]:
+    """The gunicorn command line for ``serve``; flags given win over the environment."""
+    if args.port is not None:
+        os.environ["PORT"] = str(args.port)
+    if args.host is not None:
+        os.environ["HOST"] = args.host
+    if args.workers is not None:
+        os.environ["WEB_CONCURRENCY"] = str(args.workers)
+    # The gunicorn of this very interpreter, wherever it was installed.
+    return [sys.executable, "-m", "gunicorn", "--config", str(GUNICORN_CONF), WSGI_APP]
+
+
 def _serve(args) -> int:
-    os.environ.setdefault("PORT", str(args.port))
-    gunicorn = Path(sys.executable).with_name("gunicorn")
-    argv = [str(gunicorn), "--config", str(ROOT / "deploy" / "gunicorn.conf.py"),
-            "service.wsgi:create_app()"]
+    argv = serve_command(args)
     os.execv(argv[0], argv)
     return 1  # pragma: no cover - execv does not return
 
@@ -81,7 +91,12 @@ def main(argv=None) -> int:
     parser = argparse.ArgumentParser(prog="annuity-service", description=__doc__)
     sub = parser.add_subparsers(dest="command", required=True)
     serve = sub.add_parser("serve", help="serve the API with gunicorn (PORT, default 8000)")
-    serve.add_argument("--port", type=int, default=int(os.environ.get("PORT", "8000")))
+    serve.add_argument("--port", type=int, default=None,
+                       help="port to listen on (default: PORT, else 8000)")
+    serve.add_argument("--host", default=None,
+                       help="address to listen on (default: HOST, else 127.0.0.1)")
+    serve.add_argument("--workers", type=int, default=None,
+                       help="worker processes (default: WEB_CONCURRENCY, else from the CPUs)")
     serve.set_defaults(func=_serve)
     check = sub.add_parser("check-tables", help="validate a tables folder; non-zero on any "
                                                 "problem")

@@ -1,14 +1,47 @@
 """The WSGI entry that gunicorn serves: ``gunicorn 'service.wsgi:create_app()'``."""
 
+import os
 import sys
+import threading
 
 from service.app import create_app as _create_app
+
+#: Environment: valuations (POST requests) one worker process runs at once (default 3;
+#: 0 means no limit).
+VALUATIONS_PER_WORKER = "ANNUITY_VALUATIONS_PER_WORKER"
+
+
+class ValuationSlots:
+    """Let at most ``slots`` POST requests run the app at once in this process; the rest wait.
+
+    Gunicorn's threaded workers give each worker a few threads so that health checks and
+    metrics are answered while a long valuation runs. The slots keep valuations themselves
+    to one (by default) per worker, as many as with one thread per worker, so the threads
+    add no CPU or memory contention. GET requests (health, metrics, bases, the contract)
+    never wait for a slot.
+    """
+
+    def __init__(self, app, slots: int):
+        self.app = app
+        self.slots = threading.BoundedSemaphore(slots)
+
+    def __call__(self, environ, start_response):
+        if environ.get("REQUEST_METHOD") != "POST":
+            return self.app(environ, start_response)
+        with self.slots:
+            # Flask builds the whole response before returning it: the valuation is done
+            # when this call returns, and sending the bytes needs no slot.
+            return self.app(environ, start_response)
 
 
 def create_app(config: dict | None = None):
     """Build the app; stop with a clear message when the tables folder cannot be read."""
     try:
-        return _create_app(config)
+        app = _create_app(config)
     except OSError as exc:
         print(f"annuity-factor-service: cannot start: {exc}", file=sys.stderr, flush=True)
         raise SystemExit(2) from None
+    slots = int(os.environ.get(VALUATIONS_PER_WORKER, "3"))
+    if slots > 0:
+        app.wsgi_app = ValuationSlots(app.wsgi_app, slots)
+    return app

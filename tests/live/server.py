@@ -11,6 +11,8 @@ import time
 import urllib.request
 from pathlib import Path
 
+from service.serving import GUNICORN_CONF
+
 ROOT = Path(__file__).resolve().parents[2]
 GUNICORN = Path(sys.executable).with_name("gunicorn")
 
@@ -41,7 +43,7 @@ def running_service(*, workers: int = 2, env: dict | None = None, log=None):
                              "WEB_CONCURRENCY": str(workers),
                              "PROMETHEUS_MULTIPROC_DIR": metrics_dir} | (env or {})
     proc = subprocess.Popen(
-        [str(GUNICORN), "--config", str(ROOT / "deploy" / "gunicorn.conf.py")],
+        [str(GUNICORN), "--config", str(GUNICORN_CONF)],
         cwd=ROOT, env=full_env, stdout=log or subprocess.DEVNULL,
         stderr=log or subprocess.DEVNULL)
     url = f"http://127.0.0.1:{port}"
@@ -56,3 +58,19 @@ def running_service(*, workers: int = 2, env: dict | None = None, log=None):
             except subprocess.TimeoutExpired:
                 proc.kill()
                 proc.wait()
+
+
+def gunicorn_settings(env: dict | None = None) -> dict:
+    """The settings the gunicorn configuration gives under ``env`` (read, nothing started)."""
+    import runpy
+
+    saved = dict(os.environ)
+    metrics_dir = tempfile.mkdtemp(prefix="annuity-settings-metrics-")
+    try:
+        os.environ.update(env or {})
+        os.environ["PROMETHEUS_MULTIPROC_DIR"] = metrics_dir
+        return runpy.run_path(str(GUNICORN_CONF))
+    finally:
+        os.environ.clear()
+        os.environ.update(saved)
+        os.rmdir(metrics_dir)
