@@ -19,9 +19,16 @@ def create_app(config: dict | None = None) -> Flask:
     app.config.from_mapping(
         TABLES_DIR=str(DEFAULT_TABLES),
         MAX_ITEMS=10_000,
-        # Payment dates (and continuous segments) one request may evaluate: about five seconds
-        # of one core (bench/), well inside gunicorn's 60 s timeout.
-        MAX_EVALUATION_POINTS=40_000_000,
+        # Work units one request may need (about one per payment date or continuous segment,
+        # weighted by cost: engine/annuity.py _work). The slowest accepted request of each
+        # kind takes a few seconds of one core alone (bench/); with every worker busy it may
+        # take several times that, so the deadline below stops it before gunicorn would.
+        MAX_EVALUATION_POINTS=20_000_000,
+        # Rows one cash-flow schedule may have (a daily whole-life annuity from age 20 has
+        # about 40,000).
+        MAX_SCHEDULE_ROWS=50_000,
+        # A valuation still running after this many seconds is abandoned with a 503.
+        DEADLINE_SECONDS=30.0,
         MAX_CONTENT_LENGTH=4 * 1024 * 1024,
         REQUIRED_BASES=(),
         SERVICE_NAME="annuity-factor-service",
@@ -33,6 +40,8 @@ def create_app(config: dict | None = None) -> Flask:
     if os.environ.get("ANNUITY_REQUIRED_BASES"):
         app.config["REQUIRED_BASES"] = tuple(
             r.strip() for r in os.environ["ANNUITY_REQUIRED_BASES"].split(",") if r.strip())
+    if os.environ.get("ANNUITY_DEADLINE_SECONDS"):
+        app.config["DEADLINE_SECONDS"] = float(os.environ["ANNUITY_DEADLINE_SECONDS"])
     if os.environ.get("ANNUITY_TOKEN_SHA256"):
         app.config["AUTH_TOKEN_SHA256"] = tuple(
             h.strip().lower() for h in os.environ["ANNUITY_TOKEN_SHA256"].split(",") if h.strip())

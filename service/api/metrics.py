@@ -29,6 +29,8 @@ LATENCY = Histogram("annuity_http_request_duration_seconds",
                     ["route", "method", "status"],
                     buckets=(0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5,
                              5.0, 10.0))
+DEADLINES = Counter("annuity_deadlines_passed_total",
+                    "Valuations abandoned at their deadline (answered 503), by route.", ["route"])
 FACTORS = Counter("annuity_factors_computed_total",
                   "Annuity factors and schedules computed, by basis.", ["basis", "kind"])
 BASIS_INFO = Gauge("annuity_basis_info", "One series per loaded basis, with its digest.",

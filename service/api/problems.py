@@ -6,6 +6,8 @@ from flask import Flask, jsonify
 from werkzeug.exceptions import HTTPException
 
 from service.api.audit import audit_block, request_id
+from service.api.metrics import DEADLINES
+from service.engine.errors import DeadlineError
 
 log = logging.getLogger(__name__)
 
@@ -22,6 +24,7 @@ _TYPES = {
     415: "unsupported-media-type",
     422: "invalid-input",
     500: "internal-error",
+    503: "deadline-passed",
 }
 
 
@@ -72,6 +75,20 @@ def init_app(app: Flask) -> None:
     def _problem(exc: ProblemError):
         return problem_response(exc.status, exc.detail, title=exc.title, errors=exc.errors,
                                 errors_omitted=exc.errors_omitted)
+
+    @app.errorhandler(DeadlineError)
+    def _deadline(exc: DeadlineError):
+        from flask import request
+
+        seconds = app.config["DEADLINE_SECONDS"]
+        DEADLINES.labels(request.url_rule.rule if request.url_rule else "unmatched").inc()
+        log.warning("request %s abandoned at its %g s deadline", request_id(), seconds)
+        response = problem_response(
+            503, f"The valuation was abandoned at its deadline of {seconds:g} s (the service "
+                 "is busy, or the request is heavy): try again later, or split the batch.",
+            title="Deadline passed")
+        response.headers["Retry-After"] = "5"
+        return response
 
     @app.errorhandler(HTTPException)
     def _http(exc: HTTPException):

@@ -3,6 +3,7 @@
 import csv
 import io
 import json
+import time
 
 import numpy as np
 from flask import Blueprint, Response, current_app, g, jsonify, request
@@ -225,16 +226,16 @@ def annuity_factors():
     valuation = _valuation(basis, data)
     items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
     limit = current_app.config["MAX_EVALUATION_POINTS"]
+    deadline = time.monotonic() + current_app.config["DEADLINE_SECONDS"]
     warnings = request_warnings(basis, data, [(f"items.{n}", item)
                                               for n, item in enumerate(data["items"])])
     try:
-        valued = value_annuities(basis.tables, items, valuation, max_work=limit)
+        valued = value_annuities(basis.tables, items, valuation, max_work=limit,
+                                 deadline=deadline)
     except ItemError as exc:
         raise _item_problem(exc, "items.") from None
     except WorkLimitError as exc:
-        raise ProblemError(413, f"Valuing this batch needs {exc.work} payment dates; one "
-                                f"request may evaluate at most {exc.limit}. Split the batch.",
-                           title="Batch too large to value") from None
+        raise _too_much(exc, "Valuing this batch") from None
     bad = np.flatnonzero(~np.isfinite(valued.value))
     if bad.size:
         _finite(valued.value, f"items.{int(bad[0])}")
@@ -243,11 +244,18 @@ def annuity_factors():
                for v, code in zip(valued.value.tolist(), valued.method_code.tolist(),
                                   strict=True)]
     _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
-                  valuation, limit)
+                  valuation, limit, deadline)
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
 
 
-def _add_measures(results, basis, items, asked, valuation, limit):
+def _too_much(exc: WorkLimitError, what: str) -> ProblemError:
+    return ProblemError(413, f"{what} needs {exc.work} units of work (about one per payment "
+                             f"date or continuous segment, weighted by cost); one request may "
+                             f"need at most {exc.limit}. Split the batch.",
+                        title="Batch too large to value")
+
+
+def _add_measures(results, basis, items, asked, valuation, limit, deadline):
     """Add the sensitivities that items asked for to their results."""
     which = [n for n, measures in enumerate(asked) if measures]
     if not which:
@@ -255,11 +263,9 @@ def _add_measures(results, basis, items, asked, valuation, limit):
     key_rates = any("key_rate_durations" in asked[n] for n in which)
     try:
         got = annuity_measures(basis.tables, [items[n] for n in which], valuation,
-                               key_rates=key_rates, max_work=limit)
+                               key_rates=key_rates, max_work=limit, deadline=deadline)
     except WorkLimitError as exc:
-        raise ProblemError(413, f"The measures asked for need {exc.work} evaluation points; "
-                                f"one request may evaluate at most {exc.limit}. Split the "
-                                "batch.", title="Batch too large to value") from None
+        raise _too_much(exc, "The measures asked for") from None
     factors = valuation.curve.factors()
 
     def number(x):
@@ -293,7 +299,12 @@ def cash_flow_schedules():
     (item,) = _engine_items(basis, [data["item"]], lambda n: "item")
     warnings = request_warnings(basis, data, [("item", data["item"])])
     try:
-        sched = cash_flow_schedule(basis.tables, item, valuation)
+        sched = cash_flow_schedule(basis.tables, item, valuation,
+                                   max_work=current_app.config["MAX_SCHEDULE_ROWS"])
+    except WorkLimitError as exc:
+        raise ProblemError(413, f"This schedule would have {exc.work} rows; one schedule may "
+                                f"have at most {exc.limit}. Ask for fewer payments a year or a "
+                                "shorter term.", title="Schedule too large") from None
     except ItemError as exc:
         raise ProblemError(422, "The item is impossible under this basis.", errors={
             "item." + path.partition(".")[2]: msgs for path, msgs in exc.errors.items()}) \

@@ -18,6 +18,7 @@ continuous payments as the exact integral of the same product within each year o
 
 import math
 import numbers
+import time
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -25,7 +26,7 @@ import numpy as np
 
 from service.engine import integrals
 from service.engine.curves import Curve, Measures, Moments
-from service.engine.errors import ItemError, WorkLimitError
+from service.engine.errors import DeadlineError, ItemError, WorkLimitError
 from service.engine.interest import annuity_certain
 from service.engine.survival import ASSUMPTIONS, Lives, build_lives
 
@@ -435,7 +436,8 @@ def _guaranteed_values(batch: _Batch, which: np.ndarray, delta: float):
     return np.bincount(loc, weights=pv, minlength=which.size).astype(float)
 
 
-def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximation: str):
+def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximation: str,
+                     deadline: float | None = None):
     """Return the values of the discrete items ``which`` and whether Woolhouse valued any
     year of each."""
     count = _payment_count(batch)[which]
@@ -467,6 +469,7 @@ def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximati
         hi.append(np.minimum((k[bad] + 1) * m[loc[bad]], count[loc[bad]]))
     owner, lo, hi = np.concatenate(owner), np.concatenate(lo), np.concatenate(hi)
     for part in _chunks(np.maximum(hi - lo, 0)):
+        _on_time(deadline)
         o, j = _expand(owner[part], lo[part], hi[part])
         pts = _points(batch, which[o], j, curve)
         values += np.bincount(o, weights=pts.present_value, minlength=which.size)
@@ -489,14 +492,39 @@ def _woolhouse_years(batch: _Batch, which: np.ndarray, approximation: str):
     return k0, np.where(woolhouse, np.maximum(k1, k0), k0)
 
 
+#: Work units of one continuous segment, by assumption and number of lives, relative to one
+#: payment date (measured side by side; bench/ reports the slowest accepted request of each
+#: kind). Balducci integrates near its pole by splitting, and two lives compound it.
+_SEGMENT_COST = {("udd", 1): 1, ("udd", 2): 2, ("constant-force", 1): 1,
+                 ("constant-force", 2): 2, ("balducci", 1): 3, ("balducci", 2): 10}
+
+
 def _work(batch: _Batch, curve: Curve) -> np.ndarray:
-    """Evaluation points per item: payment dates summed, or continuous segments."""
+    """Work units per item, each about the cost of valuing one payment date.
+
+    Discrete items: the payment dates summed, plus one unit per year of a guarantee valued
+    in closed form (its arrays cost memory though little time). Continuous items: their
+    segments, weighted by what integrating one costs under the assumption for one or two
+    lives.
+    """
     count = _payment_count(batch)
-    closed_form = batch.guaranteed if curve.constant_force is not None else 0
-    discrete = np.maximum(count - closed_form, 0)
+    if curve.constant_force is not None:
+        closed = np.minimum(batch.guaranteed, count)
+        discrete = count - closed + -(-closed // batch.m)
+    else:
+        discrete = count
     span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
     segments = 3 * np.ceil(span + 2).astype(np.int64) + curve.nodes().size
-    return np.where(batch.continuous, segments, discrete)
+    two = batch.second >= 0
+    assumption = batch.lives.assumption
+    weight = np.where(two, _SEGMENT_COST[(assumption, 2)], _SEGMENT_COST[(assumption, 1)])
+    return np.where(batch.continuous, segments * weight, discrete)
+
+
+def _on_time(deadline: float | None) -> None:
+    """Raise DeadlineError once ``deadline`` (a time.monotonic() value) has passed."""
+    if deadline is not None and time.monotonic() > deadline:
+        raise DeadlineError("the valuation passed its deadline")
 
 
 def _woolhouse_blocks(batch, which, local, k0, k1, curve: Curve, approximation):
@@ -719,9 +747,11 @@ def _pair(assumption, q1, r1, q2, r2, delta, length):
     return integrals.balducci_pair(q1, r1, q2, r2, delta, length)
 
 
-def _continuous_values(batch: _Batch, which: np.ndarray, curve: Curve):
+def _continuous_values(batch: _Batch, which: np.ndarray, curve: Curve,
+                       deadline: float | None = None):
     values = np.zeros(which.size)
     for part in _chunks(_work(batch, curve)[which]):
+        _on_time(deadline)
         seg = _segments(batch, which[part], curve)
         values[part] += np.bincount(seg.owner, weights=seg.present_value, minlength=part.size)
     return values
@@ -747,8 +777,8 @@ class Values:
         return self.methods[int(self.method_code[n])]
 
 
-def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None
-                    ) -> Values:
+def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None,
+                    deadline: float | None = None) -> Values:
     """Return the present value of 1 p.a. for each item, and the method that valued it.
 
     Parameters
@@ -757,15 +787,19 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     items : sequence of Item
     valuation : Valuation (interest, fractional-age assumption, m-thly approximation)
 
-    max_work : optional bound on the payment dates and segments evaluated (the work is
-        linear in it); beyond it nothing is computed.
+    max_work : optional bound on the work units (see ``_work``: about one per payment date
+        or segment); beyond it nothing is computed.
+    deadline : optional time.monotonic() value after which the valuation is abandoned
+        (checked between chunks of work).
 
     Raises
     ------
     ItemError
         With paths such as ``"3.lives.0.age"`` for items impossible under the tables.
     WorkLimitError
-        When the batch needs more than ``max_work`` evaluation points.
+        When the batch needs more than ``max_work`` work units.
+    DeadlineError
+        When the deadline passes.
     """
     batch = _prepare(tables, items, valuation)
     curve = valuation.curve
@@ -775,11 +809,11 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     discrete = np.flatnonzero(~batch.continuous)
     if discrete.size:
         values[discrete], used = _discrete_values(batch, discrete, curve,
-                                                  valuation.approximation)
+                                                  valuation.approximation, deadline)
         code[discrete] = np.where(used, WOOLHOUSE_SUM, EXACT_SUM)
     cont = np.flatnonzero(batch.continuous)
     if cont.size:
-        values[cont] = _continuous_values(batch, cont, curve)
+        values[cont] = _continuous_values(batch, cont, curve, deadline)
     return Values(values, code, methods(valuation))
 
 
@@ -791,7 +825,7 @@ def _check_work(batch: _Batch, curve: Curve, max_work: int | None) -> None:
 
 
 def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = True,
-                     max_work: int | None = None) -> Measures:
+                     max_work: int | None = None, deadline: float | None = None) -> Measures:
     """Return each item's value with its sensitivities to the interest structure.
 
     Duration -(1/V) dV/dy, convexity (1/V) d2V/dy2 and the key-rate durations, for shifts y of
@@ -810,6 +844,7 @@ def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = T
     discrete = np.flatnonzero(~batch.continuous)
     count = _payment_count(batch)
     for part in _chunks(count[discrete]):
+        _on_time(deadline)
         which = discrete[part]
         own, j = _expand(which, np.zeros(which.size, dtype=np.int64), count[which])
         pts = _points(batch, own, j, curve)
@@ -818,6 +853,7 @@ def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = T
     cont = np.flatnonzero(batch.continuous)
     # A rule has up to 12 points per segment: chunks of a twelfth of the usual work.
     for part in _chunks(_work(batch, curve)[cont] * 12):
+        _on_time(deadline)
         which = cont[part]
         cut = _cut(batch, which, curve)
         q1, r1, _ = _life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
@@ -857,7 +893,8 @@ class Schedule:
     method: dict
 
 
-def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
+def cash_flow_schedule(tables, item: Item, valuation: Valuation, *,
+                       max_work: int | None = None) -> Schedule:
     """Return one row per possible payment date of ``item`` (exact summation).
 
     For continuous payments there is one row per year of the window: ``time`` is the start of
@@ -868,6 +905,11 @@ def cash_flow_schedule(tables, item: Item, valuation: Valuation) -> Schedule:
     """
     batch = _prepare(tables, [item], valuation)
     curve = valuation.curve
+    # Every date of a schedule is a row: its work is its dates, guaranteed ones included.
+    work = int(_payment_count(batch)[0]) if not batch.continuous[0] else int(
+        _work(batch, curve)[0])
+    if max_work is not None and work > max_work:
+        raise WorkLimitError(work, max_work)
     which = np.array([0])
     if not batch.continuous[0]:
         own, j = _expand(which, np.zeros(1, dtype=np.int64), _payment_count(batch))

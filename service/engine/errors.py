@@ -37,3 +37,7 @@ class WorkLimitError(EngineError):
         self.work = work
         self.limit = limit
         super().__init__(f"{work} evaluation points needed, at most {limit} allowed")
+
+
+class DeadlineError(EngineError):
+    """The valuation was still running at its deadline and was abandoned."""

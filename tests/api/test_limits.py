@@ -100,9 +100,9 @@ class TestWorkLimit:
         problem = assert_problem(app.test_client().post(URL, json=body), 413)
         assert "Split the batch" in problem["detail"]
 
-    def test_guaranteed_payments_cost_no_dates(self):
+    def test_guaranteed_payments_cost_a_unit_a_year(self):
         # The guaranteed part is valued in closed form, year by year: a long daily guarantee
-        # is cheap, and equals the sum of its payments.
+        # costs a unit a year (its arrays), and equals the sum of its payments.
         app = create_app({"TESTING": True, "MAX_EVALUATION_POINTS": 50_000})
         item = {"lives": [{"age": 60}], "timing": "advance", "frequency": 365, "term": 100,
                 "guarantee": 100}
@@ -114,6 +114,50 @@ class TestWorkLimit:
         assert len(rows["rows"]) == 36_500
         value = factor.get_json()["results"][0]["value"]
         assert abs(rows["totals"]["present_value"] / value - 1) < 1e-12
+
+    def test_work_is_priced_by_what_it_costs(self):
+        # A continuous segment costs what integrating it costs: two lives under Balducci
+        # split their pieces near both poles.
+        from service.engine.annuity import Item, Life, Payments, Valuation, _prepare, _work
+        from tests.reference import models
+
+        two = Item((Life(30.0), Life(28.0)), Payments("continuous"), (1, 1, 1))
+        one = Item((Life(30.0),), Payments("continuous"))
+        costs = {}
+        for assumption in ("udd", "balducci"):
+            val = Valuation(0.04, assumption)
+            for name, item in (("one", one), ("two", two)):
+                batch = _prepare([models.susm()], [item], val)
+                costs[assumption, name] = int(_work(batch, val.curve)[0])
+        # The same segments, priced: one life 1 (UDD) or 3 (Balducci), two lives 2 or 10.
+        assert costs["balducci", "one"] == 3 * costs["udd", "one"]
+        assert costs["balducci", "two"] == 5 * costs["udd", "two"]
+
+    def test_a_schedule_too_long_is_413(self):
+        app = create_app({"TESTING": True, "MAX_SCHEDULE_ROWS": 1000})
+        item = {"lives": [{"age": 60}], "timing": "advance", "frequency": 365}
+        problem = assert_problem(app.test_client().post("/v1/cash-flow-schedules", json={
+            "basis": "standard-ultimate", "item": item}), 413)
+        assert "rows" in problem["detail"]
+        short = item | {"frequency": 12, "term": 10}
+        assert app.test_client().post("/v1/cash-flow-schedules", json={
+            "basis": "standard-ultimate", "item": short}).status_code == 200
+
+    @pytest.mark.parametrize("measures", ([], ["duration"]))
+    def test_a_valuation_past_its_deadline_is_503_counted(self, measures):
+        from service.api.metrics import DEADLINES
+
+        app = create_app({"TESTING": True, "DEADLINE_SECONDS": -1.0})
+        route = "/v1/annuity-factors"
+        before = DEADLINES.labels(route)._value.get()
+        body = {"basis": "standard-ultimate", "items": [
+            {"lives": [{"age": 60}], "timing": "advance", "frequency": 12,
+             "measures": measures}]}
+        response = app.test_client().post(URL, json=body)
+        problem = assert_problem(response, 503)
+        assert response.headers["Retry-After"] == "5"
+        assert "deadline" in problem["detail"]
+        assert DEADLINES.labels(route)._value.get() == before + 1
 
     def test_charset_other_than_utf8_is_415(self, client):
         response = client.post(URL, data=json.dumps(VALID).encode("latin-1"),
