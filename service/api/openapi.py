@@ -34,6 +34,8 @@ _ERRORS = {
     "415": "The body is not application/json.",
     "406": "The Accept header allows neither application/json nor text/csv.",
     "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
+    "503": "The valuation was abandoned at its deadline (busy service or heavy request); "
+           "retry later (Retry-After) or split the batch.",
     "401": "Bearer-token authentication is configured and no valid token was sent.",
 }
 
@@ -95,6 +97,10 @@ def build_spec(max_items: int, version: str = "") -> dict:
         ("BasisDefaults", s.BasisDefaultsSchema), ("BasisDetail", s.BasisDetailSchema),
         ("LifeTableRow", s.LifeTableRowSchema), ("LifeTable", s.LifeTableSchema),
         ("Problem", s.ProblemSchema), ("Health", s.HealthSchema),
+        ("InsuranceItem", s.InsuranceItemSchema), ("InsuranceRequest", s.InsuranceRequestSchema),
+        ("InsuranceResult", s.InsuranceResultSchema),
+        ("InsuranceResponse", s.InsuranceResponseSchema), ("KeyRate", s.KeyRateSchema),
+        ("Warning", s.WarningSchema),
     ]:
         spec.components.schema(name, schema=schema)
     spec.path("/v1/bases", operations={"get": {
@@ -136,7 +142,15 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "requestBody": {"required": True, "content": {"application/json": {
             "schema": {"$ref": "#/components/schemas/FactorRequest"}}}},
         "responses": _ok("FactorResponse", "results[i] answers items[i].")
-        | _problem_responses("400", "401", "404", "413", "415", "422")}})
+        | _problem_responses("400", "401", "404", "413", "415", "422", "503")}})
+    spec.path("/v1/insurance-factors", operations={"post": {
+        "operationId": "insuranceFactors", "security": _AUTH,
+        "summary": f"One or many insurance factors under one basis (at most {max_items} "
+                   "items), each with its second moment.",
+        "requestBody": {"required": True, "content": {"application/json": {
+            "schema": {"$ref": "#/components/schemas/InsuranceRequest"}}}},
+        "responses": _ok("InsuranceResponse", "results[i] answers items[i].")
+        | _problem_responses("400", "401", "404", "413", "415", "422", "503")}})
     spec.path("/v1/cash-flow-schedules", operations={"post": {
         "operationId": "cashFlowSchedules", "security": _AUTH,
         "summary": "The expected payment schedule behind one factor, as JSON or as CSV "

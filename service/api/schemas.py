@@ -14,6 +14,7 @@ from marshmallow import (
 
 from service.engine.annuity import MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS
 from service.engine.curves import KINDS, MAX_POINTS, Curve, CurveError
+from service.engine.insurance import BENEFIT_TIMINGS, COVERS, STATUSES
 
 #: Named survivorship patterns: amounts while (both alive, only first alive, only second alive).
 SURVIVORSHIP_SHORTCUTS = {
@@ -27,6 +28,27 @@ MAX_YEARS = 200.0
 MEASURES = ("duration", "convexity", "key_rate_durations")
 #: Periods that may be given in years or in whole months.
 _MONTHS = ("term", "deferral", "guarantee")
+
+
+def _months_checked(data: dict, original, names) -> tuple[dict, dict]:
+    """Refuse a period given both in years and in months; return (errors, years by name)."""
+    errors = {}
+    given = original if isinstance(original, dict) else {}
+    for name in names:
+        if name in given and f"{name}_months" in given:
+            errors[f"{name}_months"] = [f"Give {name} or {name}_months, not both."]
+    years = {name: data[f"{name}_months"] / 12 if f"{name}_months" in data else data.get(name)
+             for name in names}
+    return errors, years
+
+
+def _months_to_years(data: dict, names) -> dict:
+    """Turn whole months into years, so that only years travel on."""
+    for name in names:
+        months = data.pop(f"{name}_months", None)
+        if months is not None:
+            data[name] = months / 12
+    return data
 
 
 class StrictFloat(fields.Float):
@@ -178,13 +200,7 @@ class ItemSchema(_Strict):
 
     @validates_schema(pass_original=True)
     def _consistent(self, data, original, **kwargs):
-        errors = {}
-        given = original if isinstance(original, dict) else {}
-        for name in _MONTHS:
-            if name in given and f"{name}_months" in given:
-                errors[f"{name}_months"] = [f"Give {name} or {name}_months, not both."]
-        years = {name: data[f"{name}_months"] / 12 if f"{name}_months" in data else data.get(name)
-                 for name in _MONTHS}
+        errors, years = _months_checked(data, original, _MONTHS)
         term, guarantee = years["term"], years["guarantee"] or 0.0
         if term is not None and guarantee > term:
             errors["guarantee"] = [f"A guarantee of {guarantee:g} years is longer than the "
@@ -202,12 +218,7 @@ class ItemSchema(_Strict):
 
     @post_load
     def _years(self, data, **kwargs):
-        """Turn whole months into years, so that only years travel on."""
-        for name in _MONTHS:
-            months = data.pop(f"{name}_months", None)
-            if months is not None:
-                data[name] = months / 12
-        return data
+        return _months_to_years(data, _MONTHS)
 
 
 #: Request rates (a flat interest_rate or each rate of an interest structure) lie here.
@@ -284,6 +295,62 @@ class ScheduleRequestSchema(_Priced):
                          metadata={"description": "Annual amount; every row is scaled by it."})
 
 
+class InsuranceItemSchema(_Strict):
+    lives = fields.List(fields.Nested(LifeSchema), required=True,
+                        validate=validate.Length(1, 2),
+                        metadata={"description": "One life, or two for a joint cover."})
+    cover = fields.String(required=True, validate=validate.OneOf(COVERS), metadata={
+        "description": "whole-life; term (pays on death within the term); endowment (on death "
+                       "within the term or on survival to its end); pure-endowment (on "
+                       "survival to the end of the term only)."})
+    term = StrictFloat(allow_none=True, load_default=None,
+                       validate=validate.Range(0, MAX_YEARS, min_inclusive=False),
+                       metadata={"description": "Years of cover after the deferral; needed "
+                                                "by every cover but whole-life."})
+    deferral = StrictFloat(load_default=0.0, validate=validate.Range(0, MAX_YEARS),
+                           metadata={"description": "Years before cover starts."})
+    term_months = fields.Integer(strict=True, validate=validate.Range(1, 12 * int(MAX_YEARS)),
+                                 metadata={"description": "The term in whole months."})
+    deferral_months = fields.Integer(strict=True,
+                                     validate=validate.Range(0, 12 * int(MAX_YEARS)),
+                                     metadata={"description": "The deferral in whole months."})
+    escalation = StrictFloat(load_default=0.0, validate=validate.Range(-0.5, 1.0), metadata={
+        "description": "Compound annual growth of the benefit by policy year: (1 + r)^k on "
+                       "death in the k-th year after the deferral (k = 0, 1, ...); a survival "
+                       "benefit is that of the last policy year."})
+    benefit_timing = fields.String(load_default="end-of-year",
+                                   validate=validate.OneOf(BENEFIT_TIMINGS), metadata={
+        "description": "end-of-year (of the policy year of death), end-of-period (of the "
+                       "1/frequency of a year in which death occurs) or moment-of-death."})
+    frequency = fields.Integer(strict=True, load_default=1,
+                               validate=validate.Range(1, MAX_FREQUENCY),
+                               metadata={"description": "Periods a year for end-of-period."})
+    on = fields.String(validate=validate.OneOf(STATUSES), metadata={
+        "description": "Two lives (required): pay on the first-death or the second-death."})
+
+    @validates_schema(pass_original=True)
+    def _consistent(self, data, original, **kwargs):
+        errors, years = _months_checked(data, original, ("term", "deferral"))
+        if data.get("cover") not in (None, "whole-life") and years["term"] is None:
+            errors["term"] = [f"A {data['cover']} cover needs a term (or term_months)."]
+        lives = data.get("lives") or []
+        if len(lives) == 2 and "on" not in data:
+            errors["on"] = ["Two lives need on: first-death or second-death."]
+        if len(lives) == 1 and "on" in data:
+            errors["on"] = ["on applies to two lives; this item has one."]
+        if errors:
+            raise ValidationError(errors)
+
+    @post_load
+    def _years(self, data, **kwargs):
+        return _months_to_years(data, ("term", "deferral"))
+
+
+class InsuranceRequestSchema(_Priced):
+    items = fields.List(fields.Nested(InsuranceItemSchema), required=True,
+                        validate=validate.Length(min=1))
+
+
 # ---- responses (for the contract and for tests) -------------------------------------------
 
 
@@ -329,6 +396,7 @@ class MethodSchema(Schema):
         "description": "Three-term Woolhouse only: how the force of mortality was estimated."})
     discounting = fields.String(required=True, metadata={
         "description": "How each payment's discount factor was computed."})
+    second_moment = fields.String(metadata={"description": "Insurance: how it was computed."})
 
 
 class WarningSchema(Schema):
@@ -359,6 +427,20 @@ class FactorResultSchema(Schema):
         "description": "With measures: (1/V) d2V/dy2."})
     key_rate_durations = fields.List(fields.Nested(KeyRateSchema), metadata={
         "description": "With measures: one per spot term or band; they sum to the duration."})
+
+
+class InsuranceResultSchema(Schema):
+    value = fields.Float(required=True, metadata={"description": "E[Z], Z the present value."})
+    second_moment = fields.Float(required=True, metadata={
+        "description": "E[Z^2]: the benefit squared at double the force of interest; the "
+                       "variance of the present value is second_moment - value^2."})
+    method = fields.Nested(MethodSchema, required=True)
+
+
+class InsuranceResponseSchema(Schema):
+    results = fields.List(fields.Nested(InsuranceResultSchema), required=True)
+    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
+    audit = fields.Nested(AuditSchema, required=True)
 
 
 class FactorResponseSchema(Schema):

@@ -14,6 +14,7 @@ from service.api.metrics import FACTORS
 from service.api.problems import ProblemError
 from service.api.schemas import (
     FactorRequestSchema,
+    InsuranceRequestSchema,
     LifeTableQuerySchema,
     ScheduleRequestSchema,
 )
@@ -30,11 +31,13 @@ from service.engine.annuity import (
 )
 from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
+from service.engine.insurance import Assurance, Cover, insurance_values
 from service.engine.lifetable import life_table_columns
 
 bp = Blueprint("api", __name__)
 
 _factor_request = FactorRequestSchema()
+_insurance_request = InsuranceRequestSchema()
 _schedule_request = ScheduleRequestSchema()
 _life_table_query = LifeTableQuerySchema()
 
@@ -166,8 +169,12 @@ def _wants_csv() -> bool:
     return best == "text/csv"
 
 
-def _engine_items(basis, items, path_of):
-    """Turn loaded items into engine items; ``path_of(n)`` names item n in error paths."""
+def _engine_items(basis, items, path_of, build=None):
+    """Turn loaded items into engine items; ``path_of(n)`` names item n in error paths.
+
+    ``build(item, lives)`` makes the engine item from a loaded item and its engine lives
+    (default: an annuity item).
+    """
     out = []
     missing = {}
     for n, item in enumerate(items):
@@ -181,14 +188,26 @@ def _engine_items(basis, items, path_of):
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
                               age_adjustment=life["age_adjustment"],
                               mortality_multiplier=life["mortality_multiplier"]))
-        payments = Payments(timing=item["timing"], frequency=item["frequency"],
-                            term=item["term"], deferral=item["deferral"],
-                            guarantee=item["guarantee"], escalation=item["escalation"])
-        survivorship = item.get("survivorship", (1.0, 1.0, 1.0))  # (one life: it is paid)
-        out.append(Item(tuple(lives), payments, survivorship, item["start_requires"]))
+        out.append((build or _annuity_item)(item, tuple(lives)))
     if missing:
         raise ProblemError(422, "The request has invalid fields.", errors=missing)
     return out
+
+
+def _annuity_item(item, lives) -> Item:
+    payments = Payments(timing=item["timing"], frequency=item["frequency"], term=item["term"],
+                        deferral=item["deferral"], guarantee=item["guarantee"],
+                        escalation=item["escalation"])
+    survivorship = item.get("survivorship", (1.0, 1.0, 1.0))  # (one life: it is paid)
+    return Item(lives, payments, survivorship, item["start_requires"])
+
+
+def _assurance(item, lives) -> Assurance:
+    return Assurance(lives, Cover(cover=item["cover"], term=item["term"],
+                                  deferral=item["deferral"], escalation=item["escalation"],
+                                  benefit_timing=item["benefit_timing"],
+                                  frequency=item["frequency"],
+                                  on=item.get("on", "first-death")))
 
 
 def _valuation(basis, data):
@@ -210,9 +229,9 @@ def _item_problem(exc: ItemError, prefix: str) -> ProblemError:
     return ProblemError(422, "Some items are impossible under this basis.", errors=errors)
 
 
-@bp.post("/v1/annuity-factors")
-def annuity_factors():
-    """One or many annuity factors under one basis."""
+def _batch(schema, build=None):
+    """Read a batch request: (data, basis, valuation, engine items, warnings, work limit,
+    deadline)."""
     body = json_body()
     limit = current_app.config["MAX_ITEMS"]
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
@@ -220,15 +239,22 @@ def annuity_factors():
     if count > limit:
         raise ProblemError(413, f"A request may hold at most {limit} items; this one has "
                                 f"{count}.", errors={"items": [f"At most {limit} items."]})
-    data = load(_factor_request, body)
+    data = load(schema, body)
     g.item_count = len(data["items"])
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
-    items = _engine_items(basis, data["items"], lambda n: f"items.{n}")
-    limit = current_app.config["MAX_EVALUATION_POINTS"]
-    deadline = time.monotonic() + current_app.config["DEADLINE_SECONDS"]
+    items = _engine_items(basis, data["items"], lambda n: f"items.{n}", build)
     warnings = request_warnings(basis, data, [(f"items.{n}", item)
                                               for n, item in enumerate(data["items"])])
+    deadline = time.monotonic() + current_app.config["DEADLINE_SECONDS"]
+    return (data, basis, valuation, items, warnings,
+            current_app.config["MAX_EVALUATION_POINTS"], deadline)
+
+
+@bp.post("/v1/annuity-factors")
+def annuity_factors():
+    """One or many annuity factors under one basis."""
+    data, basis, valuation, items, warnings, limit, deadline = _batch(_factor_request)
     try:
         valued = value_annuities(basis.tables, items, valuation, max_work=limit,
                                  deadline=deadline)
@@ -245,6 +271,29 @@ def annuity_factors():
                                   strict=True)]
     _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
                   valuation, limit, deadline)
+    return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+
+
+@bp.post("/v1/insurance-factors")
+def insurance_factors():
+    """One or many insurance factors, with their second moments, under one basis."""
+    data, basis, valuation, items, warnings, limit, deadline = _batch(_insurance_request,
+                                                                      _assurance)
+    try:
+        valued = insurance_values(basis.tables, items, valuation, max_work=limit,
+                                  deadline=deadline)
+    except ItemError as exc:
+        raise _item_problem(exc, "items.") from None
+    except WorkLimitError as exc:
+        raise _too_much(exc, "Valuing this batch") from None
+    for values in (valued.value, valued.second_moment):
+        bad = np.flatnonzero(~np.isfinite(values))
+        if bad.size:
+            _finite(values, f"items.{int(bad[0])}")
+    FACTORS.labels(basis.ref, "insurance").inc(len(items))
+    results = [{"value": v, "second_moment": v2, "method": valued.methods[code]}
+               for v, v2, code in zip(valued.value.tolist(), valued.second_moment.tolist(),
+                                      valued.method_code.tolist(), strict=True)]
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
 
 

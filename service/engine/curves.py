@@ -345,6 +345,16 @@ class Curve:
             raise CurveError(errors)
         return cls(kind, tuple(knots), tuple(rates))
 
+    def doubled(self) -> "Curve":
+        """Return the same structure at twice every force of interest: D(t)^2 for D(t).
+
+        Each rate i becomes (1 + i)^2 - 1, which doubles ln(1 + i); spot interpolation, bands
+        and compounding are linear in those forces, so the discount factor is squared. (The
+        second moment of a benefit's present value is its value at double the force.)
+        """
+        return Curve(self.kind, self.knots, tuple(math.expm1(2 * math.log1p(r))
+                                                  for r in self.rates))
+
     def describe(self) -> dict:
         """Return the canonical audit form: kind, terms or edges, and rates as floats.
 

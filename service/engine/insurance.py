@@ -1,0 +1,219 @@
+"""Insurance factors: the present value of a benefit paid on death (or on survival).
+
+Conventions (times in years from the valuation date; u the deferral, n the term):
+
+- ``whole-life`` pays on death after u; ``term`` on death in (u, u + n]; ``pure-endowment``
+  on survival to u + n; ``endowment`` on death in (u, u + n] or on survival to u + n.
+- The benefit on death in policy year k (the k-th whole year after u, k = 0, 1, ...) is
+  (1 + r)^k, r the escalation; a survival benefit is that of the last policy year.
+- ``end-of-year`` pays at the end of the policy year of death, ``end-of-period`` at the end
+  of the 1/m of a year in which death occurs, ``moment-of-death`` at once.
+- Two lives: ``first-death`` pays when the first of them dies (the joint-life status fails),
+  ``second-death`` when the second does (the last-survivor status fails); a survival benefit
+  needs both alive (first-death) or either (second-death) at u + n.
+
+With W(t) the probability that the status is still intact at t (single life: t p_x) and D(t)
+the discount factor, the death benefit is
+
+    sum_j b_j D(t_j+1) [W(t_j) - W(t_j+1)]          (t_j = u + j/m; m = 1 for end-of-year)
+    integral b(t) D(t) (-W'(t)) dt                   (moment of death)
+
+and the moment-of-death integral is taken per segment [a, b] on which nothing changes its
+formula as D(a) W(a) - D(b) W(b) - integral F D W, F the forward force of interest (integration
+by parts), so the continuous annuity machinery gives it exactly. The second moment is the
+same benefit squared at double the force of interest (Bowers et al., Actuarial Mathematics,
+the rule of moments), so the variance of the present value is second_moment - value^2.
+"""
+
+import math
+from dataclasses import dataclass, replace
+
+import numpy as np
+
+from service.engine import annuity as _a
+from service.engine.annuity import Item, Life, Payments, Valuation
+from service.engine.curves import Curve
+from service.engine.errors import ItemError, WorkLimitError
+
+COVERS = ("whole-life", "term", "endowment", "pure-endowment")
+BENEFIT_TIMINGS = ("end-of-year", "end-of-period", "moment-of-death")
+STATUSES = ("first-death", "second-death")
+#: W(t) as survivorship amounts: the joint-life status, or the last-survivor status.
+_STATUS_AMOUNTS = {"first-death": (1.0, 0.0, 0.0), "second-death": (1.0, 1.0, 1.0)}
+
+
+@dataclass(frozen=True)
+class Cover:
+    """What is paid, when, and for how long."""
+
+    cover: str = "whole-life"
+    term: float | None = None
+    deferral: float = 0.0
+    escalation: float = 0.0
+    benefit_timing: str = "end-of-year"
+    frequency: int = 1  # periods a year for end-of-period
+    on: str = "first-death"  # two lives
+
+
+@dataclass(frozen=True)
+class Assurance:
+    """One insurance item: one or two lives and the cover."""
+
+    lives: tuple[Life, ...]
+    cover: Cover = Cover()
+
+
+@dataclass(frozen=True, eq=False)
+class InsuranceValues:
+    value: np.ndarray
+    second_moment: np.ndarray
+    methods: tuple[dict, ...]
+    method_code: np.ndarray
+
+    def method(self, n: int) -> dict:
+        return self.methods[int(self.method_code[n])]
+
+
+def _check(items) -> dict[str, list[str]]:
+    errors: dict[str, list[str]] = {}
+    for n, item in enumerate(items):
+        c = item.cover
+        if c.cover not in COVERS:
+            errors[f"{n}.cover"] = [f"must be one of {', '.join(COVERS)}"]
+        elif c.cover != "whole-life" and c.term is None:
+            errors[f"{n}.term"] = [f"a {c.cover} cover needs a term"]
+        if c.benefit_timing not in BENEFIT_TIMINGS:
+            errors[f"{n}.benefit_timing"] = [f"must be one of {', '.join(BENEFIT_TIMINGS)}"]
+        if c.on not in STATUSES:
+            errors[f"{n}.on"] = [f"must be one of {', '.join(STATUSES)}"]
+    return errors
+
+
+def _annuity_item(item: Assurance, *, squared: bool) -> Item:
+    """The annuity item whose batch carries the same lives, window and W(t)."""
+    c = item.cover
+    continuous = c.benefit_timing == "moment-of-death"
+    m = 1 if c.benefit_timing == "end-of-year" or continuous else c.frequency
+    growth = math.expm1(2 * math.log1p(c.escalation)) if squared else c.escalation
+    payments = Payments("continuous" if continuous else "arrears", m, c.term, c.deferral, 0.0,
+                        growth)
+    amounts = _STATUS_AMOUNTS[c.on] if len(item.lives) == 2 else _a.LAST_SURVIVOR
+    return Item(item.lives, payments, amounts)
+
+
+def _death_discrete(batch, which, curve: Curve, deadline):
+    """sum_j b_j D(t_j+1) [W(t_j) - W(t_j+1)] over the periods of the window."""
+    count = _a._payment_count(batch)[which]  # periods that can hold a death
+    values = np.zeros(which.size)
+    local = np.arange(which.size)
+    for part in _a._chunks(count):
+        _a._on_time(deadline)
+        o, j = _a._expand(local[part], np.zeros(part.size, dtype=np.int64), count[part])
+        own = which[o]
+        mo = batch.m[own]
+        t0 = batch.deferral[own] + j / mo
+        t1 = t0 + 1.0 / mo
+        died = batch.life_weight(own, t0) - batch.life_weight(own, t1)
+        pv = np.exp((j // mo) * batch.growth[own]) * curve.discount(t1) * died
+        values += np.bincount(o, weights=pv, minlength=which.size)
+    return values
+
+
+def _death_continuous(batch, which, curve: Curve, deadline):
+    """integral b(t) D(t) (-W'(t)) dt, segment by segment, by parts."""
+    values = np.zeros(which.size)
+    for part in _a._chunks(_a._work(batch, curve)[which]):
+        _a._on_time(deadline)
+        cut = _a._cut(batch, which[part], curve)
+        a, b = cut.t1, cut.t1 + cut.length
+        ends = (curve.discount(a) * batch.life_weight(cut.own, a)
+                - curve.discount(b) * batch.life_weight(cut.own, b))
+        if curve.curved:
+            # The forward force varies within a piece: integrate F D W by the rule.
+            q1, r1, _ = _a._life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
+            rates = [(q1, r1)]
+            has2 = batch.second[cut.own] >= 0
+            if has2.any():
+                q2, r2, _ = _a._life_part(batch, np.maximum(batch.second[cut.own], 0),
+                                          cut.t1, cut.mid)
+                rates.append((np.where(has2, q2, 0.0), r2))
+            decay, pole = _a._rule_shape(batch.lives.assumption, rates)
+            rule = curve.gauss_rule(cut.t1, cut.length, order=12, decay=decay, pole=pole)
+            g = curve.forward_force(rule.time) * batch.life_weight(cut.own[rule.piece],
+                                                                   rule.time)
+            carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
+        else:
+            carried = curve.pieces(a, cut.length).force * _a._segment_integral(batch, cut, curve)
+        values[part] += np.bincount(cut.owner, weights=cut.growth * (ends - carried),
+                                    minlength=part.size)
+    return values
+
+
+def _survival_benefit(batch, items, curve: Curve):
+    """b D(u + n) W(u + n) for the items with a survival benefit (0 for the others)."""
+    pays = np.array([i.cover.cover in ("endowment", "pure-endowment") for i in items])
+    values = np.zeros(len(items))
+    which = np.flatnonzero(pays)
+    if which.size:
+        t = batch.deferral[which] + batch.term[which]
+        year = np.ceil(batch.term[which] - 1e-9) - 1  # the last policy year
+        values[which] = (np.exp(year * batch.growth[which]) * curve.discount(t)
+                         * batch.life_weight(which, t))
+    return values
+
+
+def _moment(tables, assurances, valuation: Valuation, *, squared: bool, max_work, deadline):
+    """The benefit's expected present value under ``valuation`` (squared: the benefit squared,
+    for the second moment at a doubled force)."""
+    curve = valuation.curve
+    batch = _a._prepare(tables, [_annuity_item(i, squared=squared) for i in assurances],
+                        valuation)
+    if max_work is not None:
+        work = int(_a._work(batch, curve).sum())
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
+    death = np.array([i.cover.cover != "pure-endowment" for i in assurances])
+    values = _survival_benefit(batch, assurances, curve)
+    cont = np.flatnonzero(death & batch.continuous)
+    disc = np.flatnonzero(death & ~batch.continuous)
+    if disc.size:
+        values[disc] += _death_discrete(batch, disc, curve, deadline)
+    if cont.size:
+        values[cont] += _death_continuous(batch, cont, curve, deadline)
+    return values
+
+
+def methods(valuation: Valuation) -> tuple[dict, ...]:
+    """The method blocks of the three benefit timings (``InsuranceValues.method_code``)."""
+    words = valuation.curve.method()
+    common = {"fractional_age": valuation.fractional_age, "approximation": "exact",
+              "discounting": words["discounting"],
+              "second_moment": "the same benefit squared at double the force of interest"}
+    return tuple(common | {"evaluation": text} for text in (
+        "sum over policy years of benefit x discount factor at the year's end x probability "
+        "of death in the year",
+        "sum over periods of benefit x discount factor at the period's end x probability of "
+        "death in the period",
+        "integral of benefit x discount x density of death, by parts per segment of age: "
+        "D W at the ends less the integral of the force of interest x D W, closed form per "
+        "piece; discounting: " + words["continuous"]))
+
+
+def insurance_values(tables, items, valuation: Valuation, *, max_work: int | None = None,
+                     deadline: float | None = None) -> InsuranceValues:
+    """Return each item's value and second moment (the same benefit at double the force).
+
+    Raises ItemError (paths such as ``"2.term"``, ``"0.lives.1.age"``), WorkLimitError or
+    DeadlineError like :func:`service.engine.annuity.value_annuities`.
+    """
+    errors = _check(items)
+    if errors:
+        raise ItemError(errors)
+    value = _moment(tables, items, valuation, squared=False, max_work=max_work,
+                    deadline=deadline)
+    doubled = replace(valuation, interest=valuation.curve.doubled())
+    second = _moment(tables, items, doubled, squared=True, max_work=max_work,
+                     deadline=deadline)
+    code = np.array([BENEFIT_TIMINGS.index(i.cover.benefit_timing) for i in items],
+                    dtype=np.int8)
+    return InsuranceValues(value, second, methods(valuation), code)
