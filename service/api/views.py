@@ -61,6 +61,13 @@ def _finite(values, path: str):
                            errors={path: ["The value is not finite."]})
 
 
+def _finite_items(values):
+    """Refuse a batch whose value for some item is not finite, naming the first such item."""
+    bad = np.flatnonzero(~np.isfinite(values))
+    if bad.size:
+        _finite(values, f"items.{int(bad[0])}")
+
+
 def _summary(basis, defaults) -> dict:
     return {"id": basis.id, "version": basis.version, "title": basis.title,
             "status": basis.status, "digest": basis.digest,
@@ -262,9 +269,7 @@ def annuity_factors():
         raise _item_problem(exc, "items.") from None
     except WorkLimitError as exc:
         raise _too_much(exc, "Valuing this batch") from None
-    bad = np.flatnonzero(~np.isfinite(valued.value))
-    if bad.size:
-        _finite(valued.value, f"items.{int(bad[0])}")
+    _finite_items(valued.value)
     FACTORS.labels(basis.ref, "factor").inc(len(items))
     results = [{"value": v, "method": valued.methods[code]}
                for v, code in zip(valued.value.tolist(), valued.method_code.tolist(),
@@ -286,10 +291,8 @@ def insurance_factors():
         raise _item_problem(exc, "items.") from None
     except WorkLimitError as exc:
         raise _too_much(exc, "Valuing this batch") from None
-    for values in (valued.value, valued.second_moment):
-        bad = np.flatnonzero(~np.isfinite(values))
-        if bad.size:
-            _finite(values, f"items.{int(bad[0])}")
+    _finite_items(valued.value)
+    _finite_items(valued.second_moment)
     FACTORS.labels(basis.ref, "insurance").inc(len(items))
     results = [{"value": v, "second_moment": v2, "method": valued.methods[code]}
                for v, v2, code in zip(valued.value.tolist(), valued.second_moment.tolist(),

@@ -695,6 +695,19 @@ def _rule_shape(assumption, rates):
     return decay, pole
 
 
+def _cut_rule(batch, cut: _Cut, curve: Curve, *, order: int = 12):
+    """A Gauss-Legendre rule for integral g D over each segment of ``cut`` (see
+    :meth:`Curve.gauss_rule`), shaped by the lives' survival within it."""
+    q1, r1, _ = _life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
+    rates = [(q1, r1)]
+    has2 = batch.second[cut.own] >= 0
+    if has2.any():
+        q2, r2, _ = _life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1, cut.mid)
+        rates.append((np.where(has2, q2, 0.0), r2))
+    decay, pole = _rule_shape(batch.lives.assumption, rates)
+    return curve.gauss_rule(cut.t1, cut.length, order=order, decay=decay, pole=pole)
+
+
 def _segment_integral(batch, cut: _Cut, curve: Curve):
     """Integrate payment rate x discount x survival over each segment, before escalation.
 
@@ -856,15 +869,7 @@ def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = T
         _on_time(deadline)
         which = cont[part]
         cut = _cut(batch, which, curve)
-        q1, r1, _ = _life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
-        rates = [(q1, r1)]
-        has2 = batch.second[cut.own] >= 0
-        if has2.any():
-            q2, r2, _ = _life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1,
-                                   cut.mid)
-            rates.append((np.where(has2, q2, 0.0), r2))
-        decay, pole = _rule_shape(batch.lives.assumption, rates)
-        rule = curve.gauss_rule(cut.t1, cut.length, order=12, decay=decay, pole=pole)
+        rule = _cut_rule(batch, cut, curve)
         pv = rule.weight * cut.growth[rule.piece] * _weight_in(batch, cut, rule.piece,
                                                                rule.time)
         total = total + curve.moments(cut.own[rule.piece], rule.time, pv, size,

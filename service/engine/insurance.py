@@ -130,15 +130,7 @@ def _death_continuous(batch, which, curve: Curve, deadline):
                 - curve.discount(b) * batch.life_weight(cut.own, b))
         if curve.curved:
             # The forward force varies within a piece: integrate F D W by the rule.
-            q1, r1, _ = _a._life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
-            rates = [(q1, r1)]
-            has2 = batch.second[cut.own] >= 0
-            if has2.any():
-                q2, r2, _ = _a._life_part(batch, np.maximum(batch.second[cut.own], 0),
-                                          cut.t1, cut.mid)
-                rates.append((np.where(has2, q2, 0.0), r2))
-            decay, pole = _a._rule_shape(batch.lives.assumption, rates)
-            rule = curve.gauss_rule(cut.t1, cut.length, order=12, decay=decay, pole=pole)
+            rule = _a._cut_rule(batch, cut, curve)
             g = curve.forward_force(rule.time) * batch.life_weight(cut.own[rule.piece],
                                                                    rule.time)
             carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
