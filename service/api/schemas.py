@@ -143,6 +143,12 @@ SURVIVORSHIP_DOC = {
 }
 
 
+class SpreadRequestSchema(_Strict):
+    percentiles = fields.List(StrictFloat(validate=validate.Range(0, 100, min_inclusive=False)),
+                              required=True, validate=validate.Length(1, 20),
+                              metadata={"example": [5, 50, 95]})
+
+
 class ItemSchema(_Strict):
     lives = fields.List(fields.Nested(LifeSchema), required=True,
                         validate=validate.Length(1, 2),
@@ -190,6 +196,13 @@ class ItemSchema(_Strict):
                 "'key_rate_durations' the duration for each spot term (triangular bump) or "
                 "band. Discrete payments are taken date by date (exact summation, also "
                 "under a Woolhouse basis).")})
+    spread = fields.Nested(SpreadRequestSchema, metadata={
+        "description": (
+            "Ask for the standard deviation and percentiles of the present value of the "
+            "payments as a random variable, enumerated exactly from the distribution of the "
+            "lives' future lifetimes (advance and arrears payments; a continuous item with "
+            "spread is refused). The p-th percentile is the smallest value whose cumulative "
+            "probability is at least p/100.")})
     start_requires = fields.String(
         load_default="any", validate=validate.OneOf(START_REQUIREMENTS), metadata={
             "description": (
@@ -208,6 +221,9 @@ class ItemSchema(_Strict):
         lives = data.get("lives") or []
         if data.get("survivorship") is not None and len(lives) != 2:
             errors["survivorship"] = ["Survivorship applies to two lives; this item has one."]
+        if data.get("spread") and data.get("timing") == "continuous":
+            errors["spread"] = ["The spread is computed for advance and arrears payments "
+                                "only."]
         if data.get("survivorship") is None and len(lives) == 2:
             errors["survivorship"] = [
                 "Two lives need survivorship: 'joint-life', 'last-survivor', 'reversionary' "
@@ -418,9 +434,18 @@ class KeyRateSchema(Schema):
     duration = fields.Float(allow_none=True, required=True)
 
 
+class PercentileSchema(Schema):
+    percentile = fields.Float(required=True)
+    value = fields.Float(required=True)
+
+
 class FactorResultSchema(Schema):
     value = fields.Float(required=True)
     method = fields.Nested(MethodSchema, required=True)
+    standard_deviation = fields.Float(metadata={
+        "description": "With spread: of the present value of the payments."})
+    percentiles = fields.List(fields.Nested(PercentileSchema), metadata={
+        "description": "With spread: the percentiles asked for, in their order."})
     duration = fields.Float(allow_none=True, metadata={
         "description": "With measures: -(1/V) dV/dy (null where the value is 0)."})
     convexity = fields.Float(allow_none=True, metadata={

@@ -33,6 +33,7 @@ from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.insurance import Assurance, Cover, insurance_values
 from service.engine.lifetable import life_table_columns
+from service.engine.spread import annuity_spread
 
 bp = Blueprint("api", __name__)
 
@@ -276,7 +277,27 @@ def annuity_factors():
                                   strict=True)]
     _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
                   valuation, limit, deadline)
+    _add_spread(results, basis, items, [item.get("spread") for item in data["items"]],
+                valuation, limit, deadline)
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+
+
+def _add_spread(results, basis, items, asked, valuation, limit, deadline):
+    """Add the standard deviation and percentiles that items asked for to their results."""
+    which = [n for n, spread in enumerate(asked) if spread]
+    if not which:
+        return
+    levels = [asked[n]["percentiles"] for n in which]
+    try:
+        got = annuity_spread(basis.tables, [items[n] for n in which], valuation, levels,
+                             max_work=limit, deadline=deadline)
+    except WorkLimitError as exc:
+        raise _too_much(exc, "The spread asked for") from None
+    for row, n in enumerate(which):
+        results[n]["standard_deviation"] = float(got.standard_deviation[row])
+        results[n]["percentiles"] = [
+            {"percentile": p, "value": float(v)}
+            for p, v in zip(levels[row], got.percentiles[row], strict=True)]
 
 
 @bp.post("/v1/insurance-factors")
