@@ -27,6 +27,9 @@ def create_app(config: dict | None = None) -> Flask:
         # Rows one cash-flow schedule may have (a daily whole-life annuity from age 20 has
         # about 40,000).
         MAX_SCHEDULE_ROWS=50_000,
+        # Key-rate durations one answer may hold (items asking for them x the structure's
+        # terms or bands).
+        MAX_KEY_RATE_ENTRIES=200_000,
         # A valuation still running after this many seconds is abandoned with a 503.
         DEADLINE_SECONDS=30.0,
         MAX_CONTENT_LENGTH=4 * 1024 * 1024,

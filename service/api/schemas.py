@@ -12,7 +12,12 @@ from marshmallow import (
     validates_schema,
 )
 
-from service.engine.annuity import MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS
+from service.engine.annuity import (
+    MAX_FREQUENCY,
+    START_REQUIREMENTS,
+    TIMINGS,
+    whole_periods_problem,
+)
 from service.engine.curves import KINDS, MAX_POINTS, Curve, CurveError
 from service.engine.insurance import BENEFIT_TIMINGS, COVERS, STATUSES
 
@@ -214,6 +219,15 @@ class ItemSchema(_Strict):
     @validates_schema(pass_original=True)
     def _consistent(self, data, original, **kwargs):
         errors, years = _months_checked(data, original, _MONTHS)
+        m = data.get("frequency", 1)
+        if data.get("timing") in ("advance", "arrears"):
+            # Discrete payments need whole payment periods; the error names the field sent.
+            for name, value in years.items():
+                problem = None if value is None else whole_periods_problem(
+                    value, m, least=int(name == "term"))
+                if problem:
+                    errors.setdefault(f"{name}_months" if f"{name}_months" in data else name,
+                                      []).append(problem)
         term, guarantee = years["term"], years["guarantee"] or 0.0
         if term is not None and guarantee > term:
             errors["guarantee"] = [f"A guarantee of {guarantee:g} years is longer than the "

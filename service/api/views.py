@@ -134,9 +134,10 @@ def life_table(ref: str):
         raise ProblemError(422, "This basis is sex-distinct: give sex.",
                            errors={"sex": [f"Must be one of {', '.join(basis.sexes)}."]})
     table = basis.tables[index]
-    duration = query["duration"]
+    # A table without select rates has no durations: the path is the ultimate one.
+    duration = query["duration"] if table.select_period else None
     default_from = table.first_age
-    if duration is not None and duration < table.select_period:
+    if duration is not None:
         default_from = table.select_first_age + duration
     from_age = query["from_age"] if query["from_age"] is not None else default_from
     if commutation and rate is None:
@@ -333,10 +334,17 @@ def _add_measures(results, basis, items, asked, valuation, limit, deadline):
     which = [n for n, measures in enumerate(asked) if measures]
     if not which:
         return
-    key_rates = any("key_rate_durations" in asked[n] for n in which)
+    key_rates = [n for n in which if "key_rate_durations" in asked[n]]
+    entries = len(key_rates) * valuation.curve.size
+    cap = current_app.config["MAX_KEY_RATE_ENTRIES"]
+    if entries > cap:
+        raise ProblemError(413, f"{len(key_rates)} items ask for key-rate durations on "
+                                f"{valuation.curve.size} factors: {entries} entries, more "
+                                f"than the {cap} one answer may hold. Split the batch.",
+                           title="Batch too large to value")
     try:
         got = annuity_measures(basis.tables, [items[n] for n in which], valuation,
-                               key_rates=key_rates, max_work=limit, deadline=deadline)
+                               key_rates=bool(key_rates), max_work=limit, deadline=deadline)
     except WorkLimitError as exc:
         raise _too_much(exc, "The measures asked for") from None
     factors = valuation.curve.factors()
@@ -428,9 +436,7 @@ def _csv_response(names, lists, extra: dict, warnings=()):
         "X-Interest-Kind": audit["interest"]["kind"],
         **({"X-Interest-Rate": repr(audit["interest"]["rate"])}
            if "rate" in audit["interest"] else {}),
-        **({} if "rate" in audit["interest"] else {"X-Interest-Structure": json.dumps(
-            {k: v for k, v in audit["interest"].items() if k not in ("digest", "source")},
-            separators=(",", ":"))}),
+        **_structure_header(audit["interest"]),
         "X-Interest-Digest": audit["interest"]["digest"],
         "X-Interest-Source": audit["interest"]["source"],
         **extra,
@@ -438,9 +444,28 @@ def _csv_response(names, lists, extra: dict, warnings=()):
         "X-Computed-At": audit["computed_at"],
     }
     if warnings:
-        headers["X-Warnings"] = " | ".join(f"{w['path']}: {w['message']}" for w in warnings)
+        listed = warnings[:_HEADER_WARNINGS]
+        text = " | ".join(f"{w['path']}: {w['message']}" for w in listed)
+        if len(warnings) > len(listed):
+            text += f" | and {len(warnings) - len(listed)} more (ask for JSON to see them)"
+        headers["X-Warnings"] = text
     response.headers.update(headers)
     return response
+
+
+#: Response headers stay well inside a proxy's header buffer (16 KiB in deploy/nginx).
+_HEADER_WARNINGS = 5
+_HEADER_STRUCTURE_LIMIT = 2000
+
+
+def _structure_header(interest: dict) -> dict:
+    """X-Interest-Structure for a curve or bands: the structure as compact JSON, unless it is
+    too long for a header (its digest, always sent, then names it)."""
+    if "rate" in interest:
+        return {}
+    text = json.dumps({k: v for k, v in interest.items() if k not in ("digest", "source")},
+                      separators=(",", ":"))
+    return {"X-Interest-Structure": text} if len(text) <= _HEADER_STRUCTURE_LIMIT else {}
 
 
 @bp.get("/livez")

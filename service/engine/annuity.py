@@ -167,6 +167,12 @@ _PERIODS = {1: ("year", "years"), 2: ("half-year", "half-years"), 4: ("quarter",
             365: ("day", "days")}
 
 
+def whole_periods_problem(value: float, m: int, *, least: int = 0) -> str | None:
+    """Say why ``value`` years is not a whole number of 1/m-year periods, naming the nearest
+    valid value (at least ``least`` periods); None when it is."""
+    return None if _multiple_of(value, m) else _not_whole_periods(value, m, least=least)
+
+
 def _not_whole_periods(value: float, m: int, *, least: int = 0) -> str:
     """Say that ``value`` years is not a whole number of 1/m-year periods, and name the nearest
     valid value (at least ``least`` periods)."""
@@ -540,8 +546,9 @@ def _woolhouse_blocks(batch, which, local, k0, k1, curve: Curve, approximation):
     Returns ``(loc, k, block, ok)``: for each year k of each item ``loc``, its Woolhouse value
     and whether that value lies between 0 and the same formula's value for the year's
     payments made for certain at the largest amount. Where the force of mortality is very
-    high (near the end of a table) the third term leaves those bounds; under segment rates
-    the discount jumps at a band edge. The caller sums such years exactly.
+    high (near the end of a table) the third term leaves those bounds; a year at whose end
+    the status has failed for certain, and under segment rates a year across a band edge,
+    are not smooth enough for the formula either. The caller sums such years exactly.
     """
     loc, k = _expand(local, k0, k1)
     own = which[loc]
@@ -559,7 +566,10 @@ def _woolhouse_blocks(batch, which, local, k0, k1, curve: Curve, approximation):
     bound = v0 - a * (v0 - v1)
     if approximation == "woolhouse-3":
         b = (m * m - 1) / (12 * m * m)
-        force0, force1 = curve.forward_force(t0), curve.forward_force(t1)
+        # The year's own forces: at its end the limit from inside the year (a forward band
+        # or a spot term may change the force exactly there).
+        force0 = curve.forward_force(t0)
+        force1 = curve.forward_force(np.nextafter(t1, -np.inf))
         with np.errstate(invalid="ignore"):
             g0 = v0 * batch.life_weight_slope(own, t0) - force0 * f0
             g1 = v1 * batch.life_weight_slope(own, t1) - force1 * f1
@@ -569,10 +579,15 @@ def _woolhouse_blocks(batch, which, local, k0, k1, curve: Curve, approximation):
     block = np.where(arrears, block + (f1 - f0) / m, block)
     bound = batch.amounts[own].max(axis=1) * np.where(arrears, bound + (v1 - v0) / m, bound)
     ok = (block >= 0) & (block <= bound * (1 + 1e-12))  # False for NaN
+    # A year at whose end every life is dead for certain (q = 1 within it) is far from the
+    # smooth curve the formula assumes.
+    ok &= ~((f1 == 0) & (f0 > 0))
     if curve.kind == "segments" and curve.nodes().size:
+        # The discount jumps at a band edge: a year with an edge after its start (its end
+        # included, where f(t1) would take the next band's rate) is summed exactly.
         edges = curve.nodes()
         nxt = np.searchsorted(edges, t0, side="right")
-        ok &= ~((nxt < edges.size) & (edges[np.minimum(nxt, edges.size - 1)] < t1))
+        ok &= ~((nxt < edges.size) & (edges[np.minimum(nxt, edges.size - 1)] <= t1))
     growth = np.exp(k * batch.growth[own])
     return loc, k, block * growth, ok
 
@@ -830,6 +845,12 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     return Values(values, code, methods(valuation))
 
 
+def _measure_work(batch: _Batch, curve: Curve) -> np.ndarray:
+    """Work units of the sensitivities: every payment date (guaranteed ones too), and for
+    continuous items the points of a Gauss-Legendre rule on each segment."""
+    return np.where(batch.continuous, 4 * _work(batch, curve), _payment_count(batch))
+
+
 def _check_work(batch: _Batch, curve: Curve, max_work: int | None) -> None:
     if max_work is not None:
         work = int(_work(batch, curve).sum())
@@ -850,7 +871,10 @@ def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = T
     """
     batch = _prepare(tables, items, valuation)
     curve = valuation.curve
-    _check_work(batch, curve, max_work)
+    if max_work is not None:
+        work = int(_measure_work(batch, curve).sum())
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
     size = len(items)
     total = Moments(np.zeros(size), np.zeros(size), np.zeros(size),
                     np.zeros((size, curve.size)) if key_rates else None)

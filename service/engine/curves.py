@@ -141,6 +141,14 @@ def _number(value) -> bool:
     return isinstance(value, numbers.Real) and not isinstance(value, bool)
 
 
+def _finite(value) -> bool:
+    """Whether a real number is finite as a float (an integer too large for one is not)."""
+    try:
+        return math.isfinite(float(value))
+    except OverflowError:
+        return False
+
+
 def _check(kind, knots, rates, path: str) -> dict[str, list[str]]:
     """Return the problems of a structure as {field path: messages}."""
     errors: dict[str, list[str]] = {}
@@ -162,14 +170,14 @@ def _check(kind, knots, rates, path: str) -> dict[str, list[str]]:
             where = f"{path}.rate" if kind == "flat" else f"{path}.{name}.{j}"
             if not _number(v):
                 add(where, "must be a number")
-            elif not math.isfinite(v):
+            elif not _finite(v):
                 add(where, "must be finite")
             elif name == "rates" and not v > -1:
                 add(where, "must be above -1")
             elif name != "rates" and not v > 0:
                 add(where, "must be a positive number of years")
             elif name != "rates" and j > 0 and _number(values[j - 1]) \
-                    and not v > values[j - 1]:
+                    and _finite(values[j - 1]) and not v > values[j - 1]:
                 add(where, f"must be greater than the one before it ({values[j - 1]:g})")
     if kind == "spot":
         if not knots:

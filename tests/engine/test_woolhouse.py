@@ -116,7 +116,8 @@ class Reference:
             bound = bound - b * self.delta * (v0 - v1)
         if p.timing == "arrears":
             block, bound = block + (f1 - f0) / m, bound + (v1 - v0) / m
-        ok = 0 <= block <= bound * (1 + 1e-12)
+        # A year that ends with the life dead for certain is summed exactly too.
+        ok = 0 <= block <= bound * (1 + 1e-12) and not (f1 == 0 and f0 > 0)
         return block * (1 + p.escalation) ** k, ok
 
     def exact(self, start: float, stop: float) -> float:
