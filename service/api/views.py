@@ -453,7 +453,7 @@ def _csv_response(names, lists, extra: dict, warnings=()):
     return response
 
 
-#: Response headers stay well inside a proxy's header buffer (16 KiB in deploy/nginx).
+#: Response headers stay well inside a proxy's header buffer (32 KiB in deploy/nginx).
 _HEADER_WARNINGS = 5
 _HEADER_STRUCTURE_LIMIT = 2000
 
