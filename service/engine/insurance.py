@@ -25,14 +25,12 @@ same benefit squared at double the force of interest (Bowers et al., Actuarial M
 the rule of moments), so the variance of the present value is second_moment - value^2.
 """
 
-import math
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 
 import numpy as np
 
 from service.engine import annuity as _a
 from service.engine.annuity import Item, Life, Payments, Valuation
-from service.engine.curves import Curve
 from service.engine.errors import ItemError, WorkLimitError
 
 COVERS = ("whole-life", "term", "endowment", "pure-endowment")
@@ -89,89 +87,79 @@ def _check(items) -> dict[str, list[str]]:
     return errors
 
 
-def _annuity_item(item: Assurance, *, squared: bool) -> Item:
+def _annuity_item(item: Assurance) -> Item:
     """The annuity item whose batch carries the same lives, window and W(t)."""
     c = item.cover
     continuous = c.benefit_timing == "moment-of-death"
     m = 1 if c.benefit_timing == "end-of-year" or continuous else c.frequency
-    growth = math.expm1(2 * math.log1p(c.escalation)) if squared else c.escalation
     payments = Payments("continuous" if continuous else "arrears", m, c.term, c.deferral, 0.0,
-                        growth)
+                        c.escalation)
     amounts = _STATUS_AMOUNTS[c.on] if len(item.lives) == 2 else _a.LAST_SURVIVOR
     return Item(item.lives, payments, amounts)
 
 
-def _death_discrete(batch, which, curve: Curve, deadline):
-    """sum_j b_j D(t_j+1) [W(t_j) - W(t_j+1)] over the periods of the window."""
+#: The moments: the benefit and the benefit squared, discounted at the curve and at the
+#: doubled curve; ``power`` raises the escalation factor.
+_POWERS = (1, 2)
+
+
+def _death_discrete(batch, which, curves, deadline):
+    """sum_j b_j D(t_j+1) [W(t_j) - W(t_j+1)] over the periods of the window, for each
+    moment, with W evaluated once at every period boundary."""
     count = _a._payment_count(batch)[which]  # periods that can hold a death
-    values = np.zeros(which.size)
+    values = [np.zeros(which.size) for _ in curves]
     local = np.arange(which.size)
-    for part in _a._chunks(count):
+    for part in _a._chunks(count + 1):
         _a._on_time(deadline)
-        o, j = _a._expand(local[part], np.zeros(part.size, dtype=np.int64), count[part])
+        o, j = _a._expand(local[part], np.zeros(part.size, dtype=np.int64), count[part] + 1)
         own = which[o]
         mo = batch.m[own]
-        t0 = batch.deferral[own] + j / mo
-        t1 = t0 + 1.0 / mo
-        died = batch.life_weight(own, t0) - batch.life_weight(own, t1)
-        pv = np.exp((j // mo) * batch.growth[own]) * curve.discount(t1) * died
-        values += np.bincount(o, weights=pv, minlength=which.size)
+        t = batch.deferral[own] + j / mo
+        w = batch.life_weight(own, t)
+        inner = np.flatnonzero(j < count[o])  # a period starts here; the next point ends it
+        died = w[inner] - w[inner + 1]
+        year = (j[inner] // mo[inner]) * batch.growth[own[inner]]
+        for value, curve, power in zip(values, curves, _POWERS, strict=True):
+            pv = np.exp(power * year) * curve.discount(t[inner + 1]) * died
+            value += np.bincount(o[inner], weights=pv, minlength=which.size)
     return values
 
 
-def _death_continuous(batch, which, curve: Curve, deadline):
-    """integral b(t) D(t) (-W'(t)) dt, segment by segment, by parts."""
-    values = np.zeros(which.size)
-    for part in _a._chunks(_a._work(batch, curve)[which]):
+def _death_continuous(batch, which, curves, deadline):
+    """integral b(t) D(t) (-W'(t)) dt, segment by segment, by parts, for each moment."""
+    values = [np.zeros(which.size) for _ in curves]
+    for part in _a._chunks(_a._work(batch, curves[0])[which] * len(curves)):
         _a._on_time(deadline)
-        cut = _a._cut(batch, which[part], curve)
+        cut = _a._cut(batch, which[part], curves[0])
         a, b = cut.t1, cut.t1 + cut.length
-        ends = (curve.discount(a) * batch.life_weight(cut.own, a)
-                - curve.discount(b) * batch.life_weight(cut.own, b))
-        if curve.curved:
-            # The forward force varies within a piece: integrate F D W by the rule.
-            rule = _a._cut_rule(batch, cut, curve)
-            g = curve.forward_force(rule.time) * batch.life_weight(cut.own[rule.piece],
-                                                                   rule.time)
-            carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
-        else:
-            carried = curve.pieces(a, cut.length).force * _a._segment_integral(batch, cut, curve)
-        values[part] += np.bincount(cut.owner, weights=cut.growth * (ends - carried),
-                                    minlength=part.size)
+        wa, wb = batch.life_weight(cut.own, a), batch.life_weight(cut.own, b)
+        for value, curve, power in zip(values, curves, _POWERS, strict=True):
+            ends = curve.discount(a) * wa - curve.discount(b) * wb
+            if curve.curved:
+                # The forward force varies within a piece: integrate F D W by the rule.
+                rule = _a._cut_rule(batch, cut, curve)
+                g = curve.forward_force(rule.time) * batch.life_weight(cut.own[rule.piece],
+                                                                       rule.time)
+                carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
+            else:
+                carried = (curve.pieces(a, cut.length).force
+                           * _a._segment_integral(batch, cut, curve))
+            value[part] += np.bincount(cut.owner, weights=cut.growth**power * (ends - carried),
+                                       minlength=part.size)
     return values
 
 
-def _survival_benefit(batch, items, curve: Curve):
+def _survival_benefit(batch, items, curves):
     """b D(u + n) W(u + n) for the items with a survival benefit (0 for the others)."""
     pays = np.array([i.cover.cover in ("endowment", "pure-endowment") for i in items])
-    values = np.zeros(len(items))
+    values = [np.zeros(len(items)) for _ in curves]
     which = np.flatnonzero(pays)
     if which.size:
         t = batch.deferral[which] + batch.term[which]
         year = np.ceil(batch.term[which] - 1e-9) - 1  # the last policy year
-        values[which] = (np.exp(year * batch.growth[which]) * curve.discount(t)
-                         * batch.life_weight(which, t))
-    return values
-
-
-def _moment(tables, assurances, valuation: Valuation, *, squared: bool, max_work, deadline):
-    """The benefit's expected present value under ``valuation`` (squared: the benefit squared,
-    for the second moment at a doubled force)."""
-    curve = valuation.curve
-    batch = _a._prepare(tables, [_annuity_item(i, squared=squared) for i in assurances],
-                        valuation)
-    if max_work is not None:
-        work = int(_a._work(batch, curve).sum())
-        if work > max_work:
-            raise WorkLimitError(work, max_work)
-    death = np.array([i.cover.cover != "pure-endowment" for i in assurances])
-    values = _survival_benefit(batch, assurances, curve)
-    cont = np.flatnonzero(death & batch.continuous)
-    disc = np.flatnonzero(death & ~batch.continuous)
-    if disc.size:
-        values[disc] += _death_discrete(batch, disc, curve, deadline)
-    if cont.size:
-        values[cont] += _death_continuous(batch, cont, curve, deadline)
+        w = batch.life_weight(which, t)
+        for value, curve, power in zip(values, curves, _POWERS, strict=True):
+            value[which] = np.exp(power * year * batch.growth[which]) * curve.discount(t) * w
     return values
 
 
@@ -201,11 +189,21 @@ def insurance_values(tables, items, valuation: Valuation, *, max_work: int | Non
     errors = _check(items)
     if errors:
         raise ItemError(errors)
-    value = _moment(tables, items, valuation, squared=False, max_work=max_work,
-                    deadline=deadline)
-    doubled = replace(valuation, interest=valuation.curve.doubled())
-    second = _moment(tables, items, doubled, squared=True, max_work=max_work,
-                     deadline=deadline)
+    curves = (valuation.curve, valuation.curve.doubled())
+    batch = _a._prepare(tables, [_annuity_item(i) for i in items], valuation)
+    if max_work is not None:
+        work = int(_a._work(batch, curves[0]).sum()) * len(curves)
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
+    death = np.array([i.cover.cover != "pure-endowment" for i in items])
+    value, second = _survival_benefit(batch, items, curves)
+    for which, death_values in (
+            (np.flatnonzero(death & ~batch.continuous), _death_discrete),
+            (np.flatnonzero(death & batch.continuous), _death_continuous)):
+        if which.size:
+            first_part, second_part = death_values(batch, which, curves, deadline)
+            value[which] += first_part
+            second[which] += second_part
     code = np.array([BENEFIT_TIMINGS.index(i.cover.benefit_timing) for i in items],
                     dtype=np.int8)
     return InsuranceValues(value, second, methods(valuation), code)
