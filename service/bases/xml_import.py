@@ -19,8 +19,9 @@ What is accepted
 ----------------
 Element names are matched on their local part, exactly (case-sensitive). A namespace, present
 or absent, is ignored; that is the only leniency about names. Element text is stripped of
-surrounding white space. ``(ignored)`` means the element may be there and is not read;
-anything else not listed below is refused where it appears.
+surrounding white space; XML comments and processing instructions are skipped, and CDATA is
+text like any other; any encoding XML allows is read. ``(ignored)`` means the element may be
+there and is not read; anything else not listed below is refused where it appears.
 
 ::
 
@@ -65,8 +66,9 @@ anything else not listed below is refused where it appears.
 Every axis holds each whole value from MinScaleValue to MaxScaleValue exactly once, in
 increasing order (``t`` is a whole number; a missing, repeated, unordered or out-of-range
 value, or a count that disagrees with the definition, is refused). A Y holds a decimal
-number (``0.00123``, ``1.2e-3``; no ``NaN``, ``inf``, hexadecimal or ``_``). Ages lie in 0 to
-150, durations in 1 to 100, calendar years in 1700 to 2300.
+number of at most 40 characters (``0.00123``, ``1.2e-3``; no ``NaN``, ``inf``, hexadecimal or
+``_``): a probability in [0, 1] in a mortality table, a rate in [-0.5, 0.5] in an improvement
+scale. Ages lie in 0 to 150, durations in 1 to 100, calendar years in 1700 to 2300.
 
 How tables are read
 -------------------

@@ -614,6 +614,29 @@ class TestWriting:
                                           ("fernhollow-staff", "2026.1")]
         assert check_tables(out, capsys)[0] == 0
 
+    @pytest.mark.parametrize("force", [False, True])
+    def test_a_failure_while_moving_files_in_undoes_the_import(self, tmp_path, monkeypatch,
+                                                               force):
+        out = tmp_path / "tables"
+        out.mkdir()
+        if force:  # the files exist already: a forced import that fails restores them
+            imported(tmp_path, ultimate_file(), out=out)
+        before = snapshot(out)
+        real_move = xml_import._move_new
+
+        def failing_move(source, target):
+            if target.suffix == ".toml":  # the basis goes last: fail after the data moved
+                raise OSError(28, "No space left on device")
+            real_move(source, target)
+
+        monkeypatch.setattr(xml_import, "_move_new", failing_move)
+        path = write_xml(tmp_path, ultimate_file({**FERNHOLLOW, 65: 0.0177}))
+        with pytest.raises(ImportRefused, match="No space left on device.*nothing was written"):
+            import_xml(path, out, force=force)
+        assert snapshot(out) == before
+        assert (out / "data").exists() == force
+        assert sorted(p.name for p in tmp_path.iterdir()) == [path.name, "tables"]
+
     def test_the_interest_rate_is_checked_by_the_registry_before_anything_is_written(
             self, tmp_path):
         refused(tmp_path, ultimate_file(), "the registry would refuse the imported basis",
