@@ -132,8 +132,10 @@ from service.bases.registry import (
 
 #: Elements may nest this deep (the format needs six levels).
 MAX_DEPTH = 16
-#: Elements a file may hold (a select table of 100 ages by 25 durations has about 2,600).
-MAX_ELEMENTS = 500_000
+#: Elements a file may hold: a select table of 151 ages by 100 durations has about 15,300,
+#: a scale of 151 ages by 601 years about 91,000. A file at the limit takes about 100 MB more
+#: memory to parse (measured: 199,900 Y elements, 2.7 s and 199 MB in all, 98 MB of it imports).
+MAX_ELEMENTS = 200_000
 #: Metadata text longer than this is cut (with "...") before it is quoted.
 MAX_TEXT = 300
 #: An improvement rate outside this range is refused (most likely given in percent).
