@@ -1,4 +1,5 @@
-"""Operator commands: serve, check a tables folder, write the OpenAPI file."""
+"""Operator commands: serve, check a tables folder, import a table file, write the OpenAPI
+file."""
 
 import argparse
 import logging
@@ -58,6 +59,46 @@ def _check_tables(args) -> int:
     return 1 if registry.refused else 0
 
 
+def _table_choice(text: str) -> tuple[str, int]:
+    sex, sep, number = text.partition("=")
+    if not sep or not number.strip().isdigit():
+        raise argparse.ArgumentTypeError(f"{text!r} is not SEX=N (for example female=1)")
+    return sex.strip(), int(number)
+
+
+def _import_xml(args) -> int:
+    from service.bases.registry import printable
+    from service.bases.xml_import import DEFAULT_INTEREST_RATE, ImportRefused, import_xml
+
+    tables = {}
+    for sex, number in args.table:
+        if sex in tables:
+            print(f"error: --table {printable(sex)} is given twice", file=sys.stderr)
+            return 2
+        tables[sex] = number
+    rate = DEFAULT_INTEREST_RATE if args.interest_rate is None else args.interest_rate
+    try:
+        done = import_xml(args.file, args.outdir, basis_id=args.basis_id, version=args.version,
+                          tables=tables or None, improvement=args.improvement,
+                          first_age=args.first_age, close_at=args.close_at,
+                          interest_rate=rate, force=args.force)
+    except ImportRefused as exc:
+        print(f"error: {printable(str(exc))}", file=sys.stderr)
+        return 1
+    out = Path(args.outdir)
+    print(printable(f"source   {Path(args.file).name}  sha256:{done.sha256}"))
+    if done.basis_file:
+        print(printable(f"basis    {out / done.basis_file}  (status demo, {done.digest})"))
+    for rel in done.data_files:
+        print(printable(f"data     {out / rel}"))
+    for rel in done.scale_files:
+        print(printable(f"scale    {out / rel}  (improvement scale: the registry does not "
+                        "read improvement scales yet)"))
+    if not done.basis_file:
+        print("no basis written: the file holds no mortality table")
+    return 0
+
+
 def _write_openapi(args) -> int:
     from service.api.openapi import spec_json
 
@@ -102,6 +143,35 @@ def main(argv=None) -> int:
                                                 "problem")
     check.add_argument("directory", nargs="?", default=str(DEFAULT_TABLES))
     check.set_defaults(func=_check_tables)
+    imp = sub.add_parser(
+        "import-xml",
+        help="convert a rate table file in the actuarial profession's open XML standard "
+             "into a basis skeleton (status demo) and CSV data under OUTDIR; writes nothing "
+             "on any problem")
+    imp.add_argument("file", help="the XML file")
+    imp.add_argument("outdir", help="the folder to write <id>-<version>.toml and data/ into")
+    imp.add_argument("--id", dest="basis_id", default=None,
+                     help="basis id (default: from the file name)")
+    imp.add_argument("--version", default=None,
+                     help="basis version (default: a final -<digits.dots> of the file name, "
+                          "else 1)")
+    imp.add_argument("--table", action="append", type=_table_choice, default=[],
+                     metavar="SEX=N",
+                     help="which mortality table (numbered in file order; a select table "
+                          "with its ultimate by the select one) is female, male or unisex; "
+                          "needed when the file holds more than one")
+    imp.add_argument("--improvement", action="append", type=int, default=[], metavar="N",
+                     help="read table N of a mortality file as an improvement scale")
+    imp.add_argument("--first-age", type=int, default=None, metavar="AGE",
+                     help="drop the rows of every mortality table before AGE")
+    imp.add_argument("--close-at", type=int, default=None, metavar="AGE",
+                     help="append q = 1 at AGE (the age after the last) to tables that do not "
+                          "close with q = 1")
+    imp.add_argument("--interest-rate", type=float, default=None, metavar="RATE",
+                     help="the skeleton's flat interest rate, a placeholder to review "
+                          "(default 0.04)")
+    imp.add_argument("--force", action="store_true", help="replace files that already exist")
+    imp.set_defaults(func=_import_xml)
     write = sub.add_parser("write-openapi", help="write the OpenAPI contract to openapi/")
     write.add_argument("--output", default=str(OPENAPI_FILE))
     write.add_argument("--check", action="store_true", help="fail if the file is out of date")
