@@ -749,8 +749,10 @@ def _segment_integral(batch, cut: _Cut, curve: Curve):
     reach = batch.reach[own]
     life = ((a[:, 0] - a[:, 1] - a[:, 2]) * j12 + a[:, 1] * reach[:, 0] * j1
             + a[:, 2] * reach[:, 1] * j2)
-    sure = batch.certain_weight[own] * integrals.certain(force, length)
-    value = pc.factor * np.where(certain, sure, life)
+    if certain.any():
+        sure = batch.certain_weight[own] * integrals.certain(force, length)
+        life = np.where(certain, sure, life)
+    value = pc.factor * life
     if curve.curved:
         decay, pole = _rule_shape(assumption, rates)
         rule = curve.gauss_rule(t1, length, order=8, correction=True, decay=decay, pole=pole)

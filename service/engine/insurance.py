@@ -126,15 +126,28 @@ def _death_discrete(batch, which, curves, deadline):
 
 
 def _death_continuous(batch, which, curves, deadline):
-    """integral b(t) D(t) (-W'(t)) dt, segment by segment, by parts, for each moment."""
+    """integral b(t) D(t) (-W'(t)) dt, segment by segment, by parts, for each moment.
+
+    On a segment [a, b] it is D(a) W(a) - D(b-) W(b) - integral F D W, with D(b-) the limit
+    from inside the segment (segment rates jump at a band edge) and W evaluated once at every
+    segment boundary.
+    """
     values = [np.zeros(which.size) for _ in curves]
     for part in _a._chunks(_a._work(batch, curves[0])[which] * len(curves)):
         _a._on_time(deadline)
         cut = _a._cut(batch, which[part], curves[0])
         a, b = cut.t1, cut.t1 + cut.length
-        wa, wb = batch.life_weight(cut.own, a), batch.life_weight(cut.own, b)
+        wa = batch.life_weight(cut.own, a)
+        # Where the next segment of the same item starts at this one's end, W there is known.
+        joined = np.append((cut.owner[1:] == cut.owner[:-1]) & (a[1:] == b[:-1]), False)
+        wb = np.empty_like(wa)
+        wb[:-1] = wa[1:]
+        alone = np.flatnonzero(~joined)
+        wb[alone] = batch.life_weight(cut.own[alone], b[alone])
         for value, curve, power in zip(values, curves, _POWERS, strict=True):
-            ends = curve.discount(a) * wa - curve.discount(b) * wb
+            pc = curve.pieces(a, cut.length)
+            # D(b-) = factor exp(-force (b - a)): the piece's own formula at its end.
+            ends = pc.factor * (wa - np.exp(-pc.force * cut.length) * wb)
             if curve.curved:
                 # The forward force varies within a piece: integrate F D W by the rule.
                 rule = _a._cut_rule(batch, cut, curve)
@@ -142,8 +155,7 @@ def _death_continuous(batch, which, curves, deadline):
                                                                        rule.time)
                 carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
             else:
-                carried = (curve.pieces(a, cut.length).force
-                           * _a._segment_integral(batch, cut, curve))
+                carried = pc.force * _a._segment_integral(batch, cut, curve)
             value[part] += np.bincount(cut.owner, weights=cut.growth**power * (ends - carried),
                                        minlength=part.size)
     return values

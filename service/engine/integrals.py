@@ -7,6 +7,8 @@ the start of the year is g(r + h) under the fractional-age assumption.
 
 
 
+import math
+
 import numpy as np
 from scipy import special
 
@@ -15,29 +17,42 @@ _SERIES_BELOW = 0.5
 _SERIES_TERMS = 24
 
 
+def _series_coefficients(n: int) -> np.ndarray:
+    """(-1)^k / (k! (n + k + 1)), k = 0 .. _SERIES_TERMS - 1, highest first (for Horner)."""
+    c = [(-1) ** k / (math.factorial(k) * (n + k + 1)) for k in range(_SERIES_TERMS)]
+    return np.array(c[::-1])
+
+
+_COEFFICIENTS = {n: _series_coefficients(n) for n in (0, 1, 2)}
+
+
 def phi(n: int, x):
-    """Return phi_n(x) = integral_0^1 u^n e^(-x u) du, for n = 0, 1, 2."""
+    """Return phi_n(x) = integral_0^1 u^n e^(-x u) du, for n = 0, 1, 2.
+
+    Where |x| < 1/2 the power series sum_k (-x)^k / (k! (n + k + 1)) (by Horner's rule, no
+    cancellation); elsewhere the closed form. Each is evaluated only where it is used.
+    """
+    if n not in _COEFFICIENTS:
+        raise ValueError(n)
     x = np.asarray(x, dtype=float)
+    out = np.empty(x.shape)
     small = np.abs(x) < _SERIES_BELOW
-    xs = np.where(small, x, 0.0)
-    series = np.zeros_like(xs)
-    term = np.ones_like(xs)
-    for k in range(_SERIES_TERMS):
-        # sum_k (-x)^k / (k! (n + k + 1))
-        series = series + term / (n + k + 1)
-        term = term * (-xs) / (k + 1)
-    xl = np.where(small, 1.0, x)
+    xs = x[small]
+    acc = np.zeros_like(xs)
+    for c in _COEFFICIENTS[n]:
+        acc = acc * xs + c
+    out[small] = acc
+    xl = x[~small]
     with np.errstate(over="ignore", invalid="ignore"):
         e = np.exp(-xl)
         if n == 0:
             closed = -np.expm1(-xl) / xl
         elif n == 1:
             closed = (-np.expm1(-xl) - xl * e) / xl**2
-        elif n == 2:
-            closed = (2.0 * -np.expm1(-xl) - e * xl * (xl + 2.0)) / xl**3
         else:
-            raise ValueError(n)
-    return np.where(small, series, closed)
+            closed = (2.0 * -np.expm1(-xl) - e * xl * (xl + 2.0)) / xl**3
+    out[~small] = closed
+    return out
 
 
 def moment(n: int, delta, length):

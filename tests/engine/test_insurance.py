@@ -130,7 +130,7 @@ class TestMomentOfDeathAgainstQuadrature:
 
     @pytest.mark.parametrize("assumption", ("constant-force", "balducci", "udd"))
     @pytest.mark.parametrize("age, term", [(62.4, None), (88.7, 10.0)])
-    @pytest.mark.parametrize("discount", ("flat", "spot"))
+    @pytest.mark.parametrize("discount", ("flat", "spot", "segments"))
     def test_single_life(self, assumption, age, term, discount):
         spot = {"kind": "spot", "terms": [1, 5, 10, 30], "rates": [0.031, 0.036, 0.04, 0.042]}
         if discount == "flat":
@@ -138,6 +138,14 @@ class TestMomentOfDeathAgainstQuadrature:
 
             def d(t):
                 return 1.045**-t
+        elif discount == "segments":
+            # Each time at the rate of its band, an edge starting its band (the definition).
+            edges, rates = [2.5, 7.0], [0.03, 0.05, 0.06]
+            curve, nodes = Curve.from_mapping({"kind": "segments", "edges": edges,
+                                               "rates": rates}), edges
+
+            def d(t):
+                return (1 + rates[sum(1 for e in edges if t >= e)]) ** -t
         else:
             curve, nodes = Curve.from_mapping(spot), spot["terms"]
             c = [math.log1p(r) for r in spot["rates"]]
