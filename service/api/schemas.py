@@ -205,9 +205,10 @@ class ItemSchema(_Strict):
         "description": (
             "Ask for the standard deviation and percentiles of the present value of the "
             "payments as a random variable, enumerated exactly from the distribution of the "
-            "lives' future lifetimes (advance and arrears payments; a continuous item with "
-            "spread is refused). The p-th percentile is the smallest value whose cumulative "
-            "probability is at least p/100.")})
+            "lives' future lifetimes for advance and arrears payments, and for continuous "
+            "payments on blocks of at most 1/12 of a year, each outcome within 1/24 of a "
+            "year's discounted payment. The p-th percentile is the smallest value whose "
+            "cumulative probability is at least p/100.")})
     start_requires = fields.String(
         load_default="any", validate=validate.OneOf(START_REQUIREMENTS), metadata={
             "description": (
@@ -235,9 +236,6 @@ class ItemSchema(_Strict):
         lives = data.get("lives") or []
         if data.get("survivorship") is not None and len(lives) != 2:
             errors["survivorship"] = ["Survivorship applies to two lives; this item has one."]
-        if data.get("spread") and data.get("timing") == "continuous":
-            errors["spread"] = ["The spread is computed for advance and arrears payments "
-                                "only."]
         if data.get("survivorship") is None and len(lives) == 2:
             errors["survivorship"] = [
                 "Two lives need survivorship: 'joint-life', 'last-survivor', 'reversionary' "

@@ -30,8 +30,6 @@ def test_spread_beside_the_value(client):
 
 
 @pytest.mark.parametrize("item, path", [
-    ({"lives": [{"age": 65}], "timing": "continuous", "spread": {"percentiles": [50]}},
-     "items.0.spread"),
     ({"lives": [{"age": 65}], "timing": "advance", "spread": {"percentiles": [0]}},
      "items.0.spread.percentiles.0"),
     ({"lives": [{"age": 65}], "timing": "advance", "spread": {"percentiles": []}},

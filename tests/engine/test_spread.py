@@ -9,8 +9,8 @@ import pytest
 from numpy.testing import assert_allclose
 
 from service.engine.annuity import Item, Life, Payments, Valuation, annuity_values
-from service.engine.errors import ItemError
-from service.engine.spread import annuity_spread
+from service.engine.spread import CONTINUOUS_TOLERANCE_YEARS, annuity_spread
+from service.engine.tables import MortalityTable
 from tests.reference import models
 from tests.reference.direct import DirectLife
 
@@ -127,7 +127,41 @@ def test_a_guarantee_is_an_atom_at_its_value():
     assert_allclose(got.percentiles[0], [certain, certain], rtol=1e-12)
 
 
-def test_continuous_items_are_refused():
-    with pytest.raises(ItemError):
-        annuity_spread([models.susm()], [Item((Life(60.0),), Payments("continuous"))],
-                       Valuation(0.05), [[50]])
+class TestContinuous:
+    """Continuous payments, enumerated on blocks of 1/12 year: each outcome within half a
+    block's value (CONTINUOUS_TOLERANCE_YEARS of a year's payment) of the true one."""
+
+    MU, RATE = 0.04, 0.05
+
+    def exponential_life(self):
+        # A constant force mu to a very high age: the future lifetime is exponential.
+        q = np.full(801, -math.expm1(-self.MU))
+        q[-1] = 1.0
+        return MortalityTable(0, q)
+
+    def test_against_the_exponential_lifetime(self):
+        # T exponential(mu): Y = (1 - e^(-delta T))/delta, so A-bar = mu/(mu + delta),
+        # 2A-bar = mu/(mu + 2 delta), Var Y = (2A-bar - A-bar^2)/delta^2 (Bowers et al.,
+        # Actuarial Mathematics, continuous annuities), and the p-quantile of Y is
+        # (1 - (1 - p)^(delta/mu))/delta.
+        delta = math.log1p(self.RATE)
+        levels = [5, 25, 50, 75, 95]
+        got = annuity_spread([self.exponential_life()], [Item((Life(30.0),),
+                                                              Payments("continuous"))],
+                             Valuation(self.RATE, "constant-force"), [levels])
+        a1, a2 = self.MU / (self.MU + delta), self.MU / (self.MU + 2 * delta)
+        tolerance = CONTINUOUS_TOLERANCE_YEARS
+        assert abs(got.mean[0] - 1 / (self.MU + delta)) < tolerance
+        assert abs(got.standard_deviation[0] - math.sqrt(a2 - a1 * a1) / delta) < tolerance
+        expected = [(1 - (1 - p / 100) ** (delta / self.MU)) / delta for p in levels]
+        assert np.all(np.abs(got.percentiles[0] - expected) <= tolerance)
+
+    @pytest.mark.parametrize("item", [
+        Item((Life(65.0),), Payments("continuous", 1, None, 0.0, 10.0, 0.02)),
+        Item((Life(55.0), Life(52.0)), Payments("continuous", deferral=10.0),
+             (1.0, 1.0, 0.5), "first"),
+        Item((Life(70.0), Life(66.0)), Payments("continuous", 1, 20.0), (1.0, 0.0, 0.0))])
+    def test_the_mean_is_the_factor_within_the_tolerance(self, item):
+        got = annuity_spread([models.susm()], [item], Valuation(0.05), [[50]])
+        factor = annuity_values([models.susm()], [item], Valuation(0.05))[0]
+        assert abs(got.mean[0] - factor) < CONTINUOUS_TOLERANCE_YEARS
