@@ -723,7 +723,7 @@ def _cut_rule(batch, cut: _Cut, curve: Curve, *, order: int = 12):
     return curve.gauss_rule(cut.t1, cut.length, order=order, decay=decay, pole=pole)
 
 
-def _segment_integral(batch, cut: _Cut, curve: Curve):
+def _segment_integral(batch, cut: _Cut, curve: Curve, pc=None):
     """Integrate payment rate x discount x survival over each segment, before escalation.
 
     Within a segment the discount is D(t1 + h) = factor exp(-force h - curvature h (h - D));
@@ -731,7 +731,7 @@ def _segment_integral(batch, cut: _Cut, curve: Curve):
     (curvature not 0) the rest is added by a Gauss-Legendre rule exact to rounding.
     """
     own, t1, length, mid, certain = cut.own, cut.t1, cut.length, cut.mid, cut.certain
-    pc = curve.pieces(t1, length)
+    pc = curve.pieces(t1, length) if pc is None else pc  # (the caller's, when it has them)
     force = pc.force
     assumption = batch.lives.assumption
     q1, r1, s1 = _life_part(batch, batch.first[own], t1, mid)

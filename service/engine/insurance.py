@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.engine import annuity as _a
+from service.engine import integrals
 from service.engine.annuity import Item, Life, Payments, Valuation
 from service.engine.errors import ItemError, WorkLimitError
 
@@ -144,8 +145,18 @@ def _death_continuous(batch, which, curves, deadline):
         wb[:-1] = wa[1:]
         alone = np.flatnonzero(~joined)
         wb[alone] = batch.life_weight(cut.own[alone], b[alone])
+        density = _udd_density(batch, cut) if batch.lives.assumption == "udd" else None
         for value, curve, power in zip(values, curves, _POWERS, strict=True):
             pc = curve.pieces(a, cut.length)
+            if density is not None and not curve.curved:
+                # Under UDD the density of death is a polynomial within a segment: integrate
+                # it against the piece's exponential discount in closed form.
+                c0, c1 = density
+                died = pc.factor * (c0 * integrals.moment(0, pc.force, cut.length)
+                                    - c1 * integrals.moment(1, pc.force, cut.length))
+                value[part] += np.bincount(cut.owner, weights=cut.growth**power * died,
+                                           minlength=part.size)
+                continue
             # D(b-) = factor exp(-force (b - a)): the piece's own formula at its end.
             ends = pc.factor * (wa - np.exp(-pc.force * cut.length) * wb)
             if curve.curved:
@@ -155,10 +166,34 @@ def _death_continuous(batch, which, curves, deadline):
                                                                        rule.time)
                 carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
             else:
-                carried = pc.force * _a._segment_integral(batch, cut, curve)
+                carried = pc.force * _a._segment_integral(batch, cut, curve, pc)
             value[part] += np.bincount(cut.owner, weights=cut.growth**power * (ends - carried),
                                        minlength=part.size)
     return values
+
+
+def _udd_density(batch, cut):
+    """(c0, c1) with -W'(a + h) = c0 - c1 h on each segment, under UDD.
+
+    Each life's survival there is s (alpha - q h), alpha = 1 - q r (s: survival to the start
+    of its year of age, r: where the segment starts in it); W is the survivorship-weighted sum
+    of S1, S2 and S1 S2 (the start requirement is always 'any' here).
+    """
+    q1, r1, s1 = _a._life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
+    c0 = s1 * q1
+    c1 = np.zeros_like(c0)
+    has2 = batch.second[cut.own] >= 0
+    if has2.any():
+        q2, r2, s2 = _a._life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1,
+                                   cut.mid)
+        q2, s2 = np.where(has2, q2, 0.0), np.where(has2, s2, 0.0)
+        a = batch.amounts[cut.own]
+        alpha1, alpha2 = 1 - q1 * r1, 1 - q2 * r2
+        both = a[:, 0] - a[:, 1] - a[:, 2]
+        c0 = (a[:, 1] * s1 * q1 + a[:, 2] * s2 * q2
+              + both * s1 * s2 * (q1 * alpha2 + q2 * alpha1))
+        c1 = both * s1 * s2 * 2 * q1 * q2
+    return c0, c1
 
 
 def _survival_benefit(batch, items, curves):
