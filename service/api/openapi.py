@@ -141,16 +141,22 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
         "requestBody": {"required": True, "content": {"application/json": {
             "schema": {"$ref": "#/components/schemas/FactorRequest"}}}},
-        "responses": _ok("FactorResponse", "results[i] answers items[i].")
-        | _problem_responses("400", "401", "404", "413", "415", "422", "503")}})
+        "responses": _ok("FactorResponse", "results[i] answers items[i]. With Accept: text/csv "
+                                           "one row per item (id, value, the measures and "
+                                           "spread asked for, the method), the audit block in "
+                                           "X- headers.",
+                         {"text/csv": {"schema": {"type": "string"}}})
+        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
     spec.path("/v1/insurance-factors", operations={"post": {
         "operationId": "insuranceFactors", "security": _AUTH,
         "summary": f"One or many insurance factors under one basis (at most {max_items} "
                    "items), each with its second moment.",
         "requestBody": {"required": True, "content": {"application/json": {
             "schema": {"$ref": "#/components/schemas/InsuranceRequest"}}}},
-        "responses": _ok("InsuranceResponse", "results[i] answers items[i].")
-        | _problem_responses("400", "401", "404", "413", "415", "422", "503")}})
+        "responses": _ok("InsuranceResponse", "results[i] answers items[i]; as CSV (one row "
+                                              "per item) with Accept: text/csv.",
+                         {"text/csv": {"schema": {"type": "string"}}})
+        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
     spec.path("/v1/cash-flow-schedules", operations={"post": {
         "operationId": "cashFlowSchedules", "security": _AUTH,
         "summary": "The expected payment schedule behind one factor, as JSON or as CSV "

@@ -155,6 +155,9 @@ class SpreadRequestSchema(_Strict):
 
 
 class ItemSchema(_Strict):
+    id = fields.String(validate=validate.Length(1, 64), metadata={
+        "description": "The caller's own reference for the item (at most 64 characters), "
+                       "echoed in its result.", "example": "policy-104233"})
     lives = fields.List(fields.Nested(LifeSchema), required=True,
                         validate=validate.Length(1, 2),
                         metadata={"description": "One life, or two for a joint benefit."})
@@ -324,6 +327,9 @@ class ScheduleRequestSchema(_Priced):
 
 
 class InsuranceItemSchema(_Strict):
+    id = fields.String(validate=validate.Length(1, 64), metadata={
+        "description": "The caller's own reference for the item (at most 64 characters), "
+                       "echoed in its result.", "example": "policy-104233"})
     lives = fields.List(fields.Nested(LifeSchema), required=True,
                         validate=validate.Length(1, 2),
                         metadata={"description": "One life, or two for a joint cover."})
@@ -452,6 +458,7 @@ class PercentileSchema(Schema):
 
 
 class FactorResultSchema(Schema):
+    id = fields.String(metadata={"description": "The item's id, where it gave one."})
     value = fields.Float(required=True)
     method = fields.Nested(MethodSchema, required=True)
     standard_deviation = fields.Float(metadata={
@@ -467,6 +474,7 @@ class FactorResultSchema(Schema):
 
 
 class InsuranceResultSchema(Schema):
+    id = fields.String(metadata={"description": "The item's id, where it gave one."})
     value = fields.Float(required=True, metadata={"description": "E[Z], Z the present value."})
     second_moment = fields.Float(required=True, metadata={
         "description": "E[Z^2]: the benefit squared at double the force of interest; the "

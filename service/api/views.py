@@ -263,6 +263,7 @@ def _batch(schema, build=None):
 @bp.post("/v1/annuity-factors")
 def annuity_factors():
     """One or many annuity factors under one basis."""
+    wants_csv = _wants_csv()
     data, basis, valuation, items, warnings, limit, deadline = _batch(_factor_request)
     try:
         valued = value_annuities(basis.tables, items, valuation, max_work=limit,
@@ -273,13 +274,15 @@ def annuity_factors():
         raise _too_much(exc, "Valuing this batch") from None
     _finite_items(valued.value)
     FACTORS.labels(basis.ref, "factor").inc(len(items))
-    results = [{"value": v, "method": valued.methods[code]}
-               for v, code in zip(valued.value.tolist(), valued.method_code.tolist(),
-                                  strict=True)]
+    results = [_with_id(item, {"value": v, "method": valued.methods[code]})
+               for item, v, code in zip(data["items"], valued.value.tolist(),
+                                        valued.method_code.tolist(), strict=True)]
     _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
                   valuation, limit, deadline)
     _add_spread(results, basis, items, [item.get("spread") for item in data["items"]],
                 valuation, limit, deadline)
+    if wants_csv:
+        return _results_csv(results, warnings)
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
 
 
@@ -304,6 +307,7 @@ def _add_spread(results, basis, items, asked, valuation, limit, deadline):
 @bp.post("/v1/insurance-factors")
 def insurance_factors():
     """One or many insurance factors, with their second moments, under one basis."""
+    wants_csv = _wants_csv()
     data, basis, valuation, items, warnings, limit, deadline = _batch(_insurance_request,
                                                                       _assurance)
     try:
@@ -316,10 +320,47 @@ def insurance_factors():
     _finite_items(valued.value)
     _finite_items(valued.second_moment)
     FACTORS.labels(basis.ref, "insurance").inc(len(items))
-    results = [{"value": v, "second_moment": v2, "method": valued.methods[code]}
-               for v, v2, code in zip(valued.value.tolist(), valued.second_moment.tolist(),
-                                      valued.method_code.tolist(), strict=True)]
+    results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]})
+               for item, v, v2, code in zip(data["items"], valued.value.tolist(),
+                                            valued.second_moment.tolist(),
+                                            valued.method_code.tolist(), strict=True)]
+    if wants_csv:
+        return _results_csv(results, warnings)
     return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+
+
+_SCALARS = ("second_moment", "duration", "convexity", "standard_deviation")
+_METHOD_COLUMNS = ("approximation", "fractional_age", "evaluation")
+
+
+def _key_rate_label(factor: dict) -> str:
+    if "term" in factor:
+        return f"key_rate_{factor['term']:g}"
+    end = "" if factor["to"] is None else format(factor["to"], "g")
+    return f"key_rate_{factor['from']:g}_{end}"
+
+
+def _results_csv(results: list[dict], warnings) -> Response:
+    """One row per item: id, value (and second moment), the measures and spread asked for,
+    and the method; the audit block travels in headers. Cells not asked for are empty."""
+    rows = []
+    for r in results:
+        row = {"id": r.get("id"), "value": r["value"]}
+        row |= {k: r[k] for k in _SCALARS if k in r}
+        row |= {_key_rate_label(k): k["duration"] for k in r.get("key_rate_durations", ())}
+        row |= {f"percentile_{p['percentile']:g}": p["value"] for p in r.get("percentiles", ())}
+        row |= {k: r["method"][k] for k in _METHOD_COLUMNS}
+        rows.append(row)
+    names = list(dict.fromkeys(k for row in rows for k in row))
+    # The method columns last, whatever the first row held.
+    names = [n for n in names if n not in _METHOD_COLUMNS] + list(_METHOD_COLUMNS)
+    lists = [["" if row.get(n) is None else row[n] for row in rows] for n in names]
+    return _csv_response(names, lists, {}, warnings)
+
+
+def _with_id(item: dict, result: dict) -> dict:
+    """The result, headed by the item's id where it gave one."""
+    return {"id": item["id"], **result} if "id" in item else result
 
 
 def _too_much(exc: WorkLimitError, what: str) -> ProblemError:
@@ -424,7 +465,7 @@ def _csv_response(names, lists, extra: dict, warnings=()):
     out = io.StringIO()
     writer = csv.writer(out, lineterminator="\n")
     writer.writerow(names)
-    writer.writerows(zip(*[[v if isinstance(v, int) else repr(v) for v in col]
+    writer.writerows(zip(*[[repr(v) if isinstance(v, float) else v for v in col]
                            for col in lists], strict=True))
     response = Response(out.getvalue(), mimetype="text/csv")
     audit = audit_block()

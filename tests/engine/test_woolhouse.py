@@ -56,7 +56,9 @@ class Reference:
         self.multiplier = life.mortality_multiplier
         # The chain closes with q = 1 at the table's last age under any multiplier.
         rates = [self._rate(k) for k in range(table.last_age - self.integer_age + 1)]
-        self.direct = DirectLife(rates, self.age - self.integer_age, valuation.fractional_age)
+        # An age within 1e-9 of a whole age is that age (the stated convention).
+        self.direct = DirectLife(rates, max(self.age - self.integer_age, 0.0),
+                                 valuation.fractional_age)
         self.delta = math.log1p(valuation.interest)
 
     def _rate(self, k: int):
