@@ -42,9 +42,9 @@ openapi: install
 check-tables: install
 	$(BIN)/annuity-service check-tables tables
 
+# Every benchmark side by side (a few minutes); writes bench/results/latest.md and latest.json.
 bench: install
-	$(BIN)/python bench/run.py
-	$(BIN)/python bench/curves.py
+	$(BIN)/python -m bench.run
 
 clean:
 	rm -rf $(VENV)

@@ -1,126 +1,190 @@
-"""Benchmark of the interest structures (service.engine.curves) beside the engine.
+"""Interest structures: the integrated engine on a flat rate, a spot curve, segments and bands.
 
-Until the engine takes a structure, this measures the parts a structure adds, on the payment
-dates of a 10,000-item monthly batch, next to the engine's whole valuation of that batch at a
-flat rate, and estimates the batch's time on a 30-term spot curve as
-engine - (flat discounting) + (curve discounting). Shared, noisy machines: read the ratios.
+The same 10,000 mixed single-life items (monthly in advance: whole life, some guaranteed;
+temporary; deferred; and a fifth continuous, whole life, temporary or deferred) are valued by
+``value_annuities`` at a flat rate, on a 30-term spot curve, on segment rates and on forward
+bands, and valued with every measure (``value_annuities`` then ``annuity_measures`` with
+key-rate durations, as the API does for items that ask for duration, convexity and key-rate
+durations). The configurations are timed in turn within one run; each figure is the median
+of the repeats, and the ratios are what the targets speak of:
 
-    .venv/bin/python bench/curves.py [--items N]     # writes bench/results/curves.md
+- on the 30-term spot curve, the batch takes at most 2x the same batch at a flat rate;
+- asking for every measure takes at most 1.5x more again (value and measures together,
+  against the value alone on the same structure).
+
+A correctness guard, not a timing: a one-term spot curve at the flat rate's level gives the
+flat rate's values and measures to 1e-12 (relative).
+
+    .venv/bin/python bench/run.py --only curves [--items N] [--repeats R]
 """
-
-import argparse
-import platform
-import sys
-import time
-from datetime import UTC, datetime
-from pathlib import Path
 
 import numpy as np
 
-ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
+from bench.common import Figure, Section, environment, median, side_by_side, table, verdict
+from service import create_app
+from service.engine.annuity import (
+    Item,
+    Life,
+    Payments,
+    Valuation,
+    annuity_measures,
+    value_annuities,
+)
+from service.engine.curves import Curve
 
-from service import create_app  # noqa: E402
-from service.engine.annuity import Item, Life, Payments, Valuation, annuity_values  # noqa: E402
-from service.engine.curves import Curve  # noqa: E402
-
+FLAT_RATE = 0.05
+#: An invented upward-sloping spot curve with a term for each year from 1 to 30.
 SPOT_30 = {"kind": "spot", "terms": list(range(1, 31)),
-           "rates": [0.03 + 0.012 * (1 - np.exp(-k / 8)) for k in range(1, 31)]}
+           "rates": [round(0.03 + 0.012 * (1 - np.exp(-k / 8)), 6) for k in range(1, 31)]}
 STRUCTURES = {
-    "spot curve, 30 terms": SPOT_30,
-    "segments, 3 bands": {"kind": "segments", "edges": [5, 20], "rates": [0.045, 0.052, 0.055]},
-    "forward bands, 2": {"kind": "forward", "edges": [10], "rates": [0.05, 0.035]},
+    "flat": {"kind": "flat", "rate": FLAT_RATE},
+    "spot": SPOT_30,
+    "segments": {"kind": "segments", "edges": [5, 20], "rates": [0.045, 0.052, 0.055]},
+    "forward": {"kind": "forward", "edges": [10], "rates": [0.05, 0.035]},
 }
+LABELS = {"flat": "flat rate", "spot": "spot curve, 30 terms",
+          "segments": "segment rates, 3 bands", "forward": "forward bands, 2"}
+#: Targets (issue 9): spot against flat, and every measure against the value alone.
+STRUCTURE_TARGET = 2.0
+MEASURES_TARGET = 1.5
+GUARD_TOLERANCE = 1e-12
+#: Items the guard compares (every shape of the mix is among them).
+GUARD_ITEMS = 1000
 
 
-def _best(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
+def mixed_items(n: int, seed: int = 2026) -> list[Item]:
+    """Return ``n`` single-life items: 30% monthly whole life (a third guaranteed 5 or 10
+    years), 25% monthly temporary, 25% monthly deferred, 20% continuous (whole life,
+    temporary or deferred), escalating at 0 or 2% a year."""
+    rng = np.random.default_rng(seed)
+    shape = rng.choice(4, n, p=[0.30, 0.25, 0.25, 0.20])
+    ages = rng.uniform(40, 90, n)
+    escalation = rng.choice([0.0, 0.02], n)
+    guarantee = rng.choice([0.0, 0.0, 5.0, 10.0], n)
+    term = rng.integers(5, 31, n).astype(float)
+    deferral = rng.integers(1, 26, n).astype(float)
+    style = rng.integers(0, 3, n)
+    items = []
+    for k in range(n):
+        age, r = round(float(ages[k]), 2), float(escalation[k])
+        if shape[k] == 0:
+            pay = Payments("advance", 12, None, 0.0, float(guarantee[k]), r)
+        elif shape[k] == 1:
+            pay = Payments("advance", 12, float(term[k]), 0.0, 0.0, r)
+        elif shape[k] == 2:
+            age = min(age, 64.0)
+            pay = Payments("advance", 12, None, float(deferral[k]), 0.0, r)
+        else:
+            term_k = float(term[k]) if style[k] == 1 else None
+            defer_k = float(deferral[k]) if style[k] == 2 else 0.0
+            pay = Payments("continuous", 1, term_k, defer_k, 0.0, r)
+        items.append(Item((Life(age),), pay))
+    return items
 
 
-def main() -> int:
-    parser = argparse.ArgumentParser()
-    parser.add_argument("--items", type=int, default=10_000)
-    parser.add_argument("--repeats", type=int, default=3)
-    args = parser.parse_args()
-    n = args.items
-    rng = np.random.default_rng(2026)
+def _everything(tables, items, valuation):
+    value_annuities(tables, items, valuation)
+    annuity_measures(tables, items, valuation, key_rates=True)
+
+
+def guard(tables, items, fractional_age: str) -> float:
+    """Return the largest relative difference between the values and measures at the flat
+    rate and on a one-term spot curve at the same level."""
+    flat = Valuation(Curve.flat(FLAT_RATE), fractional_age)
+    one = Valuation(Curve.from_mapping({"kind": "spot", "terms": [10.0],
+                                        "rates": [FLAT_RATE]}), fractional_age)
+    worst = 0.0
+    a, b = value_annuities(tables, items, flat).value, value_annuities(tables, items, one).value
+    pairs = [(a, b)]
+    ma = annuity_measures(tables, items, flat, key_rates=True)
+    mb = annuity_measures(tables, items, one, key_rates=True)
+    pairs += [(ma.value, mb.value), (ma.duration, mb.duration), (ma.convexity, mb.convexity),
+              (ma.key_rate_durations, mb.key_rate_durations)]
+    for x, y in pairs:
+        x, y = np.asarray(x, dtype=float), np.asarray(y, dtype=float)
+        both = np.isfinite(x) & np.isfinite(y)
+        if not np.array_equal(np.isfinite(x), np.isfinite(y)):
+            return np.inf
+        diff = np.abs(x[both] - y[both]) / np.maximum(1.0, np.abs(x[both]))
+        worst = max(worst, float(diff.max(initial=0.0)))
+    return worst
+
+
+def run(items_count: int = 10_000, repeats: int = 3) -> Section:
     basis = create_app().extensions["registry"].resolve("standard-ultimate")
-    val = Valuation(basis.interest_rate, basis.fractional_age, basis.approximation)
-    ages = rng.uniform(50, 90, n).round(2)
-    items = [Item((Life(float(a)),), Payments("advance", 12, None, 0.0, 0.0, 0.02))
-             for a in ages]
-    engine = _best(lambda: annuity_values(basis.tables, items, val), args.repeats)
+    tables, frac = basis.tables, basis.fractional_age
+    items = mixed_items(items_count)
+    valuations = {name: Valuation(Curve.from_mapping(mapping), frac, "exact")
+                  for name, mapping in STRUCTURES.items()}
+    tasks = {}
+    for name, valuation in valuations.items():
+        tasks[(name, "value")] = lambda v=valuation: value_annuities(tables, items, v)
+        tasks[(name, "measures")] = lambda v=valuation: _everything(tables, items, v)
+    seconds = side_by_side(tasks, repeats)
+    med = {key: median(times) for key, times in seconds.items()}
+    flat = med[("flat", "value")]
 
-    # The batch's payment dates: monthly from 0 until the table's end (age 131).
-    counts = np.floor((131 - ages) * 12).astype(np.int64)
-    owner = np.repeat(np.arange(n), counts)
-    firsts = np.cumsum(counts) - counts
-    t = (np.arange(counts.sum()) - np.repeat(firsts, counts)) / 12.0
-    pv = np.exp(-0.03 * t)
-    delta = np.log1p(basis.interest_rate)
-    flat = _best(lambda: np.exp(-delta * t), args.repeats)
-    rows = [(f"engine, {n:,} monthly items at a flat rate (whole valuation)", engine, 1.0),
-            (f"flat discount exp(-delta t) on its {t.size:,} payment dates", flat, 1.0)]
-    for label, mapping in STRUCTURES.items():
-        curve = Curve.from_mapping(mapping)
-        disc = _best(lambda c=curve: c.discount(t), args.repeats)
-        rows.append((f"{label}: discount on the same dates", disc, disc / flat))
-        rows.append((f"{label}: estimated engine batch", engine - flat + disc,
-                     (engine - flat + disc) / engine))
-    spot = Curve.from_mapping(SPOT_30)
-    moments = _best(lambda: spot.moments(owner, t, pv, n).measures(), args.repeats)
-    plain = _best(lambda: spot.moments(owner, t, pv, n, key_rates=False), args.repeats)
-    rows.append(("spot curve: duration, convexity and 30 key-rate durations", moments,
-                 moments / engine))
-    rows.append(("spot curve: duration and convexity only", plain, plain / engine))
+    def paired(top, bottom):
+        # Each round times every configuration once, seconds apart: the ratio of a round
+        # compares timings taken under the same load; the figure is their median.
+        return median([t / b for t, b in zip(seconds[top], seconds[bottom], strict=True)])
 
-    # Continuous: segments of a year cut at whole years of the window and at whole ages.
-    frac = ages - np.floor(ages)
-    years = np.ceil(131 - ages).astype(np.int64)
-    seg_owner = np.repeat(np.arange(n), 2 * years)
-    k = np.arange(seg_owner.size) - np.repeat(np.cumsum(2 * years) - 2 * years, 2 * years)
-    cuts = np.where(k % 2 == 0, k // 2, k // 2 + 1 - frac[seg_owner])
-    nxt = np.where(k % 2 == 0, k // 2 + 1 - frac[seg_owner], k // 2 + 1)
-    t1, length = cuts.astype(float), (nxt - cuts).astype(float)
-    pieces = _best(lambda: spot.pieces(t1, length), args.repeats)
-    # Rules are built chunk by chunk, as the engine values its batches.
-    chunks = np.array_split(np.arange(t1.size), max(1, t1.size // 80_000))
+    figures, rows = [], []
+    for name in STRUCTURES:
+        value, both = med[(name, "value")], med[(name, "measures")]
+        target = None if name == "flat" else STRUCTURE_TARGET
+        f1 = Figure(f"curves: {LABELS[name]}, value / flat rate value", value, "s",
+                    floor=flat, ratio=paired((name, "value"), ("flat", "value")),
+                    target=target)
+        f2 = Figure(f"curves: {LABELS[name]}, value and every measure / value alone", both,
+                    "s", floor=value, ratio=paired((name, "measures"), (name, "value")),
+                    target=MEASURES_TARGET)
+        f3 = Figure(f"curves: {LABELS[name]}, value and every measure / flat rate value", both,
+                    "s", floor=flat, ratio=paired((name, "measures"), ("flat", "value")),
+                    target=None if name == "flat" else STRUCTURE_TARGET * MEASURES_TARGET)
+        figures += [f1, f2, f3]
+        rows.append([LABELS[name], f"{value:.3f}", f"{f1.ratio:.2f}",
+                     f"{target:g}x: {verdict(f1.met)}" if target else "",
+                     f"{both:.3f}", f"{f2.ratio:.2f}",
+                     f"{MEASURES_TARGET:g}x: {verdict(f2.met)}", f"{f3.ratio:.2f}",
+                     f"{f3.target:g}x: {verdict(f3.met)}" if f3.target else ""])
 
-    def rules(**options):
-        return sum(spot.gauss_rule(t1[c], length[c], **options).time.size for c in chunks)
-
-    rule_time = _best(lambda: rules(order=8, correction=True), args.repeats)
-    full = _best(lambda: rules(order=12), args.repeats)
-    points = rules(order=8, correction=True)
-    rows.append((f"spot curve: pieces (factor, force, curvature) of {t1.size:,} segments",
-                 pieces, pieces / engine))
-    rows.append((f"spot curve: correction rule, order 8 ({points:,} points)",
-                 rule_time, rule_time / engine))
-    rows.append(("spot curve: full rule for moments, order 12", full, full / engine))
-
+    diff = guard(tables, items[:GUARD_ITEMS], frac)
+    check = Figure("curves: one-term spot curve against the flat rate, largest relative "
+                   "difference of values and measures", diff, "relative",
+                   target=GUARD_TOLERANCE)
+    figures.append(check)
+    failures = [] if check.met else [f"one-term spot curve differs from the flat rate by "
+                                     f"{diff:.3g} (tolerance {GUARD_TOLERANCE:g})"]
+    shapes = {"monthly whole life": 0, "monthly temporary": 0, "monthly deferred": 0,
+              "continuous": 0}
+    for it in items:
+        p = it.payments
+        key = ("continuous" if p.timing == "continuous" else "monthly temporary"
+               if p.term is not None else "monthly deferred" if p.deferral else
+               "monthly whole life")
+        shapes[key] += 1
     lines = [
-        f"# Interest structures ({datetime.now(UTC):%Y-%m-%d %H:%M} UTC)",
+        environment() + f"; {repeats} rounds, each timing every configuration once in "
+        "turn. Seconds: the median over the rounds; ratios: the median of each round's "
+        "ratio (timings seconds apart, under the same load).",
         "",
-        f"Python {platform.python_version()}, numpy {np.__version__}, {platform.machine()}; "
-        f"best of {args.repeats}. Ratio: discounting rows to the flat discount; estimated "
-        "batches and the other rows to the engine's whole flat valuation. The survival "
-        "evaluated at the continuous rule's points is not included (the engine does it).",
+        f"{items_count:,} single-life items under `standard-ultimate` (UDD, exact summation), "
+        + ", ".join(f"{v:,} {k}" for k, v in shapes.items())
+        + f"; flat rate {FLAT_RATE:.0%}. 'Value' is `value_annuities`; 'every measure' is "
+        "`value_annuities` then `annuity_measures(key_rates=True)` (duration, convexity and "
+        "key-rate durations, as the API computes them).",
         "",
-        "| what | seconds | ratio |",
-        "| --- | ---: | ---: |",
+        *table(["structure", "value (s)", "/ flat", "target", "value + every measure (s)",
+                "/ value alone", "target", "/ flat value", "target"], rows),
+        "",
+        "Seconds of each repeat: " + "; ".join(
+            f"{LABELS[n]} {w}: " + ", ".join(f"{t:.3f}" for t in seconds[(n, w)])
+            for n in STRUCTURES for w in ("value", "measures")) + ".",
+        "",
+        f"Guard: a one-term spot curve at {FLAT_RATE:.0%} against the flat rate, on the first "
+        f"{min(GUARD_ITEMS, items_count):,} items, values, durations, convexities and key-rate "
+        f"durations: largest relative difference {diff:.3g} (tolerance {GUARD_TOLERANCE:g}): "
+        f"{'passed' if check.met else '**FAILED**'}.",
     ]
-    lines += [f"| {w} | {s:.3f} | {r:.2f} |" for w, s, r in rows]
-    out = ROOT / "bench" / "results" / "curves.md"
-    out.write_text("\n".join(lines) + "\n")
-    print("\n".join(lines))
-    print(f"wrote {out}")
-    return 0
-
-
-if __name__ == "__main__":
-    raise SystemExit(main())
+    return Section("Interest structures (issue 9)", lines, figures, failures)

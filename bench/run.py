@@ -1,116 +1,78 @@
-"""Benchmarks of whole capabilities, measured side by side in one run.
+"""Run every benchmark and write bench/results/latest.md and latest.json.
 
-Writes bench/results/latest.md. Shared, noisy machines: read the ratios, not the seconds.
+    make bench                                    # everything, a few minutes
+    .venv/bin/python -m bench.run --only curves   # one suite (capabilities, curves, costly),
+                                                  # printed, results left as they were
 
-    make bench            # or: .venv/bin/python bench/run.py [--items N]
+Shared, noisy machines: read the ratios, not the seconds. See bench/README.md.
 """
 
 import argparse
-import platform
-import statistics
+import json
 import sys
 import time
-import tracemalloc
 from datetime import UTC, datetime
 from pathlib import Path
 
-import numpy as np
+if __package__ in (None, ""):
+    sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
+from bench import capabilities, costly, curves  # noqa: E402
+from bench.common import ROOT, environment  # noqa: E402
 
-from service import create_app  # noqa: E402
-from service.engine.annuity import Item, Life, Payments, Valuation, annuity_values  # noqa: E402
-
-
-def _items(n: int, timing: str, frequency: int, rng) -> list[Item]:
-    ages = rng.uniform(50, 90, n).round(2)
-    guarantees = rng.choice([0, 5, 10], n)
-    return [Item((Life(float(a)),), Payments(timing, frequency, None, 0.0, float(g), 0.02))
-            for a, g in zip(ages, guarantees, strict=True)]
-
-
-def _best(fn, repeats: int) -> float:
-    times = []
-    for _ in range(repeats):
-        t0 = time.perf_counter()
-        fn()
-        times.append(time.perf_counter() - t0)
-    return min(times)
+SUITES = ("curves", "costly", "capabilities")
 
 
 def main() -> int:
-    parser = argparse.ArgumentParser()
-    parser.add_argument("--items", type=int, default=10_000)
-    parser.add_argument("--repeats", type=int, default=3)
+    parser = argparse.ArgumentParser(description="Run the benchmarks.")
+    parser.add_argument("--only", help=f"comma-separated suites of {', '.join(SUITES)}; "
+                                       "prints them and writes no results")
+    parser.add_argument("--items", type=int, default=10_000,
+                        help="items in the curves and capabilities batches")
+    parser.add_argument("--repeats", type=int, default=5,
+                        help="repeats of each timing in curves and capabilities (median)")
+    parser.add_argument("--costly-repeats", type=int, default=3,
+                        help="repeats of each costly request (median)")
+    parser.add_argument("--kinds", help="costly kinds to run, separated by ';' (default all)")
+    parser.add_argument("--out", type=Path, default=ROOT / "bench" / "results")
     args = parser.parse_args()
-    n = args.items
-    rng = np.random.default_rng(2026)
-    app = create_app()
-    basis = app.extensions["registry"].resolve("standard-ultimate")
-    val = Valuation(basis.interest_rate, basis.fractional_age, basis.approximation)
-    wool = Valuation(basis.interest_rate, basis.fractional_age, "woolhouse-3")
-    tables = basis.tables
-    rows = []
+    chosen = args.only.split(",") if args.only else list(SUITES)
+    unknown = set(chosen) - set(SUITES)
+    if unknown:
+        parser.error(f"unknown suites: {', '.join(sorted(unknown))}")
 
-    for label, timing, m in [("annual in advance", "advance", 1),
-                             ("monthly in arrears", "arrears", 12),
-                             ("continuous", "continuous", 1)]:
-        items = _items(n, timing, m, rng)
-        batch = _best(lambda items=items: annuity_values(tables, items, val), args.repeats)
-        sample = items[:200]
-        single = _best(lambda s=sample: [annuity_values(tables, [it], val) for it in s], 1)
-        single_per_item = single / len(sample)
-        rows.append((f"{n:,} items, {label}: batch", batch, batch / n * 1e6,
-                     single_per_item / (batch / n)))
-    items = _items(n, "advance", 12, rng)
-    exact = _best(lambda: annuity_values(tables, items, val), args.repeats)
-    woolhouse = _best(lambda: annuity_values(tables, items, wool), args.repeats)
-    rows.append((f"{n:,} items, monthly: exact summation", exact, exact / n * 1e6, 1.0))
-    rows.append((f"{n:,} items, monthly: Woolhouse 3-term", woolhouse, woolhouse / n * 1e6,
-                 exact / woolhouse))
+    started = time.perf_counter()
+    header = environment()
+    sections = []
+    for name in SUITES:
+        if name not in chosen:
+            continue
+        print(f"{name}...", file=sys.stderr, flush=True)
+        if name == "curves":
+            sections.append(curves.run(args.items, args.repeats))
+        elif name == "costly":
+            kinds = args.kinds.split(";") if args.kinds else None
+            sections.append(costly.run(args.costly_repeats, kinds))
+        else:
+            sections.append(capabilities.run(args.items, args.repeats))
+    elapsed = time.perf_counter() - started
 
-    tracemalloc.start()
-    annuity_values(tables, items, val)
-    _, peak = tracemalloc.get_traced_memory()
-    tracemalloc.stop()
-
-    client = app.test_client()
-    body = {"basis": "standard-ultimate", "items": [
-        {"lives": [{"age": it.lives[0].age}], "timing": "advance", "frequency": 12,
-         "guarantee": it.payments.guarantee, "escalation": 0.02} for it in items]}
-    http = []
-    for _ in range(args.repeats):
-        t0 = time.perf_counter()
-        response = client.post("/v1/annuity-factors", json=body)
-        http.append(time.perf_counter() - t0)
-        assert response.status_code == 200, response.json
-    http_best = min(http)
-    rows.append((f"{n:,} items, monthly, through HTTP (in-process)", http_best,
-                 http_best / n * 1e6, exact / http_best))
-
-    lines = [
-        f"# Benchmarks ({datetime.now(UTC):%Y-%m-%d %H:%M} UTC)",
-        "",
-        f"Python {platform.python_version()}, numpy {np.__version__}, {platform.machine()}; "
-        f"best of {args.repeats}. Ratio column: for batches, time per item when valued one "
-        "at a time divided by time per item in the batch (the gain from vectorising over "
-        "items); for Woolhouse, exact time / Woolhouse time; for HTTP, engine share of the "
-        "request time.",
-        "",
-        "| what | seconds | microseconds per item | ratio |",
-        "| --- | ---: | ---: | ---: |",
-    ]
-    lines += [f"| {w} | {s:.3f} | {us:.1f} | {r:.2f} |" for w, s, us, r in rows]
-    lines += ["", f"Peak memory allocated by the engine for {n:,} monthly items: "
-                  f"{peak / 2**20:.1f} MiB (tracemalloc).", "",
-              f"HTTP times over repeats: {', '.join(f'{t:.3f}' for t in http)} s "
-              f"(median {statistics.median(http):.3f}).", ""]
-    out = ROOT / "bench" / "results" / "latest.md"
-    out.write_text("\n".join(lines))
-    print("\n".join(lines))
-    print(f"wrote {out}")
-    return 0
+    text = "\n".join([
+        f"# Benchmarks ({datetime.now(UTC):%Y-%m-%d %H:%M} UTC)", "",
+        f"{header}. Whole run: {elapsed:.0f} s. Written by `make bench`; what each figure "
+        "means: bench/README.md.", "",
+        *[section.markdown() for section in sections]])
+    print(text)
+    figures = [f.to_json() for section in sections for f in section.figures]
+    if not args.only:
+        args.out.mkdir(parents=True, exist_ok=True)
+        (args.out / "latest.md").write_text(text)
+        (args.out / "latest.json").write_text(json.dumps(figures, indent=1) + "\n")
+        print(f"wrote {args.out / 'latest.md'} and {args.out / 'latest.json'}", file=sys.stderr)
+    failures = [f for section in sections for f in section.failures]
+    for failure in failures:
+        print(f"FAILED: {failure}", file=sys.stderr)
+    return 1 if failures else 0
 
 
 if __name__ == "__main__":
