@@ -454,8 +454,12 @@ def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximati
         first = np.zeros(which.size, dtype=np.int64)
         guaranteed = np.minimum(batch.guaranteed[which], count)
     else:
-        values = _guaranteed_values(batch, which, delta)
+        values = np.zeros(which.size)
         first = guaranteed = np.minimum(batch.guaranteed[which], count)
+        # One closed form per year of a guarantee, in chunks of years to bound memory.
+        for part in _chunks(-(-batch.guaranteed[which] // batch.m[which])):
+            _on_time(deadline)
+            values[part] = _guaranteed_values(batch, which[part], delta)
     m = batch.m[which]
     local = np.arange(which.size)
     k0, k1 = _woolhouse_years(batch, which, approximation)
@@ -465,8 +469,11 @@ def _discrete_values(batch: _Batch, which: np.ndarray, curve: Curve, approximati
     # Woolhouse years whose formula left its bounds.
     owner, lo, hi = [local, local], [first, tail_start], [head_stop, count]
     used = np.zeros(which.size, dtype=bool)
-    if (k1 > k0).any():
-        loc, k, block, ok = _woolhouse_blocks(batch, which, local, k0, k1, curve, approximation)
+    # Woolhouse years, in chunks of years to bound memory.
+    for part in _chunks(np.maximum(k1 - k0, 0)) if (k1 > k0).any() else ():
+        _on_time(deadline)
+        loc, k, block, ok = _woolhouse_blocks(batch, which, local[part], k0[part], k1[part],
+                                              curve, approximation)
         values += np.bincount(loc[ok], weights=block[ok], minlength=which.size)
         used[loc[ok & (block > 0)]] = True  # a year no one can reach tells nothing
         bad = ~ok

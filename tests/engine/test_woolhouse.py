@@ -128,7 +128,7 @@ class Reference:
         m = p.frequency
         total = 0.0
         for j in range(round(start * m), math.ceil(stop * m - 1e-9)):
-            t = p.deferral + j / m + (1 / m if p.timing == "arrears" else 0.0)
+            t = p.deferral + (j + (p.timing == "arrears")) / m  # as the dates are defined
             total += (1 + p.escalation) ** (j // m) / m * self.f(t)
         return total
 
@@ -143,7 +143,7 @@ class Reference:
         m = p.frequency
         total = 0.0
         for j in range(round(p.guarantee * m)):
-            t = p.deferral + j / m + (1 / m if p.timing == "arrears" else 0.0)
+            t = p.deferral + (j + (p.timing == "arrears")) / m  # as the dates are defined
             total += (1 + p.escalation) ** (j // m) / m * math.exp(-self.delta * t)
         return total * self.direct.survival(p.deferral)
 
