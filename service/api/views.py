@@ -25,7 +25,6 @@ from service.engine.annuity import (
     Life,
     Payments,
     Valuation,
-    annuity_measures,
     cash_flow_schedule,
     value_annuities,
 )
@@ -265,9 +264,18 @@ def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
     data, basis, valuation, items, warnings, limit, deadline = _batch(_factor_request)
+    asked = [item["measures"] for item in data["items"]]
+    key_rates = sum("key_rate_durations" in measures for measures in asked)
+    entries, cap = key_rates * valuation.curve.size, current_app.config["MAX_KEY_RATE_ENTRIES"]
+    if entries > cap:
+        raise ProblemError(413, f"{key_rates} items ask for key-rate durations on "
+                                f"{valuation.curve.size} factors: {entries} entries, more "
+                                f"than the {cap} one answer may hold. Split the batch.",
+                           title="Batch too large to value")
     try:
         valued = value_annuities(basis.tables, items, valuation, max_work=limit,
-                                 deadline=deadline)
+                                 deadline=deadline, measure=[bool(m) for m in asked],
+                                 key_rates=key_rates > 0)
     except ItemError as exc:
         raise _item_problem(exc, "items.") from None
     except WorkLimitError as exc:
@@ -277,8 +285,8 @@ def annuity_factors():
     results = [_with_id(item, {"value": v, "method": valued.methods[code]})
                for item, v, code in zip(data["items"], valued.value.tolist(),
                                         valued.method_code.tolist(), strict=True)]
-    _add_measures(results, basis, items, [item["measures"] for item in data["items"]],
-                  valuation, limit, deadline)
+    if valued.measures is not None:
+        _add_measures(results, asked, valued.measures, valuation.curve.factors())
     _add_spread(results, basis, items, [item.get("spread") for item in data["items"]],
                 valuation, limit, deadline)
     if wants_csv:
@@ -370,43 +378,23 @@ def _too_much(exc: WorkLimitError, what: str) -> ProblemError:
                         title="Batch too large to value")
 
 
-def _add_measures(results, basis, items, asked, valuation, limit, deadline):
-    """Add the sensitivities that items asked for to their results."""
-    which = [n for n, measures in enumerate(asked) if measures]
-    if not which:
-        return
-    key_rates = [n for n in which if "key_rate_durations" in asked[n]]
-    entries = len(key_rates) * valuation.curve.size
-    cap = current_app.config["MAX_KEY_RATE_ENTRIES"]
-    if entries > cap:
-        raise ProblemError(413, f"{len(key_rates)} items ask for key-rate durations on "
-                                f"{valuation.curve.size} factors: {entries} entries, more "
-                                f"than the {cap} one answer may hold. Split the batch.",
-                           title="Batch too large to value")
-    try:
-        got = annuity_measures(basis.tables, [items[n] for n in which], valuation,
-                               key_rates=bool(key_rates), max_work=limit, deadline=deadline)
-    except WorkLimitError as exc:
-        raise _too_much(exc, "The measures asked for") from None
-    factors = valuation.curve.factors()
+def _add_measures(results, asked, got, factors):
+    """Add the sensitivities that items asked for to their results (null where undefined:
+    a value of 0)."""
 
     def number(x):
         return float(x) if np.isfinite(x) else None
 
-    for row, n in enumerate(which):
+    for n, measures in enumerate(asked):
         result = results[n]
-        if "duration" in asked[n]:
-            result["duration"] = number(got.duration[row])
-        if "convexity" in asked[n]:
-            result["convexity"] = number(got.convexity[row])
-        if "key_rate_durations" in asked[n]:
+        if "duration" in measures:
+            result["duration"] = number(got.duration[n])
+        if "convexity" in measures:
+            result["convexity"] = number(got.convexity[n])
+        if "key_rate_durations" in measures:
             result["key_rate_durations"] = [
                 factor | {"duration": number(d)}
-                for factor, d in zip(factors, got.key_rate_durations[row], strict=True)]
-
-
-_CSV_COLUMNS = ("time", "payment", "probability", "discount", "present_value")
-_STATE_COLUMNS = ("both_alive", "first_only", "second_only")
+                for factor, d in zip(factors, got.key_rate_durations[n], strict=True)]
 
 
 @bp.post("/v1/cash-flow-schedules")

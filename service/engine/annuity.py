@@ -109,7 +109,7 @@ _UNDISCOUNTED = Curve.flat(0.0)
 
 
 #: What each kind of valuation did; ``Values.method_code`` indexes these.
-EXACT_SUM, WOOLHOUSE_SUM, INTEGRAL = 0, 1, 2
+EXACT_SUM, WOOLHOUSE_SUM, INTEGRAL, INTEGRAL_BY_RULE = 0, 1, 2, 3
 
 _FORCE_ESTIMATE = (
     "the law's own force A + B c^x where the life follows the basis' law; otherwise at a "
@@ -117,8 +117,9 @@ _FORCE_ESTIMATE = (
     "rate for the year before), and between whole ages the fractional-age assumption's force")
 
 
-def methods(valuation: Valuation) -> tuple[dict, dict, dict]:
-    """Return the method blocks of exact sums, Woolhouse sums and integrals under ``valuation``.
+def methods(valuation: Valuation) -> tuple[dict, ...]:
+    """Return the method blocks of exact sums, Woolhouse sums, closed-form integrals and
+    integrals by a Gauss-Legendre rule (items valued with their sensitivities).
 
     The engine decides per item which one it used (``Values.method_code``); these describe
     them for the audit trail.
@@ -150,7 +151,10 @@ def methods(valuation: Valuation) -> tuple[dict, dict, dict]:
     integral = {"evaluation": evaluation + "; discounting: " + words["continuous"],
                 "fractional_age": frac, "approximation": "exact",
                 "discounting": words["discounting"]}
-    return exact, woolhouse, integral
+    by_rule = integral | {"evaluation": (
+        "integral of payment rate x discount x survival per segment of age by a "
+        "Gauss-Legendre rule exact to rounding (the same points give the sensitivities)")}
+    return exact, woolhouse, integral, by_rule
 
 
 # ---------------------------------------------------------------------------------------------
@@ -808,14 +812,16 @@ class Values:
 
     value: np.ndarray
     method_code: np.ndarray
-    methods: tuple[dict, dict, dict]
+    methods: tuple[dict, ...]
+    measures: Measures | None = None  # for the items asked for (indexed like the batch)
 
     def method(self, n: int) -> dict:
         return self.methods[int(self.method_code[n])]
 
 
 def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None,
-                    deadline: float | None = None) -> Values:
+                    deadline: float | None = None, measure=None,
+                    key_rates: bool = False) -> Values:
     """Return the present value of 1 p.a. for each item, and the method that valued it.
 
     Parameters
@@ -828,6 +834,11 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
         or segment); beyond it nothing is computed.
     deadline : optional time.monotonic() value after which the valuation is abandoned
         (checked between chunks of work).
+    measure : optional boolean mask of the items whose sensitivities are wanted too
+        (``Values.measures``, see :func:`annuity_measures`; ``key_rates``: with key-rate
+        durations). Where no Woolhouse value is wanted, those items are valued from the same
+        payments in one pass: discrete dates summed, continuous segments integrated by the
+        Gauss-Legendre rule (method ``INTEGRAL_BY_RULE``).
 
     Raises
     ------
@@ -840,31 +851,38 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     """
     batch = _prepare(tables, items, valuation)
     curve = valuation.curve
-    _check_work(batch, curve, max_work)
-    values = np.zeros(len(items))
-    code = np.full(len(items), INTEGRAL, dtype=np.int8)
-    discrete = np.flatnonzero(~batch.continuous)
+    size = len(items)
+    measure = np.zeros(size, dtype=bool) if measure is None else np.asarray(measure, bool)
+    # Items with sensitivities are valued from the same payments, unless Woolhouse is wanted.
+    together = measure & (valuation.approximation == "exact")
+    if max_work is not None:
+        work = int(_work(batch, curve)[~together].sum()
+                   + _measure_work(batch, curve)[measure].sum())
+        if work > max_work:
+            raise WorkLimitError(work, max_work)
+    values = np.zeros(size)
+    code = np.full(size, INTEGRAL, dtype=np.int8)
+    discrete = np.flatnonzero(~batch.continuous & ~together)
     if discrete.size:
         values[discrete], used = _discrete_values(batch, discrete, curve,
                                                   valuation.approximation, deadline)
         code[discrete] = np.where(used, WOOLHOUSE_SUM, EXACT_SUM)
-    cont = np.flatnonzero(batch.continuous)
+    cont = np.flatnonzero(batch.continuous & ~together)
     if cont.size:
         values[cont] = _continuous_values(batch, cont, curve, deadline)
-    return Values(values, code, methods(valuation))
+    measures = None
+    if measure.any():
+        measures = _moments(batch, np.flatnonzero(measure), curve, key_rates,
+                            deadline).measures()
+        values[together] = measures.value[together]
+        code[together] = np.where(batch.continuous[together], INTEGRAL_BY_RULE, EXACT_SUM)
+    return Values(values, code, methods(valuation), measures)
 
 
 def _measure_work(batch: _Batch, curve: Curve) -> np.ndarray:
     """Work units of the sensitivities: every payment date (guaranteed ones too), and for
     continuous items the points of a Gauss-Legendre rule on each segment."""
     return np.where(batch.continuous, 4 * _work(batch, curve), _payment_count(batch))
-
-
-def _check_work(batch: _Batch, curve: Curve, max_work: int | None) -> None:
-    if max_work is not None:
-        work = int(_work(batch, curve).sum())
-        if work > max_work:
-            raise WorkLimitError(work, max_work)
 
 
 def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = True,
@@ -884,30 +902,37 @@ def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = T
         work = int(_measure_work(batch, curve).sum())
         if work > max_work:
             raise WorkLimitError(work, max_work)
-    size = len(items)
+    every = np.arange(len(items))
+    return _moments(batch, every, curve, key_rates, deadline).measures()
+
+
+def _moments(batch: _Batch, which: np.ndarray, curve: Curve, key_rates: bool,
+             deadline: float | None) -> Moments:
+    """Sums of PV, t PV, t^2 PV and the key-rate exposures of the items ``which`` (indexed
+    like the batch), from their payments: dates, or Gauss-Legendre points of segments."""
+    size = batch.m.size
     total = Moments(np.zeros(size), np.zeros(size), np.zeros(size),
                     np.zeros((size, curve.size)) if key_rates else None)
-    discrete = np.flatnonzero(~batch.continuous)
+    discrete = which[~batch.continuous[which]]
     count = _payment_count(batch)
     for part in _chunks(count[discrete]):
         _on_time(deadline)
-        which = discrete[part]
-        own, j = _expand(which, np.zeros(which.size, dtype=np.int64), count[which])
+        items = discrete[part]
+        own, j = _expand(items, np.zeros(items.size, dtype=np.int64), count[items])
         pts = _points(batch, own, j, curve)
         total = total + curve.moments(own, pts.time, pts.present_value, size,
                                       key_rates=key_rates)
-    cont = np.flatnonzero(batch.continuous)
+    cont = which[batch.continuous[which]]
     # A rule has up to 12 points per segment: chunks of a twelfth of the usual work.
     for part in _chunks(_work(batch, curve)[cont] * 12):
         _on_time(deadline)
-        which = cont[part]
-        cut = _cut(batch, which, curve)
+        cut = _cut(batch, cont[part], curve)
         rule = _cut_rule(batch, cut, curve)
         pv = rule.weight * cut.growth[rule.piece] * _weight_in(batch, cut, rule.piece,
                                                                rule.time)
         total = total + curve.moments(cut.own[rule.piece], rule.time, pv, size,
                                       key_rates=key_rates)
-    return total.measures()
+    return total
 
 
 def annuity_values(tables, items, valuation: Valuation, *, max_work: int | None = None

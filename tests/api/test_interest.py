@@ -142,3 +142,26 @@ def test_a_curve_rate_that_looks_like_a_percentage_warns(client):
     interest = {"kind": "spot", "terms": [1, 10], "rates": [0.03, 0.45]}
     body = post(client, {"basis": "standard-ultimate", "interest": interest, "items": [ITEM]})
     assert [w["path"] for w in body["warnings"]] == ["interest.rates.1"]
+
+
+@pytest.mark.parametrize("timing", ("advance", "continuous"))
+def test_values_with_measures_equal_values_without(client, timing):
+    item = {"lives": [{"age": 61.3}], "timing": timing, "frequency": 1, "guarantee": 5}
+    plain = post(client, {"basis": "standard-ultimate", "interest": SPOT,
+                          "items": [item]})["results"][0]
+    measured = post(client, {"basis": "standard-ultimate", "interest": SPOT, "items": [
+        item | {"measures": ["duration"]}]})["results"][0]
+    # One pass gives both: the same payments, summed (or integrated by a rule exact to
+    # rounding) with their times.
+    assert measured["value"] == pytest.approx(plain["value"], rel=1e-12)
+    if timing == "continuous":
+        assert "Gauss-Legendre" in measured["method"]["evaluation"]
+
+
+def test_a_woolhouse_value_stays_woolhouse_with_measures(client):
+    item = {"lives": [{"age": 65, "sex": "female"}], "timing": "advance", "frequency": 12}
+    plain = post(client, {"basis": "fernhollow-annuitants@2025.1", "items": [item]})
+    measured = post(client, {"basis": "fernhollow-annuitants@2025.1", "items": [
+        item | {"measures": ["duration"]}]})
+    assert measured["results"][0]["value"] == plain["results"][0]["value"]
+    assert measured["results"][0]["method"]["approximation"] == "woolhouse-2"
