@@ -3,8 +3,8 @@
 For each kind of item, the largest batch the service accepts is built: one item repeated, at
 most MAX_ITEMS (10,000) items and at most MAX_EVALUATION_POINTS (20,000,000) work units, sized
 with the engine's own pricing (``service.engine.annuity._work``, which ``value_annuities``
-checks with ``max_work`` before valuing anything). Then ``value_annuities`` alone (and
-``annuity_measures``, for items with measures, as the API runs both) is timed, the median of
+checks with ``max_work`` before valuing anything). Then ``value_annuities`` (with every
+measure in the same call for items with measures, as the API asks) is timed, the median of
 a few repeats, and its peak memory is measured once with tracemalloc (numpy's buffers
 included). Each kind reports seconds, peak MiB and seconds per million work units.
 
@@ -50,9 +50,9 @@ from service.engine.annuity import (  # noqa: E402
     Life,
     Payments,
     Valuation,
+    _measure_work,
     _prepare,
     _work,
-    annuity_measures,
     value_annuities,
 )
 from service.engine.curves import Curve  # noqa: E402
@@ -83,9 +83,6 @@ class Kind:
     approximation: str = "exact"
     spot: bool = False
     measures: bool = False
-    #: Time annuity_measures on this many items and scale up (for batches whose measures take
-    #: far longer than the deadline: the real request would be abandoned at it).
-    sample: int | None = None
     #: Which _SEGMENT_COST weight prices it (continuous items).
     weight: tuple[str, int] | None = None
     #: Discrete single-life items at a flat rate: what a work unit (a payment date) is.
@@ -138,7 +135,7 @@ KINDS = [
     Kind("all measures, spot curve, continuous, two lives, Balducci", Item(_TWO, _CONT, _J2_3),
          "balducci", spot=True, measures=True, weight=("balducci", 2)),
     Kind("all measures, flat rate, daily, guaranteed 200 years",
-         Item(*_one(frequency=365, guarantee=200.0)), measures=True, sample=40),
+         Item(*_one(frequency=365, guarantee=200.0)), measures=True),
 ]
 
 
@@ -167,12 +164,22 @@ def _valuation(kind: Kind, basis) -> Valuation:
     return Valuation(interest, kind.fractional_age, kind.approximation)
 
 
+def _priced(kind: Kind, tables, items, valuation: Valuation) -> int:
+    """The work the engine charges for ``items`` (with their measures for such kinds)."""
+    batch = _prepare(tables, items, valuation)
+    if kind.measures and valuation.approximation == "exact":
+        return int(_measure_work(batch, valuation.curve).sum())
+    if kind.measures:
+        return int((_work(batch, valuation.curve) + _measure_work(batch, valuation.curve)).sum())
+    return int(_work(batch, valuation.curve).sum())
+
+
 def largest_batch(kind: Kind, tables, valuation: Valuation, max_items: int, max_work: int):
     """Return (items, work, bound): the largest accepted batch of ``kind.item`` repeated."""
-    unit = int(_work(_prepare(tables, [kind.item], valuation), valuation.curve)[0])
-    n = min(max_items, max_work // unit)
+    unit = _priced(kind, tables, [kind.item], valuation)
+    n = max(1, min(max_items, max_work // unit))
     items = [kind.item] * n
-    work = int(_work(_prepare(tables, items, valuation), valuation.curve).sum())
+    work = _priced(kind, tables, items, valuation)
     # The engine's own check: this batch is accepted, one more item would not be.
     assert work <= max_work, (kind.name, work)
     assert n == max_items or work + unit > max_work, (kind.name, work, unit)
@@ -183,25 +190,18 @@ def measure(kind: Kind, basis, max_items: int, max_work: int, repeats: int) -> R
     tables = basis.tables
     valuation = _valuation(kind, basis)
     items, work, bound = largest_batch(kind, tables, valuation, max_items, max_work)
-    sample = items[:kind.sample] if kind.sample else items
-    scale = len(items) / len(sample)
+    # As the API asks: values, and for kinds with measures every measure, in one call.
+    options = {"measure": [True] * len(items), "key_rates": True} if kind.measures else {}
 
     def value():
-        value_annuities(tables, items, valuation, max_work=max_work)
-
-    def measures():
-        annuity_measures(tables, sample, valuation, key_rates=True, max_work=max_work)
+        value_annuities(tables, items, valuation, max_work=max_work, **options)
 
     value_times, measure_times = [], []
     for _ in range(repeats):
         value_times.append(timed(value))
-        if kind.measures:
-            measure_times.append(timed(measures) * scale)
     tracemalloc.start()
     try:
         value()
-        if kind.measures:
-            measures()
         _, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()
@@ -254,7 +254,7 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
 
     references = [r.per_million for r in results if r.kind.reference]
     unit_cost = median(references) if references else median([r.per_million for r in results])
-    priced = [r for r in results if not r.kind.sample]
+    priced = list(results)
     worst = max(results, key=lambda r: r.seconds)
     worst_priced = max(priced, key=lambda r: r.seconds) if priced else worst
     cap, cap_kind = implied_cap(priced, budget, max_items)
@@ -263,8 +263,7 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
 
     figures, rows = [], []
     for r in results:
-        extrapolated = (f" (measures scaled up from {r.kind.sample} items)"
-                        if r.kind.sample else "")
+        extrapolated = ""
         name = r.kind.name + extrapolated
         t = Figure(f"costly: {name}: seconds alone / share of the deadline with every worker "
                    f"busy", r.seconds, "s", floor=budget, target=1.0)
@@ -276,7 +275,7 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
         figures += [t, m, u]
         rows.append([name, f"{r.items:,}", f"{r.work / 1e6:.2f}M ({r.bound})",
                      f"{r.value_seconds:.2f}",
-                     f"{r.measures_seconds:.2f}" if r.kind.measures else "",
+                     "in the value" if r.kind.measures else "",
                      f"{r.seconds:.2f}", f"{r.seconds * BUSY_FACTOR:.1f}", verdict(t.met),
                      f"{r.peak_mib:.0f}", verdict(m.met), f"{r.per_million:.3f}",
                      f"{u.ratio:.2f}"])
@@ -317,7 +316,7 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
         "the 30-term spot curve of the interest-structure section. Each batch is one item "
         f"repeated, the most the service accepts: at most {max_items:,} items and "
         f"{max_work:,} work units (which of the two bound it is in brackets). Seconds are one "
-        "core alone: `value_annuities`, plus `annuity_measures(key_rates=True)` for kinds "
+        "core alone: `value_annuities`, with every measure in the same call for kinds "
         "with measures (the API runs both, each within the cap). 'Busy' multiplies by "
         f"{BUSY_FACTOR:g}: production runs {WORKERS} threaded workers with at most "
         f"{VALUATIONS_PER_WORKER} valuations each on {CPUS} CPUs ({CONCURRENT} valuations on "
@@ -362,12 +361,10 @@ def profile(name: str) -> None:
     valuation = _valuation(kind, basis)
     items, work, _ = largest_batch(kind, basis.tables, valuation, app.config["MAX_ITEMS"],
                                    app.config["MAX_EVALUATION_POINTS"])
-    items = items[:kind.sample] if kind.sample else items
+    options = {"measure": [True] * len(items), "key_rates": True} if kind.measures else {}
     profiler = cProfile.Profile()
     profiler.enable()
-    value_annuities(basis.tables, items, valuation)
-    if kind.measures:
-        annuity_measures(basis.tables, items, valuation, key_rates=True)
+    value_annuities(basis.tables, items, valuation, **options)
     profiler.disable()
     print(f"{name}: {len(items):,} items, {work:,} work units")
     pstats.Stats(profiler).sort_stats("tottime").print_stats(15)

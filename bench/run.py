@@ -1,7 +1,8 @@
 """Run every benchmark and write bench/results/latest.md and latest.json.
 
     make bench                                    # everything, a few minutes
-    .venv/bin/python -m bench.run --only curves   # one suite (capabilities, curves, costly),
+    .venv/bin/python -m bench.run --only curves   # one suite (curves, risk, costly,
+                                                  # capabilities),
                                                   # printed, results left as they were
 
 Shared, noisy machines: read the ratios, not the seconds. See bench/README.md.
@@ -17,10 +18,10 @@ from pathlib import Path
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from bench import capabilities, costly, curves  # noqa: E402
+from bench import capabilities, costly, curves, risk  # noqa: E402
 from bench.common import ROOT, environment  # noqa: E402
 
-SUITES = ("curves", "costly", "capabilities")
+SUITES = ("curves", "risk", "costly", "capabilities")
 
 
 def main() -> int:
@@ -50,6 +51,8 @@ def main() -> int:
         print(f"{name}...", file=sys.stderr, flush=True)
         if name == "curves":
             sections.append(curves.run(args.items, args.repeats))
+        elif name == "risk":
+            sections.append(risk.run(args.items, args.repeats))
         elif name == "costly":
             kinds = args.kinds.split(";") if args.kinds else None
             sections.append(costly.run(args.costly_repeats, kinds))
