@@ -154,13 +154,18 @@ class SpreadRequestSchema(_Strict):
                               metadata={"example": [5, 50, 95]})
 
 
-class ItemSchema(_Strict):
+class _ItemBase(_Strict):
+    """What every item of a batch has: the caller's id and one or two lives."""
+
     id = fields.String(validate=validate.Length(1, 64), metadata={
         "description": "The caller's own reference for the item (at most 64 characters), "
                        "echoed in its result.", "example": "policy-104233"})
     lives = fields.List(fields.Nested(LifeSchema), required=True,
                         validate=validate.Length(1, 2),
                         metadata={"description": "One life, or two for a joint benefit."})
+
+
+class ItemSchema(_ItemBase):
     timing = fields.String(required=True, validate=validate.OneOf(TIMINGS),
                            metadata={"description": "advance (annuity-due), arrears "
                                                     "(annuity-immediate) or continuous."})
@@ -326,13 +331,7 @@ class ScheduleRequestSchema(_Priced):
                          metadata={"description": "Annual amount; every row is scaled by it."})
 
 
-class InsuranceItemSchema(_Strict):
-    id = fields.String(validate=validate.Length(1, 64), metadata={
-        "description": "The caller's own reference for the item (at most 64 characters), "
-                       "echoed in its result.", "example": "policy-104233"})
-    lives = fields.List(fields.Nested(LifeSchema), required=True,
-                        validate=validate.Length(1, 2),
-                        metadata={"description": "One life, or two for a joint cover."})
+class InsuranceItemSchema(_ItemBase):
     cover = fields.String(required=True, validate=validate.OneOf(COVERS), metadata={
         "description": "whole-life; term (pays on death within the term); endowment (on death "
                        "within the term or on survival to its end); pure-endowment (on "
