@@ -320,7 +320,20 @@ class _Priced(_Strict):
     interest = InterestField(metadata=INTEREST_DOC)
 
 
-class FactorRequestSchema(_Priced):
+ON_ERROR_DOC = {"description": (
+    "'reject' (the default): one invalid or impossible item refuses the whole batch with a "
+    "422 listing every problem. 'per-item': every valid item is valued, and each invalid one "
+    "gets, in its place in results, its id and a problem with its field paths (relative to "
+    "the item) and messages; the answer counts the items valued and refused.")}
+
+
+class _Batch(_Priced):
+    on_error = fields.String(load_default="reject",
+                             validate=validate.OneOf(["reject", "per-item"]),
+                             metadata=ON_ERROR_DOC)
+
+
+class FactorRequestSchema(_Batch):
     items = fields.List(fields.Nested(ItemSchema), required=True,
                         validate=validate.Length(min=1))
 
@@ -379,7 +392,7 @@ class InsuranceItemSchema(_ItemBase):
         return _months_to_years(data, ("term", "deferral"))
 
 
-class InsuranceRequestSchema(_Priced):
+class InsuranceRequestSchema(_Batch):
     items = fields.List(fields.Nested(InsuranceItemSchema), required=True,
                         validate=validate.Length(min=1))
 
@@ -456,10 +469,22 @@ class PercentileSchema(Schema):
     value = fields.Float(required=True)
 
 
+class ItemProblemSchema(Schema):
+    title = fields.String(required=True)
+    errors = fields.Dict(keys=fields.String(), values=fields.List(fields.String()),
+                         required=True, metadata={
+                             "description": "Field paths within the item, to messages."})
+
+
+ITEM_PROBLEM_DOC = {"description": "on_error 'per-item': why this item was refused (it then "
+                                   "has no value)."}
+
+
 class FactorResultSchema(Schema):
     id = fields.String(metadata={"description": "The item's id, where it gave one."})
-    value = fields.Float(required=True)
-    method = fields.Nested(MethodSchema, required=True)
+    value = fields.Float(metadata={"description": "Always, unless the item was refused."})
+    method = fields.Nested(MethodSchema)
+    problem = fields.Nested(ItemProblemSchema, metadata=ITEM_PROBLEM_DOC)
     standard_deviation = fields.Float(metadata={
         "description": "With spread: of the present value of the payments."})
     percentiles = fields.List(fields.Nested(PercentileSchema), metadata={
@@ -474,21 +499,30 @@ class FactorResultSchema(Schema):
 
 class InsuranceResultSchema(Schema):
     id = fields.String(metadata={"description": "The item's id, where it gave one."})
-    value = fields.Float(required=True, metadata={"description": "E[Z], Z the present value."})
-    second_moment = fields.Float(required=True, metadata={
+    problem = fields.Nested(ItemProblemSchema, metadata=ITEM_PROBLEM_DOC)
+    value = fields.Float(metadata={"description": "E[Z], Z the present value."})
+    second_moment = fields.Float(metadata={
         "description": "E[Z^2]: the benefit squared at double the force of interest; the "
                        "variance of the present value is second_moment - value^2."})
-    method = fields.Nested(MethodSchema, required=True)
+    method = fields.Nested(MethodSchema)
+
+
+COUNTS_DOC = {"valued": {"description": "Items valued."},
+              "refused": {"description": "Items refused (on_error 'per-item'; else 0)."}}
 
 
 class InsuranceResponseSchema(Schema):
     results = fields.List(fields.Nested(InsuranceResultSchema), required=True)
+    valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
+    refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
     warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
 
 
 class FactorResponseSchema(Schema):
     results = fields.List(fields.Nested(FactorResultSchema), required=True)
+    valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
+    refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
     warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
 

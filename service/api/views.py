@@ -4,17 +4,21 @@ import csv
 import io
 import json
 import time
+from dataclasses import dataclass
 
 import numpy as np
 from flask import Blueprint, Response, current_app, g, jsonify, request
+from marshmallow import Schema, ValidationError, fields, validate
 
 from service.api.audit import audit_block, interest_block, use_basis
-from service.api.body import json_body, load
+from service.api.body import flatten_errors, json_body, load
 from service.api.metrics import FACTORS
 from service.api.problems import ProblemError
 from service.api.schemas import (
     FactorRequestSchema,
+    InsuranceItemSchema,
     InsuranceRequestSchema,
+    ItemSchema,
     LifeTableQuerySchema,
     ScheduleRequestSchema,
 )
@@ -38,6 +42,8 @@ bp = Blueprint("api", __name__)
 
 _factor_request = FactorRequestSchema()
 _insurance_request = InsuranceRequestSchema()
+_item_schema = ItemSchema()
+_insurance_item_schema = InsuranceItemSchema()
 _schedule_request = ScheduleRequestSchema()
 _life_table_query = LifeTableQuerySchema()
 
@@ -61,11 +67,11 @@ def _finite(values, path: str):
                            errors={path: ["The value is not finite."]})
 
 
-def _finite_items(values):
+def _finite_items(values, places):
     """Refuse a batch whose value for some item is not finite, naming the first such item."""
     bad = np.flatnonzero(~np.isfinite(values))
     if bad.size:
-        _finite(values, f"items.{int(bad[0])}")
+        _finite(values, f"items.{places[int(bad[0])]}")
 
 
 def _summary(basis, defaults) -> dict:
@@ -177,29 +183,28 @@ def _wants_csv() -> bool:
     return best == "text/csv"
 
 
-def _engine_items(basis, items, path_of, build=None):
-    """Turn loaded items into engine items; ``path_of(n)`` names item n in error paths.
+def _engine_items(basis, items, build=None):
+    """Turn loaded items into engine items; return them and ``{n: {path: messages}}`` for the
+    items a basis cannot value as given (paths within the item).
 
     ``build(item, lives)`` makes the engine item from a loaded item and its engine lives
     (default: an annuity item).
     """
     out = []
-    missing = {}
+    refused: dict[int, dict[str, list[str]]] = {}
     for n, item in enumerate(items):
         lives = []
         for k, life in enumerate(item["lives"]):
             index = basis.table_index(life["sex"])
             if index is None:
-                missing[f"{path_of(n)}.lives.{k}.sex"] = [
+                refused.setdefault(n, {})[f"lives.{k}.sex"] = [
                     f"This basis is sex-distinct: give one of {', '.join(basis.sexes)}."]
                 index = 0
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
                               age_adjustment=life["age_adjustment"],
                               mortality_multiplier=life["mortality_multiplier"]))
         out.append((build or _annuity_item)(item, tuple(lives)))
-    if missing:
-        raise ProblemError(422, "The request has invalid fields.", errors=missing)
-    return out
+    return out, refused
 
 
 def _annuity_item(item, lives) -> Item:
@@ -237,9 +242,57 @@ def _item_problem(exc: ItemError, prefix: str) -> ProblemError:
     return ProblemError(422, "Some items are impossible under this basis.", errors=errors)
 
 
-def _batch(schema, build=None):
-    """Read a batch request: (data, basis, valuation, engine items, warnings, work limit,
-    deadline)."""
+@dataclass
+class _Request:
+    """A batch request read and checked: the valid items (``items``, loaded, and ``engine``)
+    with their places in the request, and the refused ones (on_error 'per-item')."""
+
+    data: dict
+    basis: object
+    valuation: Valuation
+    count: int
+    places: list[int]
+    items: list[dict]
+    engine: list
+    refused: dict[int, dict[str, list[str]]]
+    raw_ids: dict[int, str]
+    warnings: list[dict]
+    limit: int
+    deadline: float
+
+    def drop(self, errors: dict[str, list[str]]) -> None:
+        """Refuse the items named by engine error paths (``"3.lives.0.age"``, 3 counting the
+        valid items), keeping the others."""
+        bad: dict[int, dict[str, list[str]]] = {}
+        for path, messages in errors.items():
+            n, _, rest = path.partition(".")
+            bad.setdefault(int(n), {})[rest] = messages
+        for n, item_errors in bad.items():
+            self.refused[self.places[n]] = item_errors
+        keep = [n for n in range(len(self.places)) if n not in bad]
+        self.places = [self.places[n] for n in keep]
+        self.items = [self.items[n] for n in keep]
+        self.engine = [self.engine[n] for n in keep]
+
+    def answer(self, results: list[dict], wants_csv: bool):
+        """Results in request order (refusals in their places), as JSON or CSV."""
+        placed: list[dict | None] = [None] * self.count
+        for place, result in zip(self.places, results, strict=True):
+            placed[place] = result
+        for place, errors in self.refused.items():
+            refusal = {"problem": {"title": "This item was refused.", "errors": errors}}
+            placed[place] = ({"id": self.raw_ids[place]} | refusal if place in self.raw_ids
+                             else refusal)
+        if wants_csv:
+            return _results_csv(placed, self.warnings)
+        return jsonify({"results": placed, "valued": len(results),
+                        "refused": len(self.refused), "warnings": self.warnings,
+                        "audit": audit_block()})
+
+
+def _batch(schema, item_schema, build=None) -> _Request:
+    """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
+    others, else refuse the whole batch at the first problem found (all of them listed)."""
     body = json_body()
     limit = current_app.config["MAX_ITEMS"]
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
@@ -247,24 +300,84 @@ def _batch(schema, build=None):
     if count > limit:
         raise ProblemError(413, f"A request may hold at most {limit} items; this one has "
                                 f"{count}.", errors={"items": [f"At most {limit} items."]})
-    data = load(schema, body)
-    g.item_count = len(data["items"])
+    per_item = isinstance(body, dict) and body.get("on_error") == "per-item"
+    refused: dict[int, dict[str, list[str]]] = {}
+    if per_item:
+        data = load(_top_schema(schema), body)
+        raw = data["items"]
+        loaded, places = [], []
+        for n, item in enumerate(raw):
+            try:
+                loaded.append(item_schema.load(item))
+                places.append(n)
+            except ValidationError as exc:
+                refused[n] = flatten_errors(exc.messages)
+        data["items"] = loaded
+    else:
+        data = load(schema, body)
+        raw = data["items"]
+        places = list(range(len(raw)))
+    g.item_count = len(raw)
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
-    items = _engine_items(basis, data["items"], lambda n: f"items.{n}", build)
-    warnings = request_warnings(basis, data, [(f"items.{n}", item)
-                                              for n, item in enumerate(data["items"])])
-    deadline = time.monotonic() + current_app.config["DEADLINE_SECONDS"]
-    return (data, basis, valuation, items, warnings,
-            current_app.config["MAX_EVALUATION_POINTS"], deadline)
+    engine, unknown = _engine_items(basis, data["items"], build)
+    if unknown and not per_item:
+        raise ProblemError(422, "The request has invalid fields.", errors={
+            f"items.{places[n]}.{path}": msgs for n, item in unknown.items()
+            for path, msgs in item.items()})
+    raw_ids = {n: item["id"] for n, item in enumerate(raw)
+               if isinstance(item, dict) and isinstance(item.get("id"), str)}
+    req = _Request(data, basis, valuation, len(raw), places, data["items"], engine, refused,
+                   raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
+                   time.monotonic() + current_app.config["DEADLINE_SECONDS"])
+    if unknown:
+        req.drop({f"{n}.{path}": msgs for n, item in unknown.items()
+                  for path, msgs in item.items()})
+    req.warnings = request_warnings(basis, data, [(f"items.{place}", item) for place, item
+                                                  in zip(req.places, req.items, strict=True)])
+    return req
+
+
+_TOP_SCHEMAS: dict[type, Schema] = {}
+
+
+def _top_schema(schema: Schema) -> Schema:
+    """The request schema with its items left unchecked (each is loaded on its own)."""
+    cls = type(schema)
+    if cls not in _TOP_SCHEMAS:
+        _TOP_SCHEMAS[cls] = cls.from_dict({"items": fields.List(
+            fields.Raw(), required=True, validate=validate.Length(min=1))})()
+    return _TOP_SCHEMAS[cls]
+
+
+def _valued(req: _Request, value, per_item: bool):
+    """Run ``value(engine items)``; with on_error 'per-item' set aside the items the engine
+    finds impossible and value the rest."""
+    try:
+        return value(req.engine)
+    except ItemError as exc:
+        if not per_item:
+            raise _item_problem(_placed(exc, req), "items.") from None
+        req.drop(exc.errors)
+    if not req.engine:
+        return None
+    return value(req.engine)
+
+
+def _placed(exc: ItemError, req: _Request) -> ItemError:
+    """The engine's paths renumbered by the items' places in the request."""
+    return ItemError({f"{req.places[int(path.partition('.')[0])]}.{path.partition('.')[2]}":
+                      msgs for path, msgs in exc.errors.items()})
 
 
 @bp.post("/v1/annuity-factors")
 def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
-    data, basis, valuation, items, warnings, limit, deadline = _batch(_factor_request)
-    asked = [item["measures"] for item in data["items"]]
+    req = _batch(_factor_request, _item_schema)
+    per_item = req.data["on_error"] == "per-item"
+    valuation = req.valuation
+    asked = [item["measures"] for item in req.items]
     key_rates = sum("key_rate_durations" in measures for measures in asked)
     entries, cap = key_rates * valuation.curve.size, current_app.config["MAX_KEY_RATE_ENTRIES"]
     if entries > cap:
@@ -272,26 +385,30 @@ def annuity_factors():
                                 f"{valuation.curve.size} factors: {entries} entries, more "
                                 f"than the {cap} one answer may hold. Split the batch.",
                            title="Batch too large to value")
+
+    def value(engine):
+        asked_now = [item["measures"] for item in req.items]
+        return value_annuities(req.basis.tables, engine, valuation, max_work=req.limit,
+                               deadline=req.deadline, measure=[bool(m) for m in asked_now],
+                               key_rates=key_rates > 0)
+
     try:
-        valued = value_annuities(basis.tables, items, valuation, max_work=limit,
-                                 deadline=deadline, measure=[bool(m) for m in asked],
-                                 key_rates=key_rates > 0)
-    except ItemError as exc:
-        raise _item_problem(exc, "items.") from None
+        valued = _valued(req, value, per_item) if req.engine else None
     except WorkLimitError as exc:
         raise _too_much(exc, "Valuing this batch") from None
-    _finite_items(valued.value)
-    FACTORS.labels(basis.ref, "factor").inc(len(items))
+    if valued is None:
+        return req.answer([], wants_csv)
+    _finite_items(valued.value, req.places)
+    FACTORS.labels(req.basis.ref, "factor").inc(len(req.engine))
     results = [_with_id(item, {"value": v, "method": valued.methods[code]})
-               for item, v, code in zip(data["items"], valued.value.tolist(),
+               for item, v, code in zip(req.items, valued.value.tolist(),
                                         valued.method_code.tolist(), strict=True)]
     if valued.measures is not None:
-        _add_measures(results, asked, valued.measures, valuation.curve.factors())
-    _add_spread(results, basis, items, [item.get("spread") for item in data["items"]],
-                valuation, limit, deadline)
-    if wants_csv:
-        return _results_csv(results, warnings)
-    return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+        _add_measures(results, [item["measures"] for item in req.items], valued.measures,
+                      valuation.curve.factors())
+    _add_spread(results, req.basis, req.engine, [item.get("spread") for item in req.items],
+                valuation, req.limit, req.deadline)
+    return req.answer(results, wants_csv)
 
 
 def _add_spread(results, basis, items, asked, valuation, limit, deadline):
@@ -316,25 +433,27 @@ def _add_spread(results, basis, items, asked, valuation, limit, deadline):
 def insurance_factors():
     """One or many insurance factors, with their second moments, under one basis."""
     wants_csv = _wants_csv()
-    data, basis, valuation, items, warnings, limit, deadline = _batch(_insurance_request,
-                                                                      _assurance)
+    req = _batch(_insurance_request, _insurance_item_schema, _assurance)
+    per_item = req.data["on_error"] == "per-item"
+
+    def value(engine):
+        return insurance_values(req.basis.tables, engine, req.valuation, max_work=req.limit,
+                                deadline=req.deadline)
+
     try:
-        valued = insurance_values(basis.tables, items, valuation, max_work=limit,
-                                  deadline=deadline)
-    except ItemError as exc:
-        raise _item_problem(exc, "items.") from None
+        valued = _valued(req, value, per_item) if req.engine else None
     except WorkLimitError as exc:
         raise _too_much(exc, "Valuing this batch") from None
-    _finite_items(valued.value)
-    _finite_items(valued.second_moment)
-    FACTORS.labels(basis.ref, "insurance").inc(len(items))
+    if valued is None:
+        return req.answer([], wants_csv)
+    _finite_items(valued.value, req.places)
+    _finite_items(valued.second_moment, req.places)
+    FACTORS.labels(req.basis.ref, "insurance").inc(len(req.engine))
     results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]})
-               for item, v, v2, code in zip(data["items"], valued.value.tolist(),
+               for item, v, v2, code in zip(req.items, valued.value.tolist(),
                                             valued.second_moment.tolist(),
                                             valued.method_code.tolist(), strict=True)]
-    if wants_csv:
-        return _results_csv(results, warnings)
-    return jsonify({"results": results, "warnings": warnings, "audit": audit_block()})
+    return req.answer(results, wants_csv)
 
 
 _SCALARS = ("second_moment", "duration", "convexity", "standard_deviation")
@@ -353,15 +472,19 @@ def _results_csv(results: list[dict], warnings) -> Response:
     and the method; the audit block travels in headers. Cells not asked for are empty."""
     rows = []
     for r in results:
-        row = {"id": r.get("id"), "value": r["value"]}
+        row = {"id": r.get("id"), "value": r.get("value")}
         row |= {k: r[k] for k in _SCALARS if k in r}
         row |= {_key_rate_label(k): k["duration"] for k in r.get("key_rate_durations", ())}
         row |= {f"percentile_{p['percentile']:g}": p["value"] for p in r.get("percentiles", ())}
-        row |= {k: r["method"][k] for k in _METHOD_COLUMNS}
+        row |= {k: r["method"][k] for k in _METHOD_COLUMNS if "method" in r}
+        if "problem" in r:
+            row["problem"] = "; ".join(f"{path}: {' '.join(msgs)}"
+                                       for path, msgs in r["problem"]["errors"].items())
         rows.append(row)
     names = list(dict.fromkeys(k for row in rows for k in row))
-    # The method columns last, whatever the first row held.
-    names = [n for n in names if n not in _METHOD_COLUMNS] + list(_METHOD_COLUMNS)
+    # The method columns (and any problem) last, whatever the first row held.
+    tail = [*_METHOD_COLUMNS, *(["problem"] if "problem" in names else [])]
+    names = [n for n in names if n not in tail] + tail
     lists = [["" if row.get(n) is None else row[n] for row in rows] for n in names]
     return _csv_response(names, lists, {}, warnings)
 
@@ -406,7 +529,10 @@ def cash_flow_schedules():
     g.item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
-    (item,) = _engine_items(basis, [data["item"]], lambda n: "item")
+    (item,), unknown = _engine_items(basis, [data["item"]])
+    if unknown:
+        raise ProblemError(422, "The request has invalid fields.", errors={
+            f"item.{path}": msgs for path, msgs in unknown[0].items()})
     warnings = request_warnings(basis, data, [("item", data["item"])])
     try:
         sched = cash_flow_schedule(basis.tables, item, valuation,

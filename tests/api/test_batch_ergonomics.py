@@ -50,3 +50,64 @@ def test_an_accept_the_service_cannot_produce_is_406(client):
     response = client.post(URL, json={"basis": "standard-ultimate", "items": [
         {"lives": [{"age": 65}], "timing": "advance"}]}, headers={"Accept": "application/xml"})
     assert_problem(response, 406)
+
+
+class TestPerItemErrors:
+    GOOD = {"id": "ok", "lives": [{"age": 65}], "timing": "advance"}
+
+    def post(self, client, items, url=URL, **extra):
+        response = client.post(url, json={"basis": "fernhollow-annuitants",
+                                          "on_error": "per-item", "items": items} | extra)
+        assert response.status_code == 200, response.get_data(as_text=True)
+        return response.get_json()
+
+    def test_valid_items_are_valued_and_invalid_ones_refused_in_place(self, client):
+        items = [
+            self.GOOD | {"lives": [{"age": 65, "sex": "female"}]},
+            {"id": "bad-schema", "lives": [{"age": -3, "sex": "female"}], "timing": "daily",
+             "frequency": 0},
+            {"id": "no-sex", "lives": [{"age": 70}], "timing": "advance"},
+            {"id": "too-old", "lives": [{"age": 125, "sex": "male"}], "timing": "advance"},
+            self.GOOD | {"id": "ok-2", "lives": [{"age": 60, "sex": "male"}]},
+        ]
+        body = self.post(client, items)
+        results = body["results"]
+        assert (body["valued"], body["refused"]) == (2, 3)
+        assert [r["id"] for r in results] == ["ok", "bad-schema", "no-sex", "too-old", "ok-2"]
+        assert "value" in results[0] and "value" in results[4]
+        # Every problem of a refused item at once: schema checks together.
+        assert set(results[1]["problem"]["errors"]) == {"lives.0.age", "timing", "frequency"}
+        assert set(results[2]["problem"]["errors"]) == {"lives.0.sex"}
+        assert set(results[3]["problem"]["errors"]) == {"lives.0.age"}
+        # The valued items are worth what they are worth alone.
+        alone = client.post(URL, json={"basis": "fernhollow-annuitants",
+                                       "items": [items[4]]}).get_json()
+        assert results[4]["value"] == alone["results"][0]["value"]
+
+    def test_reject_is_the_default(self, client):
+        response = client.post(URL, json={"basis": "fernhollow-annuitants", "items": [
+            self.GOOD | {"lives": [{"age": 65, "sex": "female"}]},
+            {"lives": [{"age": 125, "sex": "male"}], "timing": "advance"}]})
+        assert_problem(response, 422, "items.1.lives.0.age")
+
+    def test_every_item_refused(self, client):
+        body = self.post(client, [{"id": "x", "lives": [{"age": 65}], "timing": "advance"}])
+        assert (body["valued"], body["refused"]) == (0, 1)
+        assert body["results"][0]["id"] == "x" and "problem" in body["results"][0]
+
+    def test_csv_names_the_problem(self, client):
+        response = client.post(URL, headers={"Accept": "text/csv"}, json={
+            "basis": "fernhollow-annuitants", "on_error": "per-item", "items": [
+                self.GOOD | {"lives": [{"age": 65, "sex": "female"}]},
+                {"id": "no-sex", "lives": [{"age": 70}], "timing": "advance"}]})
+        rows = list(csv.DictReader(io.StringIO(response.get_data(as_text=True))))
+        assert rows[0]["problem"] == "" and rows[0]["value"]
+        assert rows[1]["value"] == "" and rows[1]["problem"].startswith("lives.0.sex:")
+
+    def test_insurance_too(self, client):
+        body = self.post(client, [
+            {"lives": [{"age": 65, "sex": "male"}], "cover": "whole-life"},
+            {"id": "no-term", "lives": [{"age": 65, "sex": "male"}], "cover": "term"}],
+            url="/v1/insurance-factors")
+        assert (body["valued"], body["refused"]) == (1, 1)
+        assert "term" in body["results"][1]["problem"]["errors"]
