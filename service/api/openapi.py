@@ -40,6 +40,19 @@ _ERRORS = {
 }
 
 
+CSV_DOC = (
+    "JSON, or CSV (Content-Type: text/csv) with one item per row and the basis and options "
+    "in the query string. CSV columns: id; the first life's age, sex, duration, "
+    "age_adjustment, mortality_multiplier; a second life's age_2, sex_2, duration_2, "
+    "age_adjustment_2, mortality_multiplier_2; the item's own fields by their JSON names "
+    "(timing, frequency, term, term_months, deferral, guarantee, escalation, survivorship as "
+    "a shortcut, start_requires; for insurance cover, benefit_timing, on); both, first_only, "
+    "second_only for survivorship amounts. An empty cell is an absent field. Errors name the "
+    "row (the file's line, the header being line 1) and column: rows.3.age.")
+CSV_EXAMPLE = ("id,age,sex,timing,frequency,guarantee\n"
+               "FM-20417,67,female,advance,12,5\nFM-20418,71.5,male,arrears,4,\n")
+
+
 def _problem_responses(*codes):
     return {code: {"description": _ERRORS[code],
                    "content": {"application/problem+json": {
@@ -136,11 +149,22 @@ def build_spec(max_items: int, version: str = "") -> dict:
                                       "block then travels in X- headers).",
                          {"text/csv": {"schema": {"type": "string"}}})
         | _problem_responses("401", "404", "406", "422")}})
+    csv_body = {"text/csv": {"schema": {"type": "string"}, "example": CSV_EXAMPLE}}
+    csv_params = [
+        {"name": "basis", "in": "query", "schema": {"type": "string"},
+         "description": "With a CSV body: the basis ref (ID or ID@VERSION)."},
+        {"name": "interest_rate", "in": "query", "schema": {"type": "number"},
+         "description": "With a CSV body: a flat rate replacing the basis' interest."},
+        {"name": "on_error", "in": "query", "schema": {"type": "string",
+                                                       "enum": ["reject", "per-item"]},
+         "description": "With a CSV body: as the JSON field."}]
     spec.path("/v1/annuity-factors", operations={"post": {
         "operationId": "annuityFactors", "security": _AUTH,
         "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
-        "requestBody": {"required": True, "content": {"application/json": {
-            "schema": {"$ref": "#/components/schemas/FactorRequest"}}}},
+        "parameters": csv_params,
+        "requestBody": {"required": True, "description": CSV_DOC, "content": {
+            "application/json": {"schema": {"$ref": "#/components/schemas/FactorRequest"}},
+            **csv_body}},
         "responses": _ok("FactorResponse", "results[i] answers items[i]. With Accept: text/csv "
                                            "one row per item (id, value, the measures and "
                                            "spread asked for, the method), the audit block in "
@@ -151,8 +175,10 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "operationId": "insuranceFactors", "security": _AUTH,
         "summary": f"One or many insurance factors under one basis (at most {max_items} "
                    "items), each with its second moment.",
-        "requestBody": {"required": True, "content": {"application/json": {
-            "schema": {"$ref": "#/components/schemas/InsuranceRequest"}}}},
+        "parameters": csv_params,
+        "requestBody": {"required": True, "description": CSV_DOC, "content": {
+            "application/json": {"schema": {"$ref": "#/components/schemas/InsuranceRequest"}},
+            **csv_body}},
         "responses": _ok("InsuranceResponse", "results[i] answers items[i]; as CSV (one row "
                                               "per item) with Accept: text/csv.",
                          {"text/csv": {"schema": {"type": "string"}}})

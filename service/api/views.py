@@ -12,6 +12,7 @@ from marshmallow import Schema, ValidationError, fields, validate
 
 from service.api.audit import audit_block, interest_block, use_basis
 from service.api.body import flatten_errors, json_body, load
+from service.api.csv_input import column_of, csv_batch, row_path
 from service.api.metrics import FACTORS
 from service.api.problems import ProblemError
 from service.api.schemas import (
@@ -259,6 +260,7 @@ class _Request:
     warnings: list[dict]
     limit: int
     deadline: float
+    from_csv: bool = False
 
     def drop(self, errors: dict[str, list[str]]) -> None:
         """Refuse the items named by engine error paths (``"3.lives.0.age"``, 3 counting the
@@ -280,6 +282,8 @@ class _Request:
         for place, result in zip(self.places, results, strict=True):
             placed[place] = result
         for place, errors in self.refused.items():
+            if self.from_csv:  # name the row's columns
+                errors = {column_of(path): msgs for path, msgs in errors.items()}
             refusal = {"problem": {"title": "This item was refused.", "errors": errors}}
             placed[place] = ({"id": self.raw_ids[place]} | refusal if place in self.raw_ids
                              else refusal)
@@ -293,8 +297,18 @@ class _Request:
 def _batch(schema, item_schema, build=None) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
     others, else refuse the whole batch at the first problem found (all of them listed)."""
-    body = json_body()
     limit = current_app.config["MAX_ITEMS"]
+    from_csv = request.mimetype == "text/csv"
+    try:
+        return _read_batch(schema, item_schema, build, limit, from_csv)
+    except ProblemError as exc:
+        if from_csv and exc.errors:
+            exc.errors = {row_path(path): msgs for path, msgs in exc.errors.items()}
+        raise
+
+
+def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Request":
+    body = csv_batch(limit)[0] if from_csv else json_body()
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
         body.get("items"), list) else 0
     if count > limit:
@@ -329,7 +343,7 @@ def _batch(schema, item_schema, build=None) -> _Request:
                if isinstance(item, dict) and isinstance(item.get("id"), str)}
     req = _Request(data, basis, valuation, len(raw), places, data["items"], engine, refused,
                    raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
-                   time.monotonic() + current_app.config["DEADLINE_SECONDS"])
+                   time.monotonic() + current_app.config["DEADLINE_SECONDS"], from_csv)
     if unknown:
         req.drop({f"{n}.{path}": msgs for n, item in unknown.items()
                   for path, msgs in item.items()})
@@ -357,7 +371,10 @@ def _valued(req: _Request, value, per_item: bool):
         return value(req.engine)
     except ItemError as exc:
         if not per_item:
-            raise _item_problem(_placed(exc, req), "items.") from None
+            problem = _item_problem(_placed(exc, req), "items.")
+            if req.from_csv:
+                problem.errors = {row_path(path): msgs for path, msgs in problem.errors.items()}
+            raise problem from None
         req.drop(exc.errors)
     if not req.engine:
         return None
