@@ -12,10 +12,12 @@ from bench.common import Figure, Section, median, side_by_side, table, verdict
 from service import create_app
 from service.engine.annuity import Item, Life, Payments, Valuation, value_annuities
 from service.engine.insurance import Assurance, Cover, insurance_values
+from service.engine.projection import project
 from service.engine.spread import annuity_spread
 
 INSURANCE_TARGET = 1.5
 SPREAD_TARGET = 3.0
+PROJECTION_TARGET = 3.0  # issue 12: a 10,000-item projection against the same items' factors
 #: (label, annuity payments, insurance benefit timing and periods a year)
 PAIRS = (("end of year / annual in advance", Payments("advance", 1), "end-of-year", 1),
          ("end of month / monthly in advance", Payments("advance", 12), "end-of-period", 12),
@@ -38,6 +40,9 @@ def run(items_count: int = 10_000, repeats: int = 5) -> Section:
     levels = [[5, 25, 50, 75, 95]] * len(monthly)
     tasks[("spread", "annuity")] = lambda: value_annuities(tables, monthly, valuation)
     tasks[("spread", "spread")] = lambda: annuity_spread(tables, monthly, valuation, levels)
+    amounts = np.full(len(monthly), 12_000.0)
+    tasks[("projection", "projection")] = lambda: project(tables, monthly, amounts, valuation,
+                                                          "monthly")
     seconds = side_by_side(tasks, repeats)
 
     def paired(top, bottom):
@@ -60,9 +65,19 @@ def run(items_count: int = 10_000, repeats: int = 5) -> Section:
     figures.append(f)
     rows.append(["spread, monthly in advance", f"{f.floor:.3f}", f"{f.value:.3f}",
                  f"{f.ratio:.2f}", f"{SPREAD_TARGET:g}x: {verdict(f.met)}"])
+    f = Figure("risk: portfolio projection by month / annuity factors, monthly in advance",
+               median(seconds[("projection", "projection")]), "s",
+               floor=median(seconds[("spread", "annuity")]),
+               ratio=paired(("projection", "projection"), ("spread", "annuity")),
+               target=PROJECTION_TARGET)
+    figures.append(f)
+    rows.append(["portfolio projection by month (issue 12)", f"{f.floor:.3f}", f"{f.value:.3f}",
+                 f"{f.ratio:.2f}", f"{PROJECTION_TARGET:g}x: {verdict(f.met)}"])
     lines = [f"{items_count:,} single lives aged 50 to 80 under `standard-ultimate` (UDD) at "
              f"4%; {repeats} rounds, each timing every configuration once in turn. Insurance "
              "factors include their second moments.", "",
-             *table(["pair", "annuity (s)", "insurance or spread (s)", "ratio", "target"],
+             *table(["pair", "annuity (s)", "insurance, spread or projection (s)", "ratio",
+                     "target"],
                     rows), ""]
-    return Section("Insurance factors and spread (issue 13)", lines, figures)
+    return Section("Insurance factors, spread (issue 13) and projections (issue 12)", lines,
+                   figures)

@@ -28,9 +28,9 @@ AMOUNTS = ("both", "first_only", "second_only")
 #: Columns read as numbers (whole numbers where the field is an integer).
 _INTEGERS = {"frequency", "duration", "term_months", "deferral_months", "guarantee_months"}
 _NUMBERS = {"age", "age_adjustment", "mortality_multiplier", "term", "deferral", "guarantee",
-            "escalation", *AMOUNTS}
+            "escalation", "amount", *AMOUNTS}
 #: Query parameters that are request options, and how to read them.
-OPTIONS = {"basis": str, "interest_rate": float, "on_error": str}
+OPTIONS = {"basis": str, "interest_rate": float, "on_error": str, "buckets": str}
 
 
 def _cell(column: str, text: str):

@@ -113,7 +113,8 @@ def build_spec(max_items: int, version: str = "") -> dict:
         ("InsuranceItem", s.InsuranceItemSchema), ("InsuranceRequest", s.InsuranceRequestSchema),
         ("InsuranceResult", s.InsuranceResultSchema),
         ("InsuranceResponse", s.InsuranceResponseSchema), ("KeyRate", s.KeyRateSchema),
-        ("Warning", s.WarningSchema),
+        ("Warning", s.WarningSchema), ("ProjectionRequest", s.ProjectionRequestSchema),
+        ("ProjectionResponse", s.ProjectionResponseSchema),
     ]:
         spec.components.schema(name, schema=schema)
     spec.path("/v1/bases", operations={"get": {
@@ -181,6 +182,19 @@ def build_spec(max_items: int, version: str = "") -> dict:
             **csv_body}},
         "responses": _ok("InsuranceResponse", "results[i] answers items[i]; as CSV (one row "
                                               "per item) with Accept: text/csv.",
+                         {"text/csv": {"schema": {"type": "string"}}})
+        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
+    spec.path("/v1/cash-flow-projections", operations={"post": {
+        "operationId": "cashFlowProjections", "security": _AUTH,
+        "summary": f"The expected payments of a portfolio of annuities (at most {max_items} "
+                   "items, each with its annual amount), aggregated by month, year or payment "
+                   "time, with their present values; as CSV with Accept: text/csv.",
+        "parameters": csv_params,
+        "requestBody": {"required": True, "description": CSV_DOC + " A CSV projection adds "
+                                                                   "an amount column.",
+                        "content": {"application/json": {"schema": {
+                            "$ref": "#/components/schemas/ProjectionRequest"}}, **csv_body}},
+        "responses": _ok("ProjectionResponse", "One row per period with a payment.",
                          {"text/csv": {"schema": {"type": "string"}}})
         | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
     spec.path("/v1/cash-flow-schedules", operations={"post": {

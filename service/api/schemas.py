@@ -392,6 +392,20 @@ class InsuranceItemSchema(_ItemBase):
         return _months_to_years(data, ("term", "deferral"))
 
 
+class ProjectionItemSchema(ItemSchema):
+    amount = StrictFloat(required=True, validate=validate.Range(0, 1e12), metadata={
+        "description": "The item's annual amount: every payment is scaled by it."})
+
+
+class ProjectionRequestSchema(_Batch):
+    buckets = fields.String(load_default="monthly",
+                            validate=validate.OneOf(["monthly", "annual", "exact"]), metadata={
+        "description": "Periods of the answer: months or years from the valuation date, or "
+                       "every distinct payment time (discrete payments only)."})
+    items = fields.List(fields.Nested(ProjectionItemSchema), required=True,
+                        validate=validate.Length(min=1))
+
+
 class InsuranceRequestSchema(_Batch):
     items = fields.List(fields.Nested(InsuranceItemSchema), required=True,
                         validate=validate.Length(min=1))
@@ -515,6 +529,37 @@ class InsuranceResponseSchema(Schema):
     results = fields.List(fields.Nested(InsuranceResultSchema), required=True)
     valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
     refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
+    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
+    audit = fields.Nested(AuditSchema, required=True)
+
+
+class ProjectionRowSchema(Schema):
+    start = fields.Float(required=True, metadata={"description": "Years from now."})
+    end = fields.Float(required=True, metadata={
+        "description": "End of the period (equal to start for a payment time)."})
+    payment = fields.Float(required=True, metadata={
+        "description": "Expected payments of the portfolio in the period (undiscounted)."})
+    present_value = fields.Float(required=True)
+
+
+class ProjectionTotalsSchema(Schema):
+    payment = fields.Float(required=True)
+    present_value = fields.Float(required=True, metadata={
+        "description": "The sum over the items of amount x factor (exact summation)."})
+
+
+class RefusedItemSchema(Schema):
+    item = fields.Integer(required=True, metadata={"description": "Its place in items."})
+    id = fields.String()
+    problem = fields.Nested(ItemProblemSchema, required=True)
+
+
+class ProjectionResponseSchema(Schema):
+    rows = fields.List(fields.Nested(ProjectionRowSchema), required=True)
+    totals = fields.Nested(ProjectionTotalsSchema, required=True)
+    valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
+    refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
+    refused_items = fields.List(fields.Nested(RefusedItemSchema), required=True)
     warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
 

@@ -21,6 +21,8 @@ from service.api.schemas import (
     InsuranceRequestSchema,
     ItemSchema,
     LifeTableQuerySchema,
+    ProjectionItemSchema,
+    ProjectionRequestSchema,
     ScheduleRequestSchema,
 )
 from service.api.warnings import request_warnings
@@ -37,6 +39,7 @@ from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.insurance import Assurance, Cover, insurance_values
 from service.engine.lifetable import life_table_columns
+from service.engine.projection import Projection, project
 from service.engine.spread import annuity_spread
 
 bp = Blueprint("api", __name__)
@@ -44,6 +47,8 @@ bp = Blueprint("api", __name__)
 _factor_request = FactorRequestSchema()
 _insurance_request = InsuranceRequestSchema()
 _item_schema = ItemSchema()
+_projection_request = ProjectionRequestSchema()
+_projection_item_schema = ProjectionItemSchema()
 _insurance_item_schema = InsuranceItemSchema()
 _schedule_request = ScheduleRequestSchema()
 _life_table_query = LifeTableQuerySchema()
@@ -471,6 +476,49 @@ def insurance_factors():
                                             valued.second_moment.tolist(),
                                             valued.method_code.tolist(), strict=True)]
     return req.answer(results, wants_csv)
+
+
+@bp.post("/v1/cash-flow-projections")
+def cash_flow_projections():
+    """The expected payments of a portfolio of annuities, aggregated by period."""
+    wants_csv = _wants_csv()
+    req = _batch(_projection_request, _projection_item_schema)
+    per_item = req.data["on_error"] == "per-item"
+    buckets = req.data["buckets"]
+
+    def value(engine):
+        return project(req.basis.tables, engine, [item["amount"] for item in req.items],
+                       req.valuation, buckets, max_work=req.limit, deadline=req.deadline)
+
+    try:
+        projected = _valued(req, value, per_item) if req.engine else None
+    except WorkLimitError as exc:
+        raise _too_much(exc, "Projecting this portfolio") from None
+    if projected is None:
+        projected = Projection(*(np.zeros(0),) * 4)
+    columns = {"start": projected.start, "end": projected.end,
+               "payment": projected.expected, "present_value": projected.present_value}
+    for name, values in columns.items():
+        _finite(values, f"rows.{name}")
+    FACTORS.labels(req.basis.ref, "projection").inc(len(req.engine))
+    totals = {"payment": float(projected.expected.sum()),
+              "present_value": float(projected.present_value.sum())}
+    names = list(columns)
+    lists = [columns[n].tolist() for n in names]
+    if wants_csv:
+        return _csv_response(names, lists, {
+            "X-Total-Payment": repr(totals["payment"]),
+            "X-Total-Present-Value": repr(totals["present_value"]),
+            "X-Items-Valued": str(len(req.engine)), "X-Items-Refused": str(len(req.refused))},
+            req.warnings)
+    refused = [{"item": place, **({"id": req.raw_ids[place]} if place in req.raw_ids else {}),
+                "problem": {"title": "This item was refused.", "errors": errors}}
+               for place, errors in sorted(req.refused.items())]
+    return jsonify({"rows": [dict(zip(names, row, strict=True))
+                             for row in zip(*lists, strict=True)],
+                    "totals": totals, "valued": len(req.engine), "refused": len(refused),
+                    "refused_items": refused, "warnings": req.warnings,
+                    "audit": audit_block()})
 
 
 _SCALARS = ("second_moment", "duration", "convexity", "standard_deviation")

@@ -642,15 +642,20 @@ class _Cut:
     growth: np.ndarray  # (1 + r)^year
 
 
-def _cut(batch: _Batch, which: np.ndarray, curve: Curve) -> _Cut:
+def _cut(batch: _Batch, which: np.ndarray, curve: Curve, *, per_year: int = 1) -> _Cut:
     """Cut the windows of ``which`` at whole ages, window years, the guarantee's end and the
-    interest structure's nodes, so that nothing changes its formula within a segment."""
+    interest structure's nodes, so that nothing changes its formula within a segment
+    (``per_year``: also at every 1/per_year of a year from now, for buckets of time)."""
     u = batch.deferral[which]
     end = _window_end(batch, which)
     local = np.arange(which.size)
     span = np.maximum(np.ceil(end - u), 0).astype(np.int64)
     pieces = [_grid(local, u, np.zeros_like(span), span + 1),
               (local, u + batch.guarantee[which]), (local, end)]
+    if per_year > 1:
+        o, k = _expand(local, np.floor(u * per_year).astype(np.int64),
+                       np.ceil(end * per_year).astype(np.int64) + 1)
+        pieces.append((o, k / per_year))
     nodes = curve.nodes()
     if nodes.size:
         pieces.append((np.repeat(local, nodes.size), np.tile(nodes, local.size)))
