@@ -928,11 +928,12 @@ def _moments(batch: _Batch, which: np.ndarray, curve: Curve, key_rates: bool,
         total = total + curve.moments(own, pts.time, pts.present_value, size,
                                       key_rates=key_rates)
     cont = which[batch.continuous[which]]
-    # A rule has up to 12 points per segment: chunks of a twelfth of the usual work.
-    for part in _chunks(_work(batch, curve)[cont] * 12):
+    # A rule has about 8 points per segment: chunks of an eighth of the usual work. Order 8
+    # is exact to rounding once pieces are split by their variation (Curve.gauss_rule).
+    for part in _chunks(_work(batch, curve)[cont] * 8):
         _on_time(deadline)
         cut = _cut(batch, cont[part], curve)
-        rule = _cut_rule(batch, cut, curve)
+        rule = _cut_rule(batch, cut, curve, order=8)
         pv = rule.weight * cut.growth[rule.piece] * _weight_in(batch, cut, rule.piece,
                                                                rule.time)
         total = total + curve.moments(cut.own[rule.piece], rule.time, pv, size,

@@ -564,7 +564,12 @@ class Curve:
         value = np.bincount(owner, pv, minlength=size).astype(float)
         first = np.bincount(owner, pv * t, minlength=size).astype(float)
         second = np.bincount(owner, pv * t * t, minlength=size).astype(float)
-        key = self._key_sums(owner, t, pv, size).astype(float) if key_rates else None
+        if not key_rates:
+            key = None
+        elif self.kind == "flat":  # one factor, whose exposure is t: the first moment
+            key = first[:, None].copy()
+        else:
+            key = self._key_sums(owner, t, pv, size).astype(float)
         return Moments(value, first, second, key)
 
     # ---- continuous integration ------------------------------------------------------------
