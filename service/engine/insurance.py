@@ -138,14 +138,16 @@ def _death_continuous(batch, which, curves, deadline):
         _a._on_time(deadline)
         cut = _a._cut(batch, which[part], curves[0])
         a, b = cut.t1, cut.t1 + cut.length
-        wa = batch.life_weight(cut.own, a)
-        # Where the next segment of the same item starts at this one's end, W there is known.
-        joined = np.append((cut.owner[1:] == cut.owner[:-1]) & (a[1:] == b[:-1]), False)
-        wb = np.empty_like(wa)
-        wb[:-1] = wa[1:]
-        alone = np.flatnonzero(~joined)
-        wb[alone] = batch.life_weight(cut.own[alone], b[alone])
         density = _udd_density(batch, cut) if batch.lives.assumption == "udd" else None
+        wa = wb = None
+        if density is None or any(curve.curved for curve in curves):
+            wa = batch.life_weight(cut.own, a)
+            # Where the next segment of the same item starts at this one's end, W is known.
+            joined = np.append((cut.owner[1:] == cut.owner[:-1]) & (a[1:] == b[:-1]), False)
+            wb = np.empty_like(wa)
+            wb[:-1] = wa[1:]
+            alone = np.flatnonzero(~joined)
+            wb[alone] = batch.life_weight(cut.own[alone], b[alone])
         for value, curve, power in zip(values, curves, _POWERS, strict=True):
             pc = curve.pieces(a, cut.length)
             if density is not None and not curve.curved:
