@@ -14,7 +14,7 @@ from service.api.audit import audit_block, interest_block, use_basis
 from service.api.body import flatten_errors, json_body, load
 from service.api.csv_input import column_of, csv_batch, row_path
 from service.api.metrics import FACTORS
-from service.api.problems import ProblemError
+from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
     FactorRequestSchema,
     InsuranceItemSchema,
@@ -286,9 +286,14 @@ class _Request:
         placed: list[dict | None] = [None] * self.count
         for place, result in zip(self.places, results, strict=True):
             placed[place] = result
-        for place, errors in self.refused.items():
+        budget = MAX_ERROR_PATHS  # error paths listed over all the refused items
+        for place, errors in sorted(self.refused.items()):
             if self.from_csv:  # name the row's columns
                 errors = {column_of(path): msgs for path, msgs in errors.items()}
+            if len(errors) > budget:
+                errors = dict(list(errors.items())[:budget]) or {"item": [
+                    f"Not listed: the answer lists at most {MAX_ERROR_PATHS} error paths."]}
+            budget = max(budget - len(errors), 0)
             refusal = {"problem": {"title": "This item was refused.", "errors": errors}}
             placed[place] = ({"id": self.raw_ids[place]} | refusal if place in self.raw_ids
                              else refusal)

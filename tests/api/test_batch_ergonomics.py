@@ -111,3 +111,15 @@ class TestPerItemErrors:
             url="/v1/insurance-factors")
         assert (body["valued"], body["refused"]) == (1, 1)
         assert "term" in body["results"][1]["problem"]["errors"]
+
+
+def test_per_item_problems_are_capped(client):
+    bad = {"lives": [{"age": -1, "sex": "x", "duration": -2}], "timing": "daily",
+           "frequency": 0, "term": -1, "deferral": -1, "guarantee": -1, "escalation": 9}
+    body = client.post(URL, json={"basis": "standard-ultimate", "on_error": "per-item",
+                                  "items": [bad] * 50}).get_json()
+    assert body["refused"] == 50
+    listed = sum(len(r["problem"]["errors"]) for r in body["results"]
+                 if "Not listed" not in str(r["problem"]["errors"]))
+    assert listed <= 100
+    assert "Not listed" in str(body["results"][-1]["problem"]["errors"])
