@@ -31,7 +31,8 @@ _ERRORS = {
     "404": "No loaded basis answers to the reference.",
     "413": "Body or batch too large, or the batch needs more payment dates than one request "
            "may evaluate.",
-    "415": "The body is not application/json.",
+    "415": "The body is not application/json (nor text/csv, where a batch may be CSV), or "
+           "not UTF-8.",
     "406": "The Accept header allows neither application/json nor text/csv.",
     "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
     "503": "The valuation was abandoned at its deadline (busy service or heavy request); "
@@ -189,7 +190,10 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "summary": f"The expected payments of a portfolio of annuities (at most {max_items} "
                    "items, each with its annual amount), aggregated by month, year or payment "
                    "time, with their present values; as CSV with Accept: text/csv.",
-        "parameters": csv_params,
+        "parameters": [*csv_params, {
+            "name": "buckets", "in": "query",
+            "schema": {"type": "string", "enum": ["monthly", "annual", "exact"]},
+            "description": "With a CSV body: as the JSON field."}],
         "requestBody": {"required": True, "description": CSV_DOC + " A CSV projection adds "
                                                                    "an amount column.",
                         "content": {"application/json": {"schema": {
