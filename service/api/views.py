@@ -374,9 +374,18 @@ def _top_schema(schema: Schema) -> Schema:
     return _TOP_SCHEMAS[cls]
 
 
+def _value_batch(req: _Request, value, what: str = "Valuing this batch"):
+    """Run ``value(engine items)``; None when every item was refused. With on_error
+    'per-item' the items the engine finds impossible are set aside and the rest valued."""
+    if not req.engine:
+        return None
+    try:
+        return _valued(req, value, req.data["on_error"] == "per-item")
+    except WorkLimitError as exc:
+        raise _too_much(exc, what) from None
+
+
 def _valued(req: _Request, value, per_item: bool):
-    """Run ``value(engine items)``; with on_error 'per-item' set aside the items the engine
-    finds impossible and value the rest."""
     try:
         return value(req.engine)
     except ItemError as exc:
@@ -402,7 +411,6 @@ def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
     req = _batch(_factor_request, _item_schema)
-    per_item = req.data["on_error"] == "per-item"
     valuation = req.valuation
     asked = [item["measures"] for item in req.items]
     key_rates = sum("key_rate_durations" in measures for measures in asked)
@@ -419,10 +427,7 @@ def annuity_factors():
                                deadline=req.deadline, measure=[bool(m) for m in asked_now],
                                key_rates=key_rates > 0)
 
-    try:
-        valued = _valued(req, value, per_item) if req.engine else None
-    except WorkLimitError as exc:
-        raise _too_much(exc, "Valuing this batch") from None
+    valued = _value_batch(req, value)
     if valued is None:
         return req.answer([], wants_csv)
     _finite_items(valued.value, req.places)
@@ -461,16 +466,12 @@ def insurance_factors():
     """One or many insurance factors, with their second moments, under one basis."""
     wants_csv = _wants_csv()
     req = _batch(_insurance_request, _insurance_item_schema, _assurance)
-    per_item = req.data["on_error"] == "per-item"
 
     def value(engine):
         return insurance_values(req.basis.tables, engine, req.valuation, max_work=req.limit,
                                 deadline=req.deadline)
 
-    try:
-        valued = _valued(req, value, per_item) if req.engine else None
-    except WorkLimitError as exc:
-        raise _too_much(exc, "Valuing this batch") from None
+    valued = _value_batch(req, value)
     if valued is None:
         return req.answer([], wants_csv)
     _finite_items(valued.value, req.places)
@@ -488,17 +489,13 @@ def cash_flow_projections():
     """The expected payments of a portfolio of annuities, aggregated by period."""
     wants_csv = _wants_csv()
     req = _batch(_projection_request, _projection_item_schema)
-    per_item = req.data["on_error"] == "per-item"
     buckets = req.data["buckets"]
 
     def value(engine):
         return project(req.basis.tables, engine, [item["amount"] for item in req.items],
                        req.valuation, buckets, max_work=req.limit, deadline=req.deadline)
 
-    try:
-        projected = _valued(req, value, per_item) if req.engine else None
-    except WorkLimitError as exc:
-        raise _too_much(exc, "Projecting this portfolio") from None
+    projected = _value_batch(req, value, "Projecting this portfolio")
     if projected is None:
         projected = Projection(*(np.zeros(0),) * 4)
     columns = {"start": projected.start, "end": projected.end,
