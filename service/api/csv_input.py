@@ -7,8 +7,8 @@ checks, limits and errors apply; error paths name the CSV line and column
 
 Columns (all optional but ``age`` and, for annuities, ``timing``; an empty cell is an absent
 field): ``id``, the first life's ``age``, ``sex``, ``duration``, ``age_adjustment``,
-``mortality_multiplier``; a second life's ``age_2``, ``sex_2``, ``duration_2``,
-``age_adjustment_2``, ``mortality_multiplier_2``; then the item's own fields by their JSON
+``mortality_multiplier``, ``flat_extra``; a second life's the same with ``_2``
+(``age_2``, ``sex_2``, ...); then the item's own fields by their JSON
 names (``timing``, ``frequency``, ``term``, ``term_months``, ``deferral``, ``guarantee``,
 ``escalation``, ``survivorship`` as a shortcut name, ``start_requires``; for insurance
 ``cover``, ``benefit_timing``, ``on``), and ``both``, ``first_only``, ``second_only`` for
@@ -23,12 +23,13 @@ from flask import request
 from service.api.body import _read_body
 from service.api.problems import ProblemError
 
-LIFE_FIELDS = ("age", "sex", "duration", "age_adjustment", "mortality_multiplier")
+LIFE_FIELDS = ("age", "sex", "duration", "age_adjustment", "mortality_multiplier",
+               "flat_extra")
 AMOUNTS = ("both", "first_only", "second_only")
 #: Columns read as numbers (whole numbers where the field is an integer).
 _INTEGERS = {"frequency", "duration", "term_months", "deferral_months", "guarantee_months"}
-_NUMBERS = {"age", "age_adjustment", "mortality_multiplier", "term", "deferral", "guarantee",
-            "escalation", "amount", *AMOUNTS}
+_NUMBERS = {"age", "age_adjustment", "mortality_multiplier", "flat_extra", "term", "deferral",
+            "guarantee", "escalation", "amount", *AMOUNTS}
 #: Query parameters that are request options, and how to read them.
 OPTIONS = {"basis": str, "interest_rate": float, "on_error": str, "buckets": str}
 

@@ -109,6 +109,10 @@ class LifeSchema(_Strict):
                                            "multiplier (no one outlives the table), so 0 pays "
                                            "to the end of the table's last year. Above 10 a "
                                            "warning asks whether a percentage was meant.")})
+    flat_extra = StrictFloat(load_default=0.0, validate=validate.Range(0, 1), metadata={
+        "description": "Added to every q after the multiplier, then capped at 1: the usual "
+                       "flat extra of an impaired life (0.005 is 5 per mille). Above 0.1 a "
+                       "warning asks whether per mille was meant."})
 
 
 class SurvivorshipAmountsSchema(_Strict):

@@ -208,7 +208,8 @@ def _engine_items(basis, items, build=None):
                 index = 0
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
                               age_adjustment=life["age_adjustment"],
-                              mortality_multiplier=life["mortality_multiplier"]))
+                              mortality_multiplier=life["mortality_multiplier"],
+                              flat_extra=life["flat_extra"]))
         out.append((build or _annuity_item)(item, tuple(lives)))
     return out, refused
 

@@ -4,6 +4,8 @@
 MAX_WARNINGS = 100
 #: A rate outside this range looks like a percentage given as a number (4.5 for 4.5%).
 _PLAUSIBLE_RATE = (-0.05, 0.25)
+#: A flat extra above this looks like per mille given as a number (5 for 5 per mille).
+_PLAUSIBLE_EXTRA = 0.1
 #: A multiplier above this looks like a percentage (125 for 125%).
 _PLAUSIBLE_MULTIPLIER = 10.0
 
@@ -42,6 +44,11 @@ def request_warnings(basis, data: dict, items: list[tuple[str, dict]]) -> list[d
             if life["duration"] is not None and index is not None and not select:
                 found.append((f"{where}.duration", "Ignored: this basis has no select rates; "
                                                    "the life follows the ultimate rates."))
+            extra = life.get("flat_extra", 0.0)
+            if extra > _PLAUSIBLE_EXTRA:
+                found.append((f"{where}.flat_extra",
+                              f"{extra:g} is added to q at every age ({extra * 1000:g} per "
+                              "mille); 5 per mille is given as 0.005."))
             multiplier = life["mortality_multiplier"]
             if multiplier > _PLAUSIBLE_MULTIPLIER:
                 found.append((f"{where}.mortality_multiplier",

@@ -49,6 +49,7 @@ class Life:
     duration: int | None = None
     age_adjustment: float = 0.0
     mortality_multiplier: float = 1.0
+    flat_extra: float = 0.0  # added to every q after the multiplier (capped at 1)
 
 
 @dataclass(frozen=True)
@@ -229,6 +230,8 @@ def _check_item(item: Item) -> dict[str, list[str]]:
         m = life.mortality_multiplier
         if not (math.isfinite(m) and m >= 0):
             add(f"lives.{n}.mortality_multiplier", "must be a finite number, zero or more")
+        if not (math.isfinite(life.flat_extra) and 0 <= life.flat_extra <= 1):
+            add(f"lives.{n}.flat_extra", "must be a number from 0 to 1")
         if life.duration is not None and not (isinstance(life.duration, int)
                                               and life.duration >= 0):
             add(f"lives.{n}.duration", "must be a whole number of years, zero or more")
@@ -319,6 +322,7 @@ def _prepare(tables, items, valuation: Valuation) -> _Batch:
         [math.inf if life.duration is None else life.duration for _, _, life in life_rows],
         [life.mortality_multiplier for _, _, life in life_rows],
         valuation.fractional_age,
+        [life.flat_extra for _, _, life in life_rows],
     )
     if problems:
         raise ItemError({f"{life_rows[pos][0]}.lives.{life_rows[pos][1]}.{field}": [msg]

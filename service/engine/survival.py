@@ -132,7 +132,8 @@ class Lives:
         return self.cum[idx, np.clip(k, 0, self.q.shape[1])] / self.start[idx]
 
 
-def build_lives(tables, table_index, ages, durations, multipliers, assumption: str):
+def build_lives(tables, table_index, ages, durations, multipliers, assumption: str,
+                flat_extras=None):
     """Build :class:`Lives` and return ``(lives, problems)``.
 
     Parameters
@@ -142,6 +143,8 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     ages : float array, exact ages after any age adjustment
     durations : float array, whole years since selection; ``inf`` for ultimate
     multipliers : float array, factor applied to every q (result capped at 1)
+    flat_extras : float array, added to every q after the multiplier (result capped at 1);
+        default none
     assumption : one of ``ASSUMPTIONS``
 
     Returns
@@ -156,6 +159,8 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     ages = np.asarray(ages, dtype=float)
     durations = np.asarray(durations, dtype=float)
     multipliers = np.asarray(multipliers, dtype=float)
+    extras = (np.zeros(multipliers.shape) if flat_extras is None
+              else np.asarray(flat_extras, dtype=float))
     n = ages.size
     problems: dict[int, tuple[str, str]] = {}
     # An age within _SNAP of a whole age is that age (64.02 - 0.02 is 63.99999999999999).
@@ -183,9 +188,11 @@ def build_lives(tables, table_index, ages, durations, multipliers, assumption: s
     ages_of = anchor[:, None] + np.arange(-1, width)[None, :]
     law = np.array([t.law if t.law is not None else (np.nan,) * 3 for t in tables],
                    dtype=float).reshape(len(tables), 3)[table_index]
-    on_law = ((~np.isnan(law[:, :1])) & (multipliers[:, None] == 1.0) & ~selected
+    on_law = ((~np.isnan(law[:, :1])) & (multipliers[:, None] == 1.0)
+              & (extras[:, None] == 0.0) & ~selected
               & ~np.isnan(chain) & (ages_of < last[:, None]))
-    chain = np.where(ages_of >= last[:, None], 1.0, np.minimum(chain * multipliers[:, None], 1.0))
+    chain = np.where(ages_of >= last[:, None], 1.0,
+                     np.minimum(chain * multipliers[:, None] + extras[:, None], 1.0))
     q_prev = chain[:, 0]
     q = chain[:, 1:]
     p = 1.0 - q

@@ -183,3 +183,17 @@ def test_the_closing_year_stays_closed_under_a_zero_multiplier(client):
     value = factors(client, {"basis": "standard-ultimate", "items": [item]})["results"][0]
     certain = (1 - 1.05 ** -66) / (0.05 / 1.05)
     assert np.isclose(value["value"], certain, rtol=1e-12)
+
+
+def test_flat_extra_through_the_api(client):
+    rated = factors(client, {"basis": "standard-ultimate", "items": [
+        {"lives": [{"age": 65, "flat_extra": 0.005}], "timing": "advance"}]})
+    plain = factors(client, {"basis": "standard-ultimate", "items": [LIFE_65]})
+    assert rated["results"][0]["value"] < plain["results"][0]["value"]
+    assert rated["warnings"] == []
+    per_mille = factors(client, {"basis": "standard-ultimate", "items": [
+        {"lives": [{"age": 65, "flat_extra": 0.5}], "timing": "advance"}]})
+    assert [w["path"] for w in per_mille["warnings"]] == ["items.0.lives.0.flat_extra"]
+    assert_problem(client.post(FACTORS, json={"basis": "standard-ultimate", "items": [
+        {"lives": [{"age": 65, "flat_extra": 1.5}], "timing": "advance"}]}), 422,
+        "items.0.lives.0.flat_extra")
