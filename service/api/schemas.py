@@ -529,12 +529,17 @@ COUNTS_DOC = {"valued": {"description": "Items valued."},
               "refused": {"description": "Items refused (on_error 'per-item'; else 0)."}}
 
 
-class InsuranceResponseSchema(Schema):
-    results = fields.List(fields.Nested(InsuranceResultSchema), required=True)
+class _BatchResponse(Schema):
+    """What every batch answer holds besides its results."""
+
     valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
     refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
     warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
     audit = fields.Nested(AuditSchema, required=True)
+
+
+class InsuranceResponseSchema(_BatchResponse):
+    results = fields.List(fields.Nested(InsuranceResultSchema), required=True)
 
 
 class ProjectionRowSchema(Schema):
@@ -558,22 +563,14 @@ class RefusedItemSchema(Schema):
     problem = fields.Nested(ItemProblemSchema, required=True)
 
 
-class ProjectionResponseSchema(Schema):
+class ProjectionResponseSchema(_BatchResponse):
     rows = fields.List(fields.Nested(ProjectionRowSchema), required=True)
     totals = fields.Nested(ProjectionTotalsSchema, required=True)
-    valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
-    refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
     refused_items = fields.List(fields.Nested(RefusedItemSchema), required=True)
-    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
-    audit = fields.Nested(AuditSchema, required=True)
 
 
-class FactorResponseSchema(Schema):
+class FactorResponseSchema(_BatchResponse):
     results = fields.List(fields.Nested(FactorResultSchema), required=True)
-    valued = fields.Integer(required=True, metadata=COUNTS_DOC["valued"])
-    refused = fields.Integer(required=True, metadata=COUNTS_DOC["refused"])
-    warnings = fields.List(fields.Nested(WarningSchema), required=True, metadata=WARNINGS_DOC)
-    audit = fields.Nested(AuditSchema, required=True)
 
 
 class ScheduleRowSchema(Schema):

@@ -255,6 +255,33 @@ def _require(doc: dict, key: str, kind, name: str, section: str = ""):
     return value
 
 
+class UnreadableFile(Exception):
+    """A file that is not a readable regular file of at most MAX_FILE_BYTES; ``problem`` says
+    which, in words that follow "the file"."""
+
+    def __init__(self, problem: str, brief: str):
+        self.problem = problem
+        self.brief = brief
+        super().__init__(problem)
+
+
+def read_regular_file(path: Path) -> bytes:
+    """Read a regular file of at most MAX_FILE_BYTES, never more than that from the disk."""
+    try:
+        info = path.stat()
+        if not stat.S_ISREG(info.st_mode):
+            raise UnreadableFile("is not a regular file", "is not a regular file")
+        if info.st_size > MAX_FILE_BYTES:
+            raise UnreadableFile(f"is larger than {MAX_FILE_BYTES} bytes", "is too large")
+        with open(path, "rb") as handle:
+            raw = handle.read(MAX_FILE_BYTES + 1)
+    except OSError as exc:
+        raise UnreadableFile(f"cannot be read ({exc.strerror})", "cannot be read") from exc
+    if len(raw) > MAX_FILE_BYTES:  # it grew while being read
+        raise UnreadableFile(f"is larger than {MAX_FILE_BYTES} bytes", "is too large")
+    return raw
+
+
 def _read_inside(path: Path, root: Path, label: str, what: str, brief: str = "") -> bytes:
     """Read a regular file that lies inside ``root`` once links are resolved.
 
@@ -262,7 +289,6 @@ def _read_inside(path: Path, root: Path, label: str, what: str, brief: str = "")
     """
     try:
         real = path.resolve(strict=True)
-        info = real.stat()
     except (OSError, RuntimeError) as exc:  # RuntimeError: a loop of symbolic links
         strerror = getattr(exc, "strerror", None) or str(exc)
         raise BasisFileError(f"{label}: cannot read the {what} ({strerror})",
@@ -270,22 +296,11 @@ def _read_inside(path: Path, root: Path, label: str, what: str, brief: str = "")
     if not real.is_relative_to(root):
         raise BasisFileError(f"{label}: the {what} is a link to {real}, outside the tables "
                              "folder", reason=f"{brief}the {what} links outside the tables folder")
-    if not stat.S_ISREG(info.st_mode):
-        raise BasisFileError(f"{label}: the {what} is not a regular file",
-                             reason=f"{brief}the {what} is not a regular file")
-    too_large = BasisFileError(f"{label}: the {what} is larger than {MAX_FILE_BYTES} bytes",
-                               reason=f"{brief}the {what} is too large")
-    if info.st_size > MAX_FILE_BYTES:
-        raise too_large
     try:
-        with open(real, "rb") as handle:
-            raw = handle.read(MAX_FILE_BYTES + 1)
-    except OSError as exc:
-        raise BasisFileError(f"{label}: cannot read the {what} ({exc.strerror})",
-                             reason=f"{brief}cannot read the {what}") from exc
-    if len(raw) > MAX_FILE_BYTES:
-        raise too_large
-    return raw
+        return read_regular_file(real)
+    except UnreadableFile as exc:
+        raise BasisFileError(f"{label}: the {what} {exc.problem}",
+                             reason=f"{brief}the {what} {exc.brief}") from exc
 
 
 def _too_deep(value) -> bool:

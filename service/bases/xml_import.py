@@ -112,7 +112,6 @@ import math
 import os
 import re
 import shutil
-import stat
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -123,11 +122,12 @@ from defusedxml import DTDForbidden, EntitiesForbidden, ExternalReferenceForbidd
 from defusedxml.ElementTree import DefusedXMLParser
 
 from service.bases.registry import (
-    MAX_FILE_BYTES,
     MAX_ID_LENGTH,
     MAX_VERSION_LENGTH,
+    UnreadableFile,
     load_basis,
     printable,
+    read_regular_file,
 )
 
 #: Elements may nest this deep (the format needs six levels).
@@ -773,24 +773,10 @@ class Imported:
 def read_source(path) -> bytes:
     """Read the file to import: a regular file of at most MAX_FILE_BYTES."""
     path = Path(path)
-    name = printable(str(path))
     try:
-        info = path.stat()
-    except OSError as exc:
-        raise ImportRefused(f"{name}: cannot read the file ({exc.strerror})") from exc
-    if not stat.S_ISREG(info.st_mode):
-        raise ImportRefused(f"{name}: not a regular file")
-    too_large = ImportRefused(f"{name}: larger than {MAX_FILE_BYTES} bytes; refused unread")
-    if info.st_size > MAX_FILE_BYTES:
-        raise too_large
-    try:
-        with open(path, "rb") as handle:
-            raw = handle.read(MAX_FILE_BYTES + 1)
-    except OSError as exc:
-        raise ImportRefused(f"{name}: cannot read the file ({exc.strerror})") from exc
-    if len(raw) > MAX_FILE_BYTES:
-        raise too_large
-    return raw
+        return read_regular_file(path)
+    except UnreadableFile as exc:
+        raise ImportRefused(f"{printable(str(path))}: the file {exc.problem}; refused") from exc
 
 
 def convert(raw: bytes, file_name: str, *, basis_id: str, version: str,

@@ -17,7 +17,6 @@ from service.bases import registry as registry_module
 from service.cli import main as cli
 from tests.bases.test_registry import (
     REGISTRY_LOGGER,
-    SOUND_FILE,
     SOUND_ID,
     SOUND_VERSION,
     assert_refused_beside_sound,
@@ -31,15 +30,6 @@ from tests.bases.test_registry import (
 
 #: What a file outside the folder might hold (say, the process environment).
 SECRET = "FERNHOLLOW_API_KEY=not-for-anyone-to-see"
-
-
-@pytest.fixture()
-def folder(tmp_path):
-    """A tables folder holding one sound CSV basis (as in test_registry)."""
-    write(tmp_path, "data/sound.csv", csv_text())
-    write(tmp_path, SOUND_FILE, basis_text(SOUND_ID, SOUND_VERSION,
-                                           csv_mortality("data/sound.csv"), default=True))
-    return tmp_path
 
 
 def readyz(folder) -> tuple[int, dict]:

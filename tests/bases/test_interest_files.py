@@ -7,7 +7,6 @@ from tests.bases.test_registry import (
     assert_refused_beside_sound,
     basis_text,
     csv_mortality,
-    folder,  # noqa: F401 - the fixture
     write,
 )
 
@@ -19,7 +18,7 @@ def with_interest(basis_id: str, interest: str) -> str:
     return text.replace('[interest]\nkind = "flat"\nrate = 0.04\n', interest)
 
 
-def test_a_spot_curve_from_a_file(folder):  # noqa: F811
+def test_a_spot_curve_from_a_file(folder):
     write(folder, "data/spot.csv", SPOT_CSV)
     write(folder, "curve.toml", with_interest(
         "fernhollow-curve", '[interest]\nkind = "spot"\nfile = "data/spot.csv"\n'))
@@ -29,7 +28,7 @@ def test_a_spot_curve_from_a_file(folder):  # noqa: F811
     assert basis.interest_rate is None
 
 
-def test_the_curve_file_is_in_the_digest(folder):  # noqa: F811
+def test_the_curve_file_is_in_the_digest(folder):
     write(folder, "data/spot.csv", SPOT_CSV)
     write(folder, "curve.toml", with_interest(
         "fernhollow-curve", '[interest]\nkind = "spot"\nfile = "data/spot.csv"\n'))
@@ -42,13 +41,13 @@ def test_the_curve_file_is_in_the_digest(folder):  # noqa: F811
     'kind = "forward"\nedges = [10]\nrates = [0.05, 0.035]\n',
     'kind = "segments"\nedges = [5, 20]\nrates = [0.045, 0.052, 0.055]\n',
 ])
-def test_bands_inline(folder, interest):  # noqa: F811
+def test_bands_inline(folder, interest):
     write(folder, "bands.toml", with_interest("fernhollow-bands", "[interest]\n" + interest))
     basis = load_registry(folder).resolve("fernhollow-bands")
     assert basis.interest.kind in ("forward", "segments")
 
 
-def test_bands_from_a_file_start_at_zero(folder):  # noqa: F811
+def test_bands_from_a_file_start_at_zero(folder):
     write(folder, "data/bands.csv", "from,rate\n0,0.05\n10,0.035\n")
     write(folder, "bands.toml", with_interest(
         "fernhollow-bands", '[interest]\nkind = "forward"\nfile = "data/bands.csv"\n'))
@@ -67,7 +66,7 @@ def test_bands_from_a_file_start_at_zero(folder):  # noqa: F811
     ('kind = "spot"\nfile = "data/bad.csv"\n', "term,rate\n1,abc\n", ("not a number",)),
     ('kind = "flat"\nfile = "data/bad.csv"\n', "term,rate\n1,0.03\n", ("or forward bands",)),
 ])
-def test_bad_interest_is_refused(folder, caplog, interest, data, fragments):  # noqa: F811
+def test_bad_interest_is_refused(folder, caplog, interest, data, fragments):
     if data is not None:
         write(folder, "data/bad.csv", data)
     write(folder, "bad.toml", with_interest("fernhollow-bad", "[interest]\n" + interest))

@@ -81,15 +81,6 @@ def write(folder, name: str, text: str, newline: str = "\n"):
     return path
 
 
-@pytest.fixture()
-def folder(tmp_path):
-    """A tables folder holding one sound CSV basis (its data under data/)."""
-    write(tmp_path, "data/sound.csv", csv_text())
-    write(tmp_path, SOUND_FILE, basis_text(SOUND_ID, SOUND_VERSION,
-                                           csv_mortality("data/sound.csv"), default=True))
-    return tmp_path
-
-
 def load_logged(folder, caplog):
     with caplog.at_level(logging.WARNING, logger=REGISTRY_LOGGER):
         return load_registry(folder)
