@@ -175,7 +175,8 @@ def blend_tables(tables: Sequence[MortalityTable], weights: Sequence[float],
         blended = np.clip(blended, 0.0, 1.0)
         blended[-1] = 1.0
         return MortalityTable(first, blended)
-    blended = np.minimum(w @ q, 1.0)
+    # Where every table has q = 1 the blend keeps exactly 1 (weights sum to 1 only within 1e-12).
+    blended = np.where((q == 1.0).all(axis=0), 1.0, np.minimum(w @ q, 1.0))
     blended[-1] = 1.0
     if not any(select):
         return MortalityTable(first, blended)
@@ -184,5 +185,7 @@ def blend_tables(tables: Sequence[MortalityTable], weights: Sequence[float],
                               for t in tables):
         raise TableError("select rates can only be blended between tables with the same "
                          "select structure (first selection age, ages and select period)")
-    select_q = np.minimum(np.tensordot(w, np.stack([t.select_q for t in tables]), axes=1), 1.0)
+    stacked = np.stack([t.select_q for t in tables])
+    select_q = np.where((stacked == 1.0).all(axis=0), 1.0,
+                        np.minimum(np.tensordot(w, stacked, axes=1), 1.0))
     return MortalityTable(first, blended, start, select_q)
