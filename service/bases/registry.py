@@ -85,6 +85,17 @@ class Basis:
     tables: tuple[MortalityTable, ...]
     mortality: MappingProxyType = field(repr=False)  # per sex: how the table was given, source
     file: str = ""
+    age_definition: str = "exact"
+    effective_date: object = None
+    approval: object = None
+    superseded_by: str | None = None
+    rounding: object = None
+    blends: tuple = ()
+    improvement: object = None
+
+    @property
+    def names(self) -> tuple[str, ...]:
+        return self.sexes + tuple(b.name for b in self.blends)
 
     @property
     def ref(self) -> str:
@@ -103,7 +114,7 @@ class Basis:
         """Return which table a life of ``sex`` follows, or None when the basis has none."""
         if not self.sex_distinct:
             return 0
-        return self.sexes.index(sex) if sex in self.sexes else None
+        return self.names.index(sex) if sex in self.names else None
 
 
 @dataclass(frozen=True)
