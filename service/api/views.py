@@ -284,11 +284,18 @@ def _engine_items(basis, items, valuation_date, build=None):
                     life["age"] = 0.0
                 item.setdefault("ages", [None] * len(item["lives"]))[k] = life["age"]
                 use_age_definition(basis)
+            rated = life["age"] + life["age_adjustment"]
             try:
-                index = tables.index(index, life["age"] + life["age_adjustment"])
+                index = tables.index(index, rated)
             except CohortError as exc:
                 problems[f"lives.{k}"] = [f"{str(exc).capitalize()}."]
                 index = tables.placeholder()
+            table = tables.tables[index]
+            if not table.first_age - _SNAP <= rated <= table.last_age + _SNAP \
+                    and f"lives.{k}.age" not in problems:
+                # As the engine words it, so that both checks read alike.
+                problems[f"lives.{k}.age"] = [f"age {rated:g} is outside the table's ages "
+                                              f"{table.first_age} to {table.last_age}"]
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
                               age_adjustment=life["age_adjustment"],
                               mortality_multiplier=life["mortality_multiplier"],
@@ -297,6 +304,10 @@ def _engine_items(basis, items, valuation_date, build=None):
             refused[n] = problems
         out.append((build or _annuity_item)(item, tuple(lives)))
     return out, refused, tables.tables
+
+
+#: An age within this of a whole age is that age (as the engine reads ages).
+_SNAP = 1e-9
 
 
 def _table_of(basis, name) -> int | None:
@@ -461,7 +472,10 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
                 refused[n] = flatten_errors(exc.messages)
         data["items"] = loaded
     else:
-        data = load(schema, body)
+        try:
+            data = load(schema, body)
+        except ProblemError as exc:
+            raise _with_basis_errors(exc, schema, item_schema, body, build) from None
         raw = data["items"]
         places = list(range(len(raw)))
     g.item_count = len(raw)
@@ -484,6 +498,50 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     req.warnings = request_warnings(basis, data, [(f"items.{place}", item) for place, item
                                                   in zip(req.places, req.items, strict=True)])
     return req
+
+
+def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> ProblemError:
+    """The schema's 422 for a batch, with the basis' objections to the items the schema
+    passed added in item order, so that one answer lists every problem (up to the cap).
+
+    Only items up to the last one the schema check reached are checked against the basis; a
+    request whose own fields (basis, interest, dates) are invalid keeps the schema's answer.
+    """
+    errors = exc.errors or {}
+    if exc.status != 422 or not errors or any(not p.startswith("items.") for p in errors):
+        return exc
+    try:
+        data = load(_top_schema(schema), body)
+        basis = _basis(data["basis"])
+        _valuation(basis, data)
+        _dates_needed(basis, data, [])
+    except ProblemError:
+        return exc
+    named = {int(path.split(".")[1]) for path in errors}
+    reach = len(data["items"]) if len(errors) < MAX_ERROR_PATHS else max(named) + 1
+    places, items = [], []
+    for n, item in enumerate(data["items"][:reach]):
+        if n in named:
+            continue
+        try:
+            items.append(item_schema.load(item))
+            places.append(n)
+        except ValidationError:
+            continue
+    if not any(life["date_of_birth"] is not None for item in items for life in item["lives"]) \
+            or data["valuation_date"] is not None:
+        _, refused, _ = _engine_items(basis, items, data["valuation_date"], build)
+    else:
+        refused = {}
+    found = [(n, path, msgs) for path, msgs in errors.items()
+             for n in [int(path.split(".")[1])]]
+    found += [(places[k], f"items.{places[k]}.{path}", msgs)
+              for k, item_errors in refused.items() for path, msgs in item_errors.items()]
+    found.sort(key=lambda entry: entry[0])  # stable: each item's paths keep their order
+    merged = dict((path, msgs) for _, path, msgs in found[:MAX_ERROR_PATHS])
+    exc.errors_omitted = (exc.errors_omitted or 0) + max(len(found) - MAX_ERROR_PATHS, 0)
+    exc.errors = merged
+    return exc
 
 
 _TOP_SCHEMAS: dict[type, Schema] = {}

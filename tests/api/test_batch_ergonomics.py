@@ -123,3 +123,32 @@ def test_per_item_problems_are_capped(client):
                  if "Not listed" not in str(r["problem"]["errors"]))
     assert listed <= 100
     assert "Not listed" in str(body["results"][-1]["problem"]["errors"])
+
+
+class TestEveryProblemAtOnce:
+    """In reject mode one answer lists the schema's problems and the basis' together, item by
+    item (a bad term no longer hides an age past the table's end)."""
+
+    def test_schema_and_basis_problems_come_together(self, client):
+        response = client.post(URL, json={"basis": "fernhollow-annuitants", "items": [
+            {"lives": [{"age": 65, "sex": "female"}], "timing": "advance", "term": -1},
+            {"lives": [{"age": 130, "sex": "male"}], "timing": "advance"},
+            {"lives": [{"age": 60}], "timing": "advance"},
+            {"lives": [{"age": 60, "sex": "male"}], "timing": "advance"}]})
+        errors = assert_problem(response, 422, "items.0.term")["errors"]
+        assert list(errors) == ["items.0.term", "items.1.lives.0.age", "items.2.lives.0.sex"]
+        assert errors["items.1.lives.0.age"] == ["age 130 is outside the table's ages 40 to 120"]
+
+    def test_a_bad_request_field_keeps_the_schema_answer(self, client):
+        response = client.post(URL, json={"basis": "fernhollow-annuitants", "interest_rate": "x",
+                                          "items": [{"lives": [{"age": 130, "sex": "male"}],
+                                                     "timing": "advance"}]})
+        assert list(assert_problem(response, 422, "interest_rate")["errors"]) == [
+            "interest_rate"]
+
+    def test_the_cap_holds_over_both_kinds(self, client):
+        items = [{"lives": [{"age": 65, "sex": "female"}], "timing": "advance", "term": -1},
+                 *[{"lives": [{"age": 130, "sex": "male"}], "timing": "advance"}] * 300]
+        body = assert_problem(client.post(URL, json={"basis": "fernhollow-annuitants",
+                                                     "items": items}), 422, "items.0.term")
+        assert len(body["errors"]) == 100 and body["errors_omitted"] == 201
