@@ -5,7 +5,9 @@ import uuid
 from datetime import UTC, datetime
 from importlib import metadata
 
-from flask import current_app, g, request
+from flask import current_app, request
+
+from service.api.state import current
 
 _REQUEST_ID = re.compile(r"^[A-Za-z0-9._:\-]{1,128}$")
 
@@ -20,10 +22,11 @@ def installed_version() -> str:
 
 def request_id() -> str:
     """Return this request's id: the caller's X-Request-ID if well-formed, else a new one."""
-    if "request_id" not in g:
+    state = current()
+    if state.request_id is None:
         incoming = request.headers.get("X-Request-ID", "")
-        g.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
-    return g.request_id
+        state.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
+    return state.request_id
 
 
 def interest_block(curve, source: str) -> dict:
@@ -37,11 +40,12 @@ def use_basis(basis, curve=None) -> None:
 
     ``curve`` is the request's own interest structure; None means the basis' interest.
     """
-    g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
-                     "status": basis.status}
+    state = current()
+    state.basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
+                   "status": basis.status}
     if basis.improvement is not None:
-        g.audit_basis["improvement"] = improvement_block(basis.improvement)
-    g.audit_interest = interest_block(basis.interest if curve is None else curve,
+        state.basis["improvement"] = improvement_block(basis.improvement)
+    state.interest = interest_block(basis.interest if curve is None else curve,
                                       "basis" if curve is None else "request")
 
 
@@ -56,20 +60,22 @@ def improvement_block(improvement) -> dict:
 
 def use_age_definition(basis) -> None:
     """Record that the request derived ages from dates of birth by the basis' definition."""
-    if g.get("audit_basis") is not None:
-        g.audit_basis["age_definition"] = basis.age_definition
+    state = current()
+    if state.basis is not None:
+        state.basis["age_definition"] = basis.age_definition
 
 
 def use_valuation_date(date) -> None:
     """Record the request's valuation date (None: it gave none) for its audit block."""
-    g.audit_valuation_date = date
+    current().valuation_date = date
 
 
 def audit_block() -> dict:
-    dated = g.get("audit_valuation_date")
+    state = current()
+    dated = state.valuation_date
     return {
-        "basis": g.get("audit_basis"),
-        "interest": g.get("audit_interest"),
+        "basis": state.basis,
+        "interest": state.interest,
         **({"valuation_date": dated.isoformat()} if dated is not None else {}),
         "service": {"name": current_app.config["SERVICE_NAME"],
                     "version": current_app.config["SERVICE_VERSION"]},

@@ -7,7 +7,7 @@ import time
 from dataclasses import dataclass
 
 import numpy as np
-from flask import Blueprint, Response, current_app, g, jsonify, request
+from flask import Blueprint, Response, current_app, jsonify, request
 from marshmallow import Schema, ValidationError, fields, validate
 
 from service.api.audit import (
@@ -33,6 +33,7 @@ from service.api.schemas import (
     ProjectionRequestSchema,
     ScheduleRequestSchema,
 )
+from service.api.state import current
 from service.api.warnings import request_warnings
 from service.bases import UnknownBasisError
 from service.bases.cohorts import CohortError, RequestTables, cohort_of
@@ -478,7 +479,7 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
             raise _with_basis_errors(exc, schema, item_schema, body, build) from None
         raw = data["items"]
         places = list(range(len(raw)))
-    g.item_count = len(raw)
+    current().item_count = len(raw)
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
     _dates_needed(basis, data, data["items"])
@@ -788,7 +789,7 @@ def cash_flow_schedules():
     wants_csv = _wants_csv()
     body = json_body()
     data = load(_schedule_request, body)
-    g.item_count = 1
+    current().item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
     _dates_needed(basis, data, [data["item"]])
