@@ -39,14 +39,38 @@ def use_basis(basis, curve=None) -> None:
     """
     g.audit_basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
                      "status": basis.status}
+    if basis.improvement is not None:
+        g.audit_basis["improvement"] = improvement_block(basis.improvement)
     g.audit_interest = interest_block(basis.interest if curve is None else curve,
                                       "basis" if curve is None else "request")
 
 
+def improvement_block(improvement) -> dict:
+    """The improvement scale and projection a basis uses, as answers name them."""
+    scale = improvement.scale
+    return {"scale": improvement.file, "kind": improvement.kind,
+            "projection": improvement.projection, "base_year": scale.base_year,
+            "year": improvement.year, "long_term_rate": scale.long_term_rate,
+            "long_term_from": scale.long_term_from, "source": improvement.source}
+
+
+def use_age_definition(basis) -> None:
+    """Record that the request derived ages from dates of birth by the basis' definition."""
+    if g.get("audit_basis") is not None:
+        g.audit_basis["age_definition"] = basis.age_definition
+
+
+def use_valuation_date(date) -> None:
+    """Record the request's valuation date (None: it gave none) for its audit block."""
+    g.audit_valuation_date = date
+
+
 def audit_block() -> dict:
+    dated = g.get("audit_valuation_date")
     return {
         "basis": g.get("audit_basis"),
         "interest": g.get("audit_interest"),
+        **({"valuation_date": dated.isoformat()} if dated is not None else {}),
         "service": {"name": current_app.config["SERVICE_NAME"],
                     "version": current_app.config["SERVICE_VERSION"]},
         "request_id": request_id(),

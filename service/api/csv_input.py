@@ -6,7 +6,8 @@ checks, limits and errors apply; error paths name the CSV line and column
 (``rows.3.age``: line 3 of the file, the header being line 1).
 
 Columns (all optional but ``age`` and, for annuities, ``timing``; an empty cell is an absent
-field): ``id``, the first life's ``age``, ``sex``, ``duration``, ``age_adjustment``,
+field): ``id``, the first life's ``age`` (or ``date_of_birth``, with ``valuation_date`` in
+the query string), ``sex``, ``duration``, ``age_adjustment``,
 ``mortality_multiplier``, ``flat_extra``; a second life's the same with ``_2``
 (``age_2``, ``sex_2``, ...); then the item's own fields by their JSON
 names (``timing``, ``frequency``, ``term``, ``term_months``, ``deferral``, ``guarantee``,
@@ -23,15 +24,16 @@ from flask import request
 from service.api.body import _read_body
 from service.api.problems import ProblemError
 
-LIFE_FIELDS = ("age", "sex", "duration", "age_adjustment", "mortality_multiplier",
-               "flat_extra")
+LIFE_FIELDS = ("age", "date_of_birth", "sex", "duration", "age_adjustment",
+               "mortality_multiplier", "flat_extra")
 AMOUNTS = ("both", "first_only", "second_only")
 #: Columns read as numbers (whole numbers where the field is an integer).
 _INTEGERS = {"frequency", "duration", "term_months", "deferral_months", "guarantee_months"}
 _NUMBERS = {"age", "age_adjustment", "mortality_multiplier", "flat_extra", "term", "deferral",
             "guarantee", "escalation", "amount", *AMOUNTS}
 #: Query parameters that are request options, and how to read them.
-OPTIONS = {"basis": str, "interest_rate": float, "on_error": str, "buckets": str}
+OPTIONS = {"basis": str, "interest_rate": float, "on_error": str, "buckets": str,
+           "valuation_date": str}
 
 
 def _cell(column: str, text: str):

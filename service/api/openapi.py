@@ -130,23 +130,8 @@ def build_spec(max_items: int, version: str = "") -> dict:
         "summary": "The basis' table as rows (age, q, p, l, d, curtate expectation) for one "
                    "life followed from from_age; with duration, a life selected duration "
                    "years before from_age.",
-        "parameters": [
-            {"name": "from_age", "in": "query", "schema": {"type": "integer", "minimum": 0,
-                                                           "maximum": 200}},
-            {"name": "to_age", "in": "query", "schema": {"type": "integer", "minimum": 0,
-                                                         "maximum": 200}},
-            {"name": "sex", "in": "query", "schema": {"type": "string",
-                                                      "enum": list(s.SEX_VALUES)}},
-            {"name": "duration", "in": "query", "schema": {"type": "integer", "minimum": 0,
-                                                           "maximum": 200}},
-            {"name": "columns", "in": "query", "schema": {
-                "type": "string", "enum": ["basic", "commutation"], "default": "basic"},
-             "description": "'commutation' adds D, N, C, M, S, R and the annuity-due N/D."},
-            {"name": "interest_rate", "in": "query", "schema": {
-                "type": "number", "minimum": -0.5, "maximum": 1.0},
-             "description": "Flat effective annual rate for the commutation columns; default "
-                            "the basis' rate."},
-        ],
+        # One parameter per field of the query schema (apispec expands it).
+        "parameters": [{"in": "query", "schema": s.LifeTableQuerySchema}],
         "responses": _ok("LifeTable", "The rows; as CSV with Accept: text/csv (the audit "
                                       "block then travels in X- headers).",
                          {"text/csv": {"schema": {"type": "string"}}})
@@ -159,6 +144,9 @@ def build_spec(max_items: int, version: str = "") -> dict:
          "description": "With a CSV body: a flat rate replacing the basis' interest."},
         {"name": "on_error", "in": "query", "schema": {"type": "string",
                                                        "enum": ["reject", "per-item"]},
+         "description": "With a CSV body: as the JSON field."},
+        {"name": "valuation_date", "in": "query", "schema": {"type": "string",
+                                                             "format": "date"},
          "description": "With a CSV body: as the JSON field."}]
     spec.path("/v1/annuity-factors", operations={"post": {
         "operationId": "annuityFactors", "security": _AUTH,

@@ -1,5 +1,6 @@
 """Marshmallow schemas: the request and response shapes of the HTTP interface."""
 
+import datetime
 import math
 
 from marshmallow import (
@@ -28,6 +29,8 @@ SURVIVORSHIP_SHORTCUTS = {
     "reversionary": (0.0, 0.0, 1.0),
 }
 SEX_VALUES = ("female", "male")
+#: A table a life follows: a sex, or a blended table's name (as basis ids are spelt).
+TABLE_NAME = r"^[a-z0-9](?:[a-z0-9.-]*[a-z0-9])?$"
 MAX_YEARS = 200.0
 #: Sensitivities an item may ask for.
 MEASURES = ("duration", "convexity", "key_rate_durations")
@@ -81,15 +84,29 @@ class _Strict(Schema):
 
 
 class LifeSchema(_Strict):
-    age = StrictFloat(required=True, validate=validate.Range(0, 200), metadata={
+    age = StrictFloat(load_default=None, validate=validate.Range(0, 200), metadata={
         "description": "Exact age in years, a real number: 65.25 is 65 years and 3 months. "
                        "The life's integer age is its floor (an age within 1e-9 of a whole "
                        "age is that age). After age_adjustment it must lie between the "
-                       "table's first and last ages.",
+                       "table's first and last ages. Give age or date_of_birth, not both.",
         "example": 65.25})
-    sex = fields.String(validate=validate.OneOf(SEX_VALUES), load_default=None,
-                        metadata={"description": "Required where the basis is sex-distinct; "
-                                                 "ignored by a unisex basis (with a warning)."})
+    date_of_birth = fields.Date(load_default=None, metadata={
+        "description": "Instead of age: the life's date of birth (ISO 8601, 1958-03-14). The "
+                       "request's valuation_date is then required, and the age is derived "
+                       "by the basis' age_definition (see GET /v1/bases/{ref}): exact age "
+                       "counts whole years to the last birthday plus the days since it over "
+                       "the days from that birthday to the next; last-birthday takes the "
+                       "whole years; nearest-birthday rounds the exact age, half a year "
+                       "rounding up. A birthday on 29 February falls on 28 February in other "
+                       "years. The result echoes the ages used in `ages`."})
+    sex = fields.String(validate=[validate.Length(1, 64), validate.Regexp(
+                            TABLE_NAME, error="Must be female, male or the name of a table "
+                                              "the basis defines.")],
+                        load_default=None, metadata={
+                            "description": "female or male where the basis is sex-distinct, "
+                                           "or the name of a blended table the basis defines "
+                                           "(GET /v1/bases/{ref} lists its tables). Ignored "
+                                           "by a unisex basis (with a warning)."})
     duration = fields.Integer(strict=True, allow_none=True, load_default=None,
                               validate=validate.Range(0, 200), metadata={
                                   "description": (
@@ -113,6 +130,15 @@ class LifeSchema(_Strict):
         "description": "Added to every q after the multiplier, then capped at 1: the usual "
                        "flat extra of an impaired life (0.005 is 5 per mille). Above 0.1 a "
                        "warning asks whether per mille was meant."})
+
+    @validates_schema
+    def _age_or_date(self, data, **kwargs):
+        age, born = data.get("age"), data.get("date_of_birth")
+        if age is None and born is None:
+            raise ValidationError("Missing: give age, or date_of_birth with the request's "
+                                  "valuation_date.", "age")
+        if age is not None and born is not None:
+            raise ValidationError("Give age or date_of_birth, not both.", "date_of_birth")
 
 
 class SurvivorshipAmountsSchema(_Strict):
@@ -311,6 +337,16 @@ INTEREST_DOC = {
 assert {o["properties"]["kind"]["const"] for o in INTEREST_DOC["oneOf"]} == set(KINDS)
 
 
+#: The dates a request may name.
+MIN_DATE, MAX_DATE = datetime.date(1900, 1, 1), datetime.date(2199, 12, 31)
+VALUATION_DATE_DOC = {"description": (
+    "The date the factors are valued at (ISO 8601, 2026-12-31). Required where the basis "
+    "projects mortality generationally with an improvement scale (a life aged x then follows "
+    "the rates of calendar year valuation year + t at age x + t) and where a life gives "
+    "date_of_birth; otherwise not used. The audit block echoes it."),
+    "example": "2026-12-31"}
+
+
 class _Priced(_Strict):
     """A request under a basis, with the basis' interest or the request's own."""
 
@@ -322,6 +358,9 @@ class _Priced(_Strict):
                                 metadata={"description": "Flat effective annual rate that "
                                                          "replaces the basis' interest."})
     interest = InterestField(metadata=INTEREST_DOC)
+    valuation_date = fields.Date(load_default=None, validate=validate.Range(
+        MIN_DATE, MAX_DATE, error="Must be a date from 1900-01-01 to 2199-12-31."),
+        metadata=VALUATION_DATE_DOC)
 
 
 ON_ERROR_DOC = {"description": (
@@ -418,12 +457,34 @@ class InsuranceRequestSchema(_Batch):
 # ---- responses (for the contract and for tests) -------------------------------------------
 
 
+class ImprovementSchema(Schema):
+    scale = fields.String(required=True, metadata={
+        "description": "The scale's data file (covered by the basis digest)."})
+    kind = fields.String(required=True, validate=validate.OneOf(["by-age", "by-age-and-year"]))
+    projection = fields.String(required=True,
+                               validate=validate.OneOf(["generational", "static"]))
+    base_year = fields.Integer(required=True, metadata={
+        "description": "The calendar year of the tables' rates."})
+    year = fields.Integer(allow_none=True, metadata={
+        "description": "static: the year the tables are projected to."})
+    long_term_rate = fields.Float(required=True)
+    long_term_from = fields.Integer(allow_none=True, metadata={
+        "description": "by-age: the first year at the long-term rate."})
+    source = fields.String(required=True)
+
+
 class BasisRefSchema(Schema):
     id = fields.String(required=True)
     version = fields.String(required=True)
     digest = fields.String(required=True)
     status = fields.String(required=True, validate=validate.OneOf(["approved", "demo",
                                                                    "retired"]))
+    age_definition = fields.String(validate=validate.OneOf(
+        ["exact", "last-birthday", "nearest-birthday"]), metadata={
+        "description": "Where a life gave date_of_birth: how its age was derived."})
+    improvement = fields.Nested(ImprovementSchema, metadata={
+        "description": "Present where the basis projects mortality with an improvement "
+                       "scale."})
 
 
 class InterestSchema(Schema):
@@ -446,6 +507,8 @@ class ServiceInfoSchema(Schema):
 class AuditSchema(Schema):
     basis = fields.Nested(BasisRefSchema, allow_none=True, required=True)
     interest = fields.Nested(InterestSchema, allow_none=True, required=True)
+    valuation_date = fields.Date(metadata={
+        "description": "The request's valuation_date, where it gave one."})
     service = fields.Nested(ServiceInfoSchema, required=True)
     request_id = fields.String(required=True)
     computed_at = fields.String(required=True, metadata={"format": "date-time"})
@@ -501,6 +564,13 @@ ITEM_PROBLEM_DOC = {"description": "on_error 'per-item': why this item was refus
 class FactorResultSchema(Schema):
     id = fields.String(metadata={"description": "The item's id, where it gave one."})
     value = fields.Float(metadata={"description": "Always, unless the item was refused."})
+    rounded = fields.Float(metadata={
+        "description": "Where the basis prescribes rounding: the value rounded by its rule "
+                       "(decimal places, half-up or half-even, applied to the shortest "
+                       "decimal form of value). Nothing inside the calculation is rounded."})
+    ages = fields.List(fields.Float(allow_none=True), metadata={
+        "description": "Where a life gave date_of_birth: the age used for each life (null "
+                       "for a life that gave its age)."})
     method = fields.Nested(MethodSchema)
     problem = fields.Nested(ItemProblemSchema, metadata=ITEM_PROBLEM_DOC)
     standard_deviation = fields.Float(metadata={
@@ -522,6 +592,13 @@ class InsuranceResultSchema(Schema):
     second_moment = fields.Float(metadata={
         "description": "E[Z^2]: the benefit squared at double the force of interest; the "
                        "variance of the present value is second_moment - value^2."})
+    rounded = fields.Float(metadata={
+        "description": "Where the basis prescribes rounding: the value rounded by its rule "
+                       "(decimal places, half-up or half-even, applied to the shortest "
+                       "decimal form of value). Nothing inside the calculation is rounded."})
+    ages = fields.List(fields.Float(allow_none=True), metadata={
+        "description": "Where a life gave date_of_birth: the age used for each life (null "
+                       "for a life that gave its age)."})
     method = fields.Nested(MethodSchema)
 
 
@@ -649,11 +726,44 @@ class BasisDefaultsSchema(Schema):
     mthly = fields.String(required=True)
 
 
+class BlendSchema(Schema):
+    name = fields.String(required=True, metadata={
+        "description": "Give it as a life's sex to follow the blended table."})
+    weights = fields.Dict(keys=fields.String(), values=fields.Float(), required=True,
+                          metadata={"description": "Weight of each sex table; they sum to 1."})
+    on = fields.String(required=True, validate=validate.OneOf(["q", "survival"]), metadata={
+        "description": "q: the weighted mean of the rates at each age; survival: the "
+                       "weighted mean of the survivors from a common radix at the first age."})
+
+
+class RoundingSchema(Schema):
+    places = fields.Integer(required=True)
+    rule = fields.String(required=True, validate=validate.OneOf(["half-up", "half-even"]))
+
+
+class ApprovalSchema(Schema):
+    by = fields.String(required=True, metadata={"description": "Who approved (a role or "
+                                                               "reference)."})
+    on = fields.Date(required=True)
+
+
 class BasisDetailSchema(BasisSummarySchema):
     purpose = fields.String(required=True)
     source = fields.String(required=True)
     sex_distinct = fields.Boolean(required=True)
     mortality = fields.List(fields.Nested(TableSourceSchema), required=True)
+    blends = fields.List(fields.Nested(BlendSchema), required=True)
+    tables = fields.List(fields.String(), required=True, metadata={
+        "description": "Every name a life's sex may give under this basis."})
+    improvement = fields.Nested(ImprovementSchema, allow_none=True, required=True)
+    age_definition = fields.String(required=True, validate=validate.OneOf(
+        ["exact", "last-birthday", "nearest-birthday"]))
+    rounding = fields.Nested(RoundingSchema, allow_none=True, required=True, metadata={
+        "description": "Rounding of final factors: results then carry rounded beside value."})
+    effective_date = fields.Date(allow_none=True, required=True)
+    approval = fields.Nested(ApprovalSchema, allow_none=True, required=True)
+    superseded_by = fields.String(allow_none=True, required=True, metadata={
+        "description": "The version that replaced this one, if any."})
     defaults = fields.Nested(BasisDefaultsSchema, required=True)
     audit = fields.Nested(AuditSchema, required=True)
 
@@ -680,8 +790,21 @@ class LifeTableRowSchema(Schema):
 class LifeTableQuerySchema(_Strict):
     from_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
     to_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
-    sex = fields.String(load_default=None, validate=validate.OneOf(SEX_VALUES))
+    sex = fields.String(load_default=None, validate=[validate.Length(1, 64),
+                                                     validate.Regexp(TABLE_NAME)],
+                        metadata={"description": "female, male or a blended table's name."})
     duration = fields.Integer(load_default=None, validate=validate.Range(0, 200))
+    valuation_date = fields.Date(load_default=None, validate=validate.Range(MIN_DATE, MAX_DATE),
+                                 metadata={"description": (
+                                     "For a basis with a generational improvement scale "
+                                     "(required there): the date at which the life has its "
+                                     "age; the rows show its cohort's projected rates.")})
+    age = fields.Float(load_default=None, allow_nan=False, validate=validate.Range(0, 200),
+                       metadata={"description": "With valuation_date: the life's age then "
+                                                "(or give date_of_birth)."})
+    date_of_birth = fields.Date(load_default=None, metadata={
+        "description": "With valuation_date: the life's date of birth, its age derived by "
+                       "the basis' age definition."})
     columns = fields.String(load_default="basic", validate=validate.OneOf(["basic",
                                                                           "commutation"]),
                             metadata={"description": "'commutation' adds D, N, C, M, S, R and "
@@ -697,6 +820,12 @@ class LifeTableSchema(Schema):
     basis = fields.String(required=True)
     sex = fields.String(required=True)
     duration = fields.Integer(allow_none=True, required=True)
+    age = fields.Float(metadata={"description": "Improved basis: the life's age at the "
+                                                "valuation date (derived from date_of_birth "
+                                                "where given)."})
+    cohort = fields.Integer(metadata={
+        "description": "Generational improvement: the cohort whose projected rates the rows "
+                       "show (valuation year minus the integer age)."})
     radix = fields.Float(required=True, metadata={"description": "l at radix_age."})
     radix_age = fields.Integer(required=True, metadata={
         "description": "The table's first age for the ultimate table, as published tables "

@@ -10,12 +10,20 @@ import numpy as np
 from flask import Blueprint, Response, current_app, g, jsonify, request
 from marshmallow import Schema, ValidationError, fields, validate
 
-from service.api.audit import audit_block, interest_block, use_basis
+from service.api.audit import (
+    audit_block,
+    improvement_block,
+    interest_block,
+    use_age_definition,
+    use_basis,
+    use_valuation_date,
+)
 from service.api.body import flatten_errors, json_body, load
 from service.api.csv_input import column_of, csv_batch, row_path
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
+    SEX_VALUES,
     FactorRequestSchema,
     InsuranceItemSchema,
     InsuranceRequestSchema,
@@ -27,6 +35,8 @@ from service.api.schemas import (
 )
 from service.api.warnings import request_warnings
 from service.bases import UnknownBasisError
+from service.bases.cohorts import CohortError, RequestTables, cohort_of
+from service.engine.ages import age_at
 from service.engine.annuity import (
     Item,
     Life,
@@ -40,6 +50,7 @@ from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.insurance import Assurance, Cover, insurance_values
 from service.engine.lifetable import life_table_columns
 from service.engine.projection import Projection, project
+from service.engine.rounding import round_factor
 from service.engine.spread import annuity_spread
 
 bp = Blueprint("api", __name__)
@@ -119,11 +130,27 @@ def get_basis(ref: str):
         "source": basis.source,
         "sex_distinct": basis.sex_distinct,
         "mortality": mortality,
+        "blends": [{"name": b.name, "weights": dict(b.weights), "on": b.on}
+                   for b in basis.blends],
+        "tables": list(basis.names),
+        "improvement": (None if basis.improvement is None
+                        else improvement_block(basis.improvement)),
+        "age_definition": basis.age_definition,
+        "rounding": (None if basis.rounding is None else
+                     {"places": basis.rounding.places, "rule": basis.rounding.rule}),
+        "effective_date": _iso(basis.effective_date),
+        "approval": (None if basis.approval is None else
+                     {"by": basis.approval.by, "on": _iso(basis.approval.on)}),
+        "superseded_by": basis.superseded_by,
         "defaults": {"interest": interest_block(basis.interest, "basis"),
                      "fractional_age": basis.fractional_age, "mthly": basis.approximation},
         "audit": audit_block(),
     }
     return jsonify(body)
+
+
+def _iso(date) -> str | None:
+    return None if date is None else date.isoformat()
 
 
 _LIFE_TABLE_COLUMNS = ("age", "q", "p", "l", "d", "e", "e_complete")
@@ -139,12 +166,12 @@ def life_table(ref: str):
     commutation = query["columns"] == "commutation"
     rate = query["interest_rate"]
     use_basis(basis, None if rate is None else Curve.flat(rate))
-    sex = query["sex"]
-    index = basis.table_index(sex)
+    index = _table_of(basis, query["sex"])
     if index is None:
-        raise ProblemError(422, "This basis is sex-distinct: give sex.",
-                           errors={"sex": [f"Must be one of {', '.join(basis.sexes)}."]})
-    table = basis.tables[index]
+        raise ProblemError(422, "This basis has no such table." if query["sex"] else
+                           "This basis is sex-distinct: give sex.",
+                           errors={"sex": [_no_table(basis)]})
+    table, cohort = _life_table_of(basis, index, query)
     # A table without select rates has no durations: the path is the ultimate one.
     duration = query["duration"] if table.select_period else None
     default_from = table.first_age
@@ -174,9 +201,48 @@ def life_table(ref: str):
         return _csv_response(names, lists, {"X-Radix": repr(cols.radix),
                                             "X-Radix-Age": str(cols.radix_age)})
     rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
-    return jsonify({"basis": basis.ref, "sex": basis.sexes[index], "duration": duration,
-                    "radix": cols.radix, "radix_age": cols.radix_age, "rows": rows,
-                    "audit": audit_block()})
+    cohort_fields = ({} if query["age"] is None else {"age": query["age"]}) | (
+        {} if cohort is None else {"cohort": cohort})
+    return jsonify({"basis": basis.ref, "sex": basis.names[index], "duration": duration,
+                    **cohort_fields, "radix": cols.radix, "radix_age": cols.radix_age,
+                    "rows": rows, "audit": audit_block()})
+
+
+def _life_table_of(basis, index: int, query: dict):
+    """The table the life-table rows follow and, for a generational improvement scale, the
+    cohort; the query's age is set from its date of birth where it gave one."""
+    dated = query["valuation_date"]
+    use_valuation_date(dated)
+    improvement = basis.improvement
+    if query["age"] is not None and query["date_of_birth"] is not None:
+        raise ProblemError(422, "The query has invalid fields.", errors={
+            "date_of_birth": ["Give age or date_of_birth, not both."]})
+    if query["date_of_birth"] is not None:
+        if dated is None:
+            raise ProblemError(422, "A date of birth needs a valuation date.", errors={
+                "valuation_date": ["Required with date_of_birth."]})
+        use_age_definition(basis)
+        try:
+            query["age"] = age_at(query["date_of_birth"], dated, basis.age_definition)
+        except ValueError as exc:
+            raise ProblemError(422, "The query has invalid fields.", errors={
+                "date_of_birth": [f"{str(exc).capitalize()}."]}) from None
+    if query["age"] is not None and query["from_age"] is None:
+        query["from_age"] = int(np.floor(query["age"] + 1e-9))
+    if improvement is None or improvement.projection != "generational":
+        return RequestTables(basis).tables[index], None
+    if dated is None or query["age"] is None:
+        raise ProblemError(422, "This basis projects mortality by cohort: give the life.",
+                           errors={"valuation_date" if dated is None else "age": [
+                               f"Required: {basis.ref} projects mortality generationally; "
+                               "give valuation_date and age (or date_of_birth)."]})
+    tables = RequestTables(basis, dated)
+    try:
+        table = tables.tables[tables.index(index, query["age"])]
+    except CohortError as exc:
+        raise ProblemError(422, "The query has invalid fields.", errors={
+            "valuation_date": [f"{str(exc).capitalize()}."]}) from None
+    return table, cohort_of(dated, query["age"])
 
 
 def _wants_csv() -> bool:
@@ -189,29 +255,79 @@ def _wants_csv() -> bool:
     return best == "text/csv"
 
 
-def _engine_items(basis, items, build=None):
-    """Turn loaded items into engine items; return them and ``{n: {path: messages}}`` for the
-    items a basis cannot value as given (paths within the item).
+def _engine_items(basis, items, valuation_date, build=None):
+    """Turn loaded items into engine items; return them, ``{n: {path: messages}}`` for the
+    items a basis cannot value as given (paths within the item), and the request's tables.
 
-    ``build(item, lives)`` makes the engine item from a loaded item and its engine lives
-    (default: an annuity item).
+    A life given by date of birth gets its age by the basis' age definition (recorded in the
+    item's ``ages`` for the result); under a generational improvement scale each life follows
+    its cohort's table. ``build(item, lives)`` makes the engine item from a loaded item and
+    its engine lives (default: an annuity item).
     """
+    tables = RequestTables(basis, valuation_date)
     out = []
     refused: dict[int, dict[str, list[str]]] = {}
     for n, item in enumerate(items):
         lives = []
+        problems = {}
         for k, life in enumerate(item["lives"]):
-            index = basis.table_index(life["sex"])
+            index = _table_of(basis, life["sex"])
             if index is None:
-                refused.setdefault(n, {})[f"lives.{k}.sex"] = [
-                    f"This basis is sex-distinct: give one of {', '.join(basis.sexes)}."]
+                problems[f"lives.{k}.sex"] = [_no_table(basis)]
                 index = 0
+            if life["date_of_birth"] is not None:
+                try:
+                    life["age"] = age_at(life["date_of_birth"], valuation_date,
+                                         basis.age_definition)
+                except ValueError as exc:
+                    problems[f"lives.{k}.date_of_birth"] = [f"{str(exc).capitalize()}."]
+                    life["age"] = 0.0
+                item.setdefault("ages", [None] * len(item["lives"]))[k] = life["age"]
+                use_age_definition(basis)
+            try:
+                index = tables.index(index, life["age"] + life["age_adjustment"])
+            except CohortError as exc:
+                problems[f"lives.{k}"] = [f"{str(exc).capitalize()}."]
+                index = tables.placeholder()
             lives.append(Life(age=life["age"], table=index, duration=life["duration"],
                               age_adjustment=life["age_adjustment"],
                               mortality_multiplier=life["mortality_multiplier"],
                               flat_extra=life["flat_extra"]))
+        if problems:
+            refused[n] = problems
         out.append((build or _annuity_item)(item, tuple(lives)))
-    return out, refused
+    return out, refused, tables.tables
+
+
+def _table_of(basis, name) -> int | None:
+    """Which basis table a life named ``name`` follows (None: the basis has no such table).
+    A unisex basis ignores a sex (with a warning), but not a name it does not know."""
+    if not basis.sex_distinct:
+        return 0 if name is None or name in SEX_VALUES else None
+    return basis.table_index(name)
+
+
+def _no_table(basis) -> str:
+    if not basis.sex_distinct:
+        return "This basis is unisex: give female, male or no sex."
+    return f"This basis is sex-distinct: give one of {', '.join(basis.names)}."
+
+
+def _dates_needed(basis, data: dict, items) -> None:
+    """A 422 when the request lacks a valuation date that the basis or a life needs."""
+    if data["valuation_date"] is not None:
+        return
+    improvement = basis.improvement
+    if improvement is not None and improvement.projection == "generational":
+        raise ProblemError(422, "This basis needs a valuation date.", errors={
+            "valuation_date": [
+                f"Required: {basis.ref} projects mortality generationally with the "
+                f"improvement scale {improvement.file}, so the factors depend on the date."]})
+    for n, item in enumerate(items):
+        for k, life in enumerate(item["lives"]):
+            if life["date_of_birth"] is not None:
+                raise ProblemError(422, "A date of birth needs a valuation date.", errors={
+                    "valuation_date": [f"Required: items.{n}.lives.{k} gives date_of_birth."]})
 
 
 def _annuity_item(item, lives) -> Item:
@@ -240,6 +356,7 @@ def _valuation(basis, data):
                 "interest": ["Give interest or interest_rate, not both."]})
         curve = Curve.flat(data["interest_rate"])
     use_basis(basis, curve)
+    use_valuation_date(data.get("valuation_date"))
     return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
                      basis.approximation)
 
@@ -256,6 +373,7 @@ class _Request:
 
     data: dict
     basis: object
+    tables: list  # the tables the engine items' lives follow (by index)
     valuation: Valuation
     count: int
     places: list[int]
@@ -319,6 +437,10 @@ def _batch(schema, item_schema, build=None) -> _Request:
 
 
 def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Request":
+    if request.args and not from_csv:
+        raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
+            name: ["Not read with a JSON body: give it in the body."]
+            for name in sorted(request.args)[:MAX_ERROR_PATHS]})
     body = csv_batch(limit)[0] if from_csv else json_body()
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
         body.get("items"), list) else 0
@@ -345,15 +467,16 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     g.item_count = len(raw)
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
-    engine, unknown = _engine_items(basis, data["items"], build)
+    _dates_needed(basis, data, data["items"])
+    engine, unknown, tables = _engine_items(basis, data["items"], data["valuation_date"], build)
     if unknown and not per_item:
         raise ProblemError(422, "The request has invalid fields.", errors={
             f"items.{places[n]}.{path}": msgs for n, item in unknown.items()
             for path, msgs in item.items()})
     raw_ids = {n: item["id"] for n, item in enumerate(raw)
                if isinstance(item, dict) and isinstance(item.get("id"), str)}
-    req = _Request(data, basis, valuation, len(raw), places, data["items"], engine, refused,
-                   raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
+    req = _Request(data, basis, tables, valuation, len(raw), places, data["items"], engine,
+                   refused, raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
                    time.monotonic() + current_app.config["DEADLINE_SECONDS"], from_csv)
     if unknown:
         req.drop({f"{n}.{path}": msgs for n, item in unknown.items()
@@ -424,7 +547,7 @@ def annuity_factors():
 
     def value(engine):
         asked_now = [item["measures"] for item in req.items]
-        return value_annuities(req.basis.tables, engine, valuation, max_work=req.limit,
+        return value_annuities(req.tables, engine, valuation, max_work=req.limit,
                                deadline=req.deadline, measure=[bool(m) for m in asked_now],
                                key_rates=key_rates > 0)
 
@@ -433,25 +556,25 @@ def annuity_factors():
         return req.answer([], wants_csv)
     _finite_items(valued.value, req.places)
     FACTORS.labels(req.basis.ref, "factor").inc(len(req.engine))
-    results = [_with_id(item, {"value": v, "method": valued.methods[code]})
+    results = [_with_id(item, {"value": v, "method": valued.methods[code]}, req.basis)
                for item, v, code in zip(req.items, valued.value.tolist(),
                                         valued.method_code.tolist(), strict=True)]
     if valued.measures is not None:
         _add_measures(results, [item["measures"] for item in req.items], valued.measures,
                       valuation.curve.factors())
-    _add_spread(results, req.basis, req.engine, [item.get("spread") for item in req.items],
+    _add_spread(results, req.tables, req.engine, [item.get("spread") for item in req.items],
                 valuation, req.limit, req.deadline)
     return req.answer(results, wants_csv)
 
 
-def _add_spread(results, basis, items, asked, valuation, limit, deadline):
+def _add_spread(results, tables, items, asked, valuation, limit, deadline):
     """Add the standard deviation and percentiles that items asked for to their results."""
     which = [n for n, spread in enumerate(asked) if spread]
     if not which:
         return
     levels = [asked[n]["percentiles"] for n in which]
     try:
-        got = annuity_spread(basis.tables, [items[n] for n in which], valuation, levels,
+        got = annuity_spread(tables, [items[n] for n in which], valuation, levels,
                              max_work=limit, deadline=deadline)
     except WorkLimitError as exc:
         raise _too_much(exc, "The spread asked for") from None
@@ -469,7 +592,7 @@ def insurance_factors():
     req = _batch(_insurance_request, _insurance_item_schema, _assurance)
 
     def value(engine):
-        return insurance_values(req.basis.tables, engine, req.valuation, max_work=req.limit,
+        return insurance_values(req.tables, engine, req.valuation, max_work=req.limit,
                                 deadline=req.deadline)
 
     valued = _value_batch(req, value)
@@ -478,7 +601,8 @@ def insurance_factors():
     _finite_items(valued.value, req.places)
     _finite_items(valued.second_moment, req.places)
     FACTORS.labels(req.basis.ref, "insurance").inc(len(req.engine))
-    results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]})
+    results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]},
+                        req.basis)
                for item, v, v2, code in zip(req.items, valued.value.tolist(),
                                             valued.second_moment.tolist(),
                                             valued.method_code.tolist(), strict=True)]
@@ -493,7 +617,7 @@ def cash_flow_projections():
     buckets = req.data["buckets"]
 
     def value(engine):
-        return project(req.basis.tables, engine, [item["amount"] for item in req.items],
+        return project(req.tables, engine, [item["amount"] for item in req.items],
                        req.valuation, buckets, max_work=req.limit, deadline=req.deadline)
 
     projected = _value_batch(req, value, "Projecting this portfolio")
@@ -541,6 +665,10 @@ def _results_csv(results: list[dict], warnings) -> Response:
     rows = []
     for r in results:
         row = {"id": r.get("id"), "value": r.get("value")}
+        if "rounded" in r:
+            row["rounded"] = r["rounded"]
+        row |= {f"age{'' if k == 0 else f'_{k + 1}'}": a
+                for k, a in enumerate(r.get("ages", ())) if a is not None}
         row |= {k: r[k] for k in _SCALARS if k in r}
         row |= {_key_rate_label(k): k["duration"] for k in r.get("key_rate_durations", ())}
         row |= {f"percentile_{p['percentile']:g}": p["value"] for p in r.get("percentiles", ())}
@@ -557,9 +685,17 @@ def _results_csv(results: list[dict], warnings) -> Response:
     return _csv_response(names, lists, {}, warnings)
 
 
-def _with_id(item: dict, result: dict) -> dict:
-    """The result, headed by the item's id where it gave one."""
-    return {"id": item["id"], **result} if "id" in item else result
+def _with_id(item: dict, result: dict, basis=None) -> dict:
+    """The result, headed by the item's id where it gave one, with the value rounded by the
+    basis' rule (if it has one) beside it and the ages derived from dates of birth."""
+    head = {"id": item["id"]} if "id" in item else {}
+    rounding = basis.rounding if basis is not None else None
+    if rounding is not None:
+        head["value"] = result["value"]
+        head["rounded"] = round_factor(result["value"], rounding.places, rounding.rule)
+    if "ages" in item:
+        result = result | {"ages": item["ages"]}
+    return head | result
 
 
 def _too_much(exc: WorkLimitError, what: str) -> ProblemError:
@@ -597,13 +733,14 @@ def cash_flow_schedules():
     g.item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
-    (item,), unknown = _engine_items(basis, [data["item"]])
+    _dates_needed(basis, data, [data["item"]])
+    (item,), unknown, tables = _engine_items(basis, [data["item"]], data["valuation_date"])
     if unknown:
         raise ProblemError(422, "The request has invalid fields.", errors={
             f"item.{path}": msgs for path, msgs in unknown[0].items()})
     warnings = request_warnings(basis, data, [("item", data["item"])])
     try:
-        sched = cash_flow_schedule(basis.tables, item, valuation,
+        sched = cash_flow_schedule(tables, item, valuation,
                                    max_work=current_app.config["MAX_SCHEDULE_ROWS"])
     except WorkLimitError as exc:
         raise ProblemError(413, f"This schedule would have {exc.work} rows; one schedule may "
@@ -656,6 +793,9 @@ def _csv_response(names, lists, extra: dict, warnings=()):
         "X-Basis-Version": audit["basis"]["version"],
         "X-Basis-Digest": audit["basis"]["digest"],
         "X-Basis-Status": audit["basis"]["status"],
+        **({"X-Valuation-Date": audit["valuation_date"]} if "valuation_date" in audit else {}),
+        **({"X-Improvement": _improvement_header(audit["basis"]["improvement"])}
+           if "improvement" in audit["basis"] else {}),
         "X-Interest-Kind": audit["interest"]["kind"],
         **({"X-Interest-Rate": repr(audit["interest"]["rate"])}
            if "rate" in audit["interest"] else {}),
@@ -674,6 +814,13 @@ def _csv_response(names, lists, extra: dict, warnings=()):
         headers["X-Warnings"] = text
     response.headers.update(headers)
     return response
+
+
+def _improvement_header(block: dict) -> str:
+    """X-Improvement: the scale file, its projection and base year (and static year)."""
+    year = f"; year={block['year']}" if block["year"] is not None else ""
+    return (f"{block['scale']}; projection={block['projection']}; "
+            f"base_year={block['base_year']}{year}")
 
 
 #: Response headers stay well inside a proxy's header buffer (32 KiB in deploy/nginx).

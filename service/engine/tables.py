@@ -6,6 +6,7 @@ selected at age ``select_first_age + j``; from duration ``select_period`` on the
 the ultimate rates.
 """
 
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -118,3 +119,73 @@ def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
     ultimate = np.where(idx < len(table.q), table.q[np.minimum(idx, len(table.q) - 1)], 1.0)
     select_q = np.where(idx < len(table.q) - 1, np.minimum(ultimate * factors[None, :], 1.0), 1.0)
     return MortalityTable(table.first_age, table.q, table.first_age, select_q, law=table.law)
+
+
+#: What ``blend_tables`` can blend: the rates themselves, or the survivor functions.
+BLEND_METHODS = ("q", "survival")
+
+
+def blend_tables(tables: Sequence[MortalityTable], weights: Sequence[float],
+                 on: str) -> MortalityTable:
+    """Return the weighted blend of ``tables`` (for example of male and female rates).
+
+    ``on="q"``: q(a) = sum_i w_i q_i(a); select rates are blended elementwise when every
+    table has the same select structure (first selection age and shape), and a blend of
+    tables none of which is select has ultimate rates only.
+    ``on="survival"``: from a common radix at the first age, l(a) = sum_i w_i l_i(a) with
+    l_i(a) = prod_{b<a} (1 - q_i(b)), and q(a) = 1 - l(a+1) / l(a), that is
+    sum_i w_i l_i(a) q_i(a) / l(a); q = 1 where l(a) = 0 and at the last age. Select tables
+    are refused.
+
+    The tables must share their first and last ages; the weights must be finite,
+    non-negative and sum to 1 within 1e-12. Rates are capped at 1. The result has no law.
+    Raises TableError otherwise, ValueError for an unknown method.
+    """
+    if on not in BLEND_METHODS:
+        raise ValueError(f"unknown blend method {on!r}; known: {', '.join(BLEND_METHODS)}")
+    tables = list(tables)
+    try:
+        w = np.array(weights, dtype=float)
+    except (TypeError, ValueError):
+        raise TableError("blend weights must be numbers") from None
+    if not tables:
+        raise TableError("a blend needs at least one table")
+    if w.shape != (len(tables),):
+        raise TableError(f"{w.size} weights for {len(tables)} tables")
+    if not (np.isfinite(w).all() and (w >= 0).all()):
+        raise TableError("blend weights must be finite and non-negative")
+    if abs(w.sum() - 1.0) > 1e-12:
+        raise TableError(f"blend weights must sum to 1, they sum to {w.sum()!r}")
+    first, last = tables[0].first_age, tables[0].last_age
+    if any(t.first_age != first or t.last_age != last for t in tables):
+        raise TableError("blended tables must share their first and last ages; got "
+                         + ", ".join(f"{t.first_age}-{t.last_age}" for t in tables))
+    q = np.stack([t.q for t in tables])
+    select = [t.select_period > 0 for t in tables]
+    if on == "survival":
+        if any(select):
+            raise TableError("select tables cannot be blended on survival; blend on q")
+        # l_i(a) for a = first .. last, from a radix of 1 at the first age.
+        lives = np.cumprod(np.hstack([np.ones((len(tables), 1)), 1.0 - q[:, :-1]]), axis=1)
+        alive = w @ lives
+        dying = w @ (lives * q)
+        blended = np.ones(alive.size)
+        positive = alive > 0
+        blended[positive] = dying[positive] / alive[positive]
+        blended = np.clip(blended, 0.0, 1.0)
+        blended[-1] = 1.0
+        return MortalityTable(first, blended)
+    # Where every table has q = 1 the blend keeps exactly 1 (weights sum to 1 only within 1e-12).
+    blended = np.where((q == 1.0).all(axis=0), 1.0, np.minimum(w @ q, 1.0))
+    blended[-1] = 1.0
+    if not any(select):
+        return MortalityTable(first, blended)
+    shape, start = tables[0].select_q.shape, tables[0].select_first_age
+    if not all(select) or any(t.select_q.shape != shape or t.select_first_age != start
+                              for t in tables):
+        raise TableError("select rates can only be blended between tables with the same "
+                         "select structure (first selection age, ages and select period)")
+    stacked = np.stack([t.select_q for t in tables])
+    select_q = np.where((stacked == 1.0).all(axis=0), 1.0,
+                        np.minimum(np.tensordot(w, stacked, axes=1), 1.0))
+    return MortalityTable(first, blended, start, select_q)

@@ -29,7 +29,7 @@ GOOD_ITEM = {"lives": [{"age": 65}], "timing": "advance"}
 
 #: An item with 16 bad fields: six in its life (five wrong values and one unknown field),
 #: seven wrong values in the item and three unknown item fields.
-BAD_ITEM = {"lives": [{"age": "x", "sex": "x", "duration": "x", "age_adjustment": "x",
+BAD_ITEM = {"lives": [{"age": "x", "sex": "X", "duration": "x", "age_adjustment": "x",
                        "mortality_multiplier": "x", "zz": 1}],
             "timing": "x", "frequency": "x", "term": "x", "deferral": "x", "guarantee": "x",
             "escalation": "x", "survivorship": 5, "u1": 1, "u2": 2, "u3": 3}
