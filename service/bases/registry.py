@@ -433,7 +433,8 @@ def load_basis(path: Path, name: str, *, root: Path | None = None) -> Basis:
                 blended.append(_blend(blend, spec.sexes, tables, name, found))
 
     digest = None
-    if expected <= set(digests):
+    # The digest is checked once the content is sound: that of a broken file means nothing.
+    if not found.problems and expected <= set(digests):
         digest = content_digest(doc, {k: digests[k] for k in sorted(expected)})
         status = doc.get("status") if doc.get("status") in STATUSES else None
         recorded = doc.get("digest")

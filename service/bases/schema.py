@@ -268,7 +268,7 @@ class Number(fields.Field):
     default_error_messages = _MESSAGES | {"invalid": "must be a number",
                                           "finite": "must be finite",
                                           "negative": "must not be negative",
-                                          "below_one": "must be less than 1"}
+                                          "below_one": "must be below 1"}
 
     def __init__(self, *, non_negative: bool = False, below_one: bool = False, **kwargs):
         super().__init__(**kwargs)

@@ -191,18 +191,18 @@ def test_digest_not_matching_the_content_is_refused(folder, caplog):
     assert "digest" in reason
 
 
+#: What an approved or retired basis must say besides (invented for the tests).
+APPROVAL = ('effective_date = 2026-01-01\n'
+            'approval = { by = "Fernhollow Mutual test committee", on = 2025-12-01 }\n')
+
+
 @pytest.mark.parametrize("status", ("approved", "retired"))
 def test_approved_or_retired_basis_without_a_recorded_digest_is_refused(folder, caplog, status):
     # Without a recorded digest a changed table could pass for the old version.
     write(folder, "bad.toml", basis_text("fernhollow-bad", "2026.1", law_mortality(),
-                                         status=status))
+                                         status=status, extra=APPROVAL))
     reason = assert_refused_beside_sound(folder, caplog, "bad.toml", "bad.toml", "digest")
     assert status in reason
-
-
-#: What an approved or retired basis must say besides (invented for the tests).
-APPROVAL = ('effective_date = 2026-01-01\n'
-            'approval = { by = "Fernhollow Mutual test committee", on = 2025-12-01 }\n')
 
 
 def test_approved_basis_with_its_digest_recorded_loads(folder):
