@@ -47,11 +47,17 @@ def _check_tables(args) -> int:
     # Everything printed is escaped: a file name or a refused file's content could hold
     # control characters (terminal escapes, new lines) or look-alike letters.
     for basis in registry.listing():
-        marker = " (default)" if registry.defaults.get(basis.id) == basis.version else ""
+        marker = " (default)" if registry.is_default(basis) else ""
         print(printable(f"ok       {basis.ref}{marker}  {basis.status}  {basis.digest}  "
                         f"{basis.file}"))
     for refusal in registry.refused:
-        print(f"REFUSED  {printable(refusal.file)}: {printable(refusal.detail)}")
+        if not refusal.problems:
+            print(f"REFUSED  {printable(refusal.file)}: {printable(refusal.detail)}")
+            continue
+        # Every problem found in the file, one a line, each naming the file and its line.
+        print(f"REFUSED  {printable(refusal.file)}: {len(refusal.problems)} problems")
+        for problem in refusal.problems:
+            print(f"  - {printable(problem)}")
     if not registry.bases and not registry.refused:
         print(f"error: no basis files (*.toml) under {printable(str(args.directory))}",
               file=sys.stderr)

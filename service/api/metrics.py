@@ -43,7 +43,7 @@ def publish_registry(registry) -> None:
     """Record the loaded bases as info series (called once at start-up)."""
     BASIS_INFO.clear()
     for basis in registry.listing():
-        is_default = registry.defaults.get(basis.id) == basis.version
+        is_default = registry.is_default(basis)
         BASIS_INFO.labels(basis.id, basis.version, basis.digest, basis.status,
                           str(is_default).lower()).set(1)
     BASES_REFUSED.set(len(registry.refused))

@@ -92,17 +92,17 @@ def _finite_items(values, places):
         _finite(values, f"items.{places[int(bad[0])]}")
 
 
-def _summary(basis, defaults) -> dict:
+def _summary(basis, registry) -> dict:
     return {"id": basis.id, "version": basis.version, "title": basis.title,
             "status": basis.status, "digest": basis.digest,
-            "default": defaults.get(basis.id) == basis.version}
+            "default": registry.is_default(basis)}
 
 
 @bp.get("/v1/bases")
 def list_bases():
     """List the loaded bases."""
     reg = _registry()
-    return jsonify({"bases": [_summary(b, reg.defaults) for b in reg.listing()],
+    return jsonify({"bases": [_summary(b, reg) for b in reg.listing()],
                     "audit": audit_block()})
 
 
@@ -126,7 +126,7 @@ def get_basis(ref: str):
         if "select_factors" in spec:
             entry["select_factors"] = list(spec["select_factors"])
         mortality.append(entry)
-    body = _summary(basis, reg.defaults) | {
+    body = _summary(basis, reg) | {
         "purpose": basis.purpose,
         "source": basis.source,
         "sex_distinct": basis.sex_distinct,

@@ -195,8 +195,8 @@ class TestNames:
     @pytest.mark.parametrize("bad_id", BAD_IDS.values(), ids=list(BAD_IDS))
     def test_id_outside_the_allowed_letters_is_refused(self, folder, caplog, bad_id):
         write(folder, "bad.toml", basis_text(bad_id, "2026.1", law_mortality()))
-        detail = assert_refused_beside_sound(folder, caplog, "bad.toml", "id ")
-        assert "id not allowed" in load_registry(folder).refused[0].reason
+        detail = assert_refused_beside_sound(folder, caplog, "bad.toml", "id: not allowed")
+        assert "id: not allowed" in load_registry(folder).refused[0].reason
         assert detail.isascii() and detail.isprintable()
 
     @pytest.mark.parametrize("bad_version", ("2026.1\\n", "2026_1", "\uff12\uff10\uff12\uff16",
@@ -204,7 +204,7 @@ class TestNames:
     def test_version_outside_the_allowed_letters_is_refused(self, folder, caplog,
                                                            bad_version):
         write(folder, "bad.toml", basis_text("fernhollow-bad", bad_version, law_mortality()))
-        assert_refused_beside_sound(folder, caplog, "bad.toml", "version ")
+        assert_refused_beside_sound(folder, caplog, "bad.toml", "version: not allowed")
 
     @pytest.mark.parametrize("good", ("a", "fernhollow-annuitants", "s2.v-1", "x" * 64))
     def test_allowed_ids_load(self, folder, good):

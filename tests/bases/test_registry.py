@@ -47,7 +47,10 @@ def csv_text(rates=None, *, header="age,q", newline="\n") -> str:
 
 def basis_text(basis_id: str, version: str, mortality: str, *, default: bool | None = None,
                digest: str | None = None, source: str | None = "Invented for the tests",
-               status: str = "demo", rate: float = 0.04, mthly: str = "exact") -> str:
+               status: str = "demo", rate: float = 0.04, mthly: str = "exact",
+               extra: str = "") -> str:
+    """A basis file; ``extra`` is added as it is after the top-level keys (before any
+    section)."""
     lines = [f'id = "{basis_id}"', f'version = "{version}"',
              f'title = "Fernhollow Mutual test basis {basis_id} {version}"',
              f'status = "{status}"', 'purpose = "Tests of the registry."']
@@ -57,6 +60,8 @@ def basis_text(basis_id: str, version: str, mortality: str, *, default: bool | N
         lines.append(f'digest = "{digest}"')
     if source is not None:
         lines.append(f'source = "{source}"')
+    if extra:
+        lines += [extra.rstrip("\n")]
     lines += ["", "[interest]", 'kind = "flat"', f"rate = {rate}", "",
               "[methods]", 'fractional_age = "udd"', f'mthly = "{mthly}"', "", mortality]
     return "\n".join(lines) + "\n"
@@ -186,27 +191,33 @@ def test_digest_not_matching_the_content_is_refused(folder, caplog):
     assert "digest" in reason
 
 
+#: What an approved or retired basis must say besides (invented for the tests).
+APPROVAL = ('effective_date = 2026-01-01\n'
+            'approval = { by = "Fernhollow Mutual test committee", on = 2025-12-01 }\n')
+
+
 @pytest.mark.parametrize("status", ("approved", "retired"))
 def test_approved_or_retired_basis_without_a_recorded_digest_is_refused(folder, caplog, status):
     # Without a recorded digest a changed table could pass for the old version.
     write(folder, "bad.toml", basis_text("fernhollow-bad", "2026.1", law_mortality(),
-                                         status=status))
+                                         status=status, extra=APPROVAL))
     reason = assert_refused_beside_sound(folder, caplog, "bad.toml", "bad.toml", "digest")
     assert status in reason
 
 
 def test_approved_basis_with_its_digest_recorded_loads(folder):
-    text = basis_text("fernhollow-ok", "2026.1", law_mortality(), status="demo")
+    text = basis_text("fernhollow-ok", "2026.1", law_mortality(), status="demo",
+                      extra=APPROVAL)
     write(folder, "ok.toml", text)
     digest = load_registry(folder).resolve("fernhollow-ok").digest
     write(folder, "ok.toml", basis_text("fernhollow-ok", "2026.1", law_mortality(),
-                                        status="approved", digest=digest))
+                                        status="approved", digest=digest, extra=APPROVAL))
     # The status is part of the content, so the demo digest no longer matches.
     registry = load_registry(folder)
     assert [r.file for r in registry.refused] == ["ok.toml"]
     fixed = registry.refused[0].detail.split("(")[-1].split(")")[0]
     write(folder, "ok.toml", basis_text("fernhollow-ok", "2026.1", law_mortality(),
-                                        status="approved", digest=fixed))
+                                        status="approved", digest=fixed, extra=APPROVAL))
     assert load_registry(folder).resolve("fernhollow-ok").status == "approved"
 
 
