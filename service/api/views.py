@@ -293,7 +293,7 @@ def _engine_items(basis, items, valuation_date, build=None):
                 index = tables.placeholder()
             table = tables.tables[index]
             if not table.first_age - _SNAP <= rated <= table.last_age + _SNAP \
-                    and f"lives.{k}.age" not in problems:
+                    and not any(path.startswith(f"lives.{k}") for path in problems):
                 # As the engine words it, so that both checks read alike.
                 problems[f"lives.{k}.age"] = [f"age {rated:g} is outside the table's ages "
                                               f"{table.first_age} to {table.last_age}"]

@@ -15,12 +15,14 @@ definitions are:
 
 import datetime
 import math
+import re
 from decimal import ROUND_HALF_EVEN, ROUND_HALF_UP, Decimal
 
 import numpy as np
 import pytest
 
 from service import create_app
+from service.bases import load_registry
 from service.bases.cohorts import RequestTables, cohort_table
 
 FIRST_AGE, LAST_AGE = 40, 110
@@ -38,7 +40,7 @@ MALE = makeham_q(0.0003, 3.5e-6, 1.12)
 
 
 def table_csv(q) -> str:
-    return "age,q\n" + "".join(f"{FIRST_AGE + k},{v!r}\n" for k, v in enumerate(q))
+    return "age,q\n" + "".join(f"{FIRST_AGE + k},{float(v)!r}\n" for k, v in enumerate(q))
 
 
 def scale_csv(rate, years=range(2018, 2031)) -> str:
@@ -89,6 +91,14 @@ def write(folder, name: str, text: str) -> None:
     path = folder / name
     path.parent.mkdir(parents=True, exist_ok=True)
     path.write_text(text)
+
+
+def with_digest(folder, name: str) -> None:
+    """Record the digest the loader asks a retired or approved file to carry."""
+    refusal = next(r for r in load_registry(folder).refused if r.file == name)
+    digest = re.search(r'digest = "(sha256:[0-9a-f]{64})"', refusal.detail).group(1)
+    path = folder / name
+    path.write_text(f'digest = "{digest}"\n' + path.read_text())
 
 
 def client_over(folder):
@@ -448,6 +458,7 @@ on = 2024-12-01
         old = old.replace('source = "Invented for the tests"\n',
                           'source = "Invented for the tests"\n' + self.APPROVAL, 1)
         write(folder, "fund-1.toml", old)
+        with_digest(folder, "fund-1.toml")
         write(folder, "fund-2.toml", basis_toml("fund").replace('version = "1"',
                                                                 'version = "2"'))
         client = client_over(folder)
@@ -468,6 +479,7 @@ on = 2024-12-01
         old = old.replace('source = "Invented for the tests"\n',
                           'source = "Invented for the tests"\n' + self.APPROVAL, 1)
         write(folder, "fund-1.toml", old)
+        with_digest(folder, "fund-1.toml")
         client = client_over(folder)
         assert client.post("/v1/annuity-factors", json={"basis": "fund", "items": [
             {"lives": [{"age": 60, "sex": "male"}], "timing": "advance"}]}).status_code == 404
