@@ -98,8 +98,8 @@ def _import_xml(args) -> int:
     for rel in done.data_files:
         print(printable(f"data     {out / rel}"))
     for rel in done.scale_files:
-        print(printable(f"scale    {out / rel}  (improvement scale: the registry does not "
-                        "read improvement scales yet)"))
+        print(printable(f"scale    {out / rel}  (improvement scale: name it in a basis' "
+                        "[improvement] to use it)"))
     if not done.basis_file:
         print("no basis written: the file holds no mortality table")
     return 0

@@ -8,8 +8,9 @@ other rate tables (the ``XTbML`` format) and writes, under ``outdir``:
 - ``data/<id>-<version>-<sex>.csv``: each mortality table in our CSV form (``age,q`` and, for
   a select table, ``q_select_0, q_select_1, ...``);
 - ``data/<id>-<version>-improvement-<n>.csv``: each improvement scale (``age,rate``, or
-  ``age,<year>,<year>...``), with comment lines naming where it came from. The registry does
-  not read improvement scales yet; the skeleton says so in a comment.
+  ``age,<year>,<year>...``), with comment lines naming where it came from, in the form a
+  basis' ``[improvement]`` reads; the skeleton lists each with an ``[improvement]`` section,
+  commented out, to complete (the file does not give the base year or the long-term rate).
 
 Everything is parsed and checked first, written to a temporary folder beside ``outdir``, loaded
 back with the registry's own loader, and only then moved into place: a refused file writes
@@ -816,8 +817,7 @@ def convert(raw: bytes, file_name: str, *, basis_id: str, version: str,
         header = [f"Improvement scale imported from {origin}, table {table.number}.",
                   f"{content.title or content.content_type}"
                   + (f": {table.description}" if table.description else ""),
-                  f"Annual rates of mortality improvement {shape}. The registry does not "
-                  "read improvement scales yet."]
+                  f"Annual rates of mortality improvement {shape}."]
         files[rel] = _scale_csv(table, header)
         scale_notes.append((rel, table.number, shape))
 
@@ -912,9 +912,17 @@ def _basis_toml(basis_id: str, version: str, content: _Content, origin: str, sec
         lines += ["", f"[mortality.{sex}]", f"file = {toml_string(rel)}",
                   f"source = {toml_string(table_source)}"]
     if scale_notes:
-        lines += ["", "# Improvement scales from the same file. The registry does not read "
-                      "improvement scales", "# yet: this basis values without improvement."]
-        lines += [f"#   {rel}: table {number}, {shape}" for rel, number, shape in scale_notes]
+        lines += ["", "# Improvement scales from the same file. This basis values without",
+                  "# improvement until one is named: uncomment a section, then settle the base",
+                  "# year (the calendar year of the tables' rates), the long-term rate and the",
+                  "# projection (the file gives none of them)."]
+        for rel, number, shape in scale_notes:
+            kind = "by-age" if shape == "by age" else "by-age-and-year"
+            lines += ["#", f"# [improvement]  # table {number}, {shape}",
+                      f"# file = {toml_string(rel)}", f"# kind = {toml_string(kind)}",
+                      "# base_year = 2020", "# long_term_rate = 0.0",
+                      '# projection = "generational"',
+                      f"# source = {toml_string(f'{origin}, table {number}')}"]
     return "\n".join(lines) + "\n"
 
 

@@ -338,13 +338,14 @@ class TestImprovement:
         printed = capsys.readouterr().out
         assert code == 0
         assert "no basis written: the file holds no mortality table" in printed
-        assert "the registry does not read improvement scales yet" in printed
+        assert "name it in a basis' [improvement] to use it" in printed
         files = snapshot(tmp_path / "out")
         assert list(files) == ["data/fernhollow-improvement-2026-improvement-1.csv"]
         lines = files["data/fernhollow-improvement-2026-improvement-1.csv"].decode().splitlines()
         assert lines[0].startswith("# Improvement scale imported from "
                                    "fernhollow-improvement-2026.xml (SHA-256 ")
-        assert "The registry does not read improvement scales yet." in lines[2]
+        assert lines[2] == "# Annual rates of mortality improvement by age (rows) and " \
+                           "calendar year (columns)."
         assert lines[3] == "age,2025,2026,2027,2028"  # rows by age whatever the file's order
         rows = [[float(v) for v in line.split(",")] for line in lines[4:]]
         expected = [[age, *IMPROVEMENT[age].values()] for age in IMPROVEMENT]
@@ -364,10 +365,34 @@ class TestImprovement:
         done, out = imported(tmp_path, text, improvement=[2])
         assert done.scale_files == ("data/fernhollow-annuitants-2026.1-improvement-2.csv",)
         toml_text = (out / done.basis_file).read_text()
-        assert "# yet: this basis values without improvement." in toml_text
-        assert ("#   data/fernhollow-annuitants-2026.1-improvement-2.csv: table 2, by age "
-                "(rows) and calendar year (columns)") in toml_text
+        assert "This basis values without" in toml_text
+        assert ('# [improvement]  # table 2, by age (rows) and calendar year (columns)\n'
+                '# file = "data/fernhollow-annuitants-2026.1-improvement-2.csv"') in toml_text
         assert check_tables(out, capsys)[0] == 0
+
+    def test_an_imported_scale_loads_once_its_section_is_completed(self, tmp_path):
+        # Round trip: the scale CSV the import writes is the one a basis' [improvement]
+        # reads; uncommenting the skeleton's section (base year settled) loads it.
+        ages = sorted(FERNHOLLOW)
+        scale = {age: {year: 0.01 + 0.001 * (year - 2025) for year in range(2025, 2029)}
+                 for age in ages}
+        text = document(one_axis(FERNHOLLOW), two_axes(scale, ("Age", "Year")))
+        done, out = imported(tmp_path, text, improvement=[2])
+        basis_path = out / done.basis_file
+        lines = basis_path.read_text().splitlines()
+        start = lines.index("# [improvement]  # table 2, by age (rows) and calendar year "
+                            "(columns)")
+        section = [line.removeprefix("# ") for line in lines[start:start + 8]]
+        section[0] = "[improvement]"
+        section[3] = "base_year = 2025"
+        basis_path.write_text("\n".join(lines[:start] + section + lines[start + 8:]) + "\n")
+        registry = load_registry(out)
+        assert not registry.refused, [r.detail for r in registry.refused]
+        (basis,) = registry.listing()
+        got = basis.improvement.scale
+        assert (got.base_year, got.years.tolist()) == (2025, [2025, 2026, 2027, 2028])
+        assert_allclose(got.rates, [[scale[a][y] for y in range(2025, 2029)] for a in ages],
+                        rtol=0, atol=1e-15)
 
     def test_improvement_rates_outside_half_are_refused(self, tmp_path):
         refused(tmp_path, document(one_axis({60: 1.5, 61: 1.4}),
