@@ -6,6 +6,10 @@ import pytest
 from hypothesis import settings
 
 from service import create_app
+from service.api import dump
+
+# A response key its schema does not declare fails the test that meets it.
+dump.STRICT = True
 
 # In CI every property test draws the same examples, so a red run can be replayed exactly;
 # locally they vary from run to run and find new cases.
