@@ -246,7 +246,6 @@ def _operation_rows(spec: dict) -> str:
 
 def _docs_page(spec: dict) -> str:
     version = (SWAGGER_UI_DIST / "VERSION").read_text(encoding="utf-8").strip()
-    about = html.escape(DESCRIPTION.replace(CAUTION, "").strip())
     return f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
@@ -257,10 +256,8 @@ def _docs_page(spec: dict) -> str:
 </head>
 <body>
 <p class="caution" id="caution" role="note"><strong>Caution.</strong> {html.escape(CAUTION)}</p>
-<header><h1>Annuity Factor Service</h1>
-<p>{about}</p>
-<p>The machine-readable contract is at <a href="/openapi.json">/openapi.json</a>. Try it out
-sends real requests to this service.</p></header>
+<p class="about">Try it out sends real requests to this service; the machine-readable
+contract is at <a href="/openapi.json">/openapi.json</a>.</p>
 <div id="swagger-ui"></div>
 <noscript><table><tr><th>Method</th><th>Path</th><th>What it does</th></tr>
 {_operation_rows(spec)}</table></noscript>
@@ -274,7 +271,7 @@ sends real requests to this service.</p></header>
 _DOCS_STYLE = """body{margin:0;font-family:sans-serif}
 .caution{border:2px solid #a60;background:#fff6e8;padding:.8rem 1rem;margin:1rem auto;
 max-width:1420px;box-sizing:border-box}
-header,footer{max-width:1420px;margin:0 auto;padding:0 1rem;box-sizing:border-box}
+.about,footer{max-width:1420px;margin:0 auto;padding:0 1rem;box-sizing:border-box}
 footer{color:#666;font-size:.8rem;padding:1rem}
 """
 
