@@ -1,12 +1,13 @@
 """The OpenAPI 3.1 contract, generated from the marshmallow schemas and the operations
 recorded on the routes (service.api.contract), and the /docs page."""
 
+import functools
 import html
+import importlib.util
 import json
 import re
 from pathlib import Path
 
-import flask_swagger_ui
 from apispec import APISpec
 from apispec.ext.marshmallow import MarshmallowPlugin
 from flask import Blueprint, Flask, Response, current_app, jsonify, send_from_directory
@@ -201,9 +202,17 @@ def openapi_json():
     return jsonify(_app_spec())
 
 
-#: Swagger UI's own files, as the flask-swagger-ui package ships them (nothing is fetched
-#: from elsewhere, at build or at run time).
-SWAGGER_UI_DIST = Path(flask_swagger_ui.__file__).resolve().parent / "dist"
+@functools.cache
+def swagger_ui_dist() -> Path:
+    """Swagger UI's own files, as the flask-swagger-ui package ships them (nothing is fetched
+    from elsewhere, at build or at run time). Looked up on first use: building the contract
+    (write-openapi) does not need them."""
+    found = importlib.util.find_spec("flask_swagger_ui")
+    if found is None or found.origin is None:
+        raise RuntimeError("/docs needs the flask-swagger-ui package (make install)")
+    return Path(found.origin).resolve().parent / "dist"
+
+
 _SWAGGER_UI_FILES = ("swagger-ui.css", "swagger-ui-bundle.js", "favicon-32x32.png",
                      "favicon-16x16.png", "LICENSE", "VERSION")
 
@@ -245,7 +254,7 @@ def _operation_rows(spec: dict) -> str:
 
 
 def _docs_page(spec: dict) -> str:
-    version = (SWAGGER_UI_DIST / "VERSION").read_text(encoding="utf-8").strip()
+    version = (swagger_ui_dist() / "VERSION").read_text(encoding="utf-8").strip()
     return f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8">
 <meta name="viewport" content="width=device-width, initial-scale=1">
@@ -303,7 +312,7 @@ def docs_asset(name: str):
     """Swagger UI's files, from the installed package (only the ones the page uses)."""
     if name not in _SWAGGER_UI_FILES:
         raise ProblemError(404, f"No such file: {name}.")
-    response = send_from_directory(SWAGGER_UI_DIST, name, max_age=3600)
+    response = send_from_directory(swagger_ui_dist(), name, max_age=3600)
     if name in ("LICENSE", "VERSION"):
         response.mimetype = "text/plain"
     return _docs_response(response, response.mimetype)
