@@ -5,7 +5,7 @@ BIN := $(VENV)/bin
 PORT ?= 8000
 STAMP := $(VENV)/.installed
 
-.PHONY: install run test lint fuzz faults bench openapi check-tables clean
+.PHONY: install browser run test lint fuzz faults bench openapi check-tables clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -23,8 +23,19 @@ install: $(STAMP)
 run: install
 	$(BIN)/annuity-service serve --port $(PORT)
 
-test: install
-	$(BIN)/python -m pytest -q
+# Debian's Chromium and its chromedriver, for the /docs test in a real browser
+# (tests/browser); installed when missing (CI runs as root on a fresh Debian machine).
+SUDO := $(shell [ "$$(id -u)" = 0 ] || echo sudo)
+browser:
+	@if [ ! -x /usr/bin/chromium ] || [ ! -x /usr/bin/chromedriver ]; then \
+		echo "installing chromium and chromium-driver from Debian's packages (apt-get) ..."; \
+		$(SUDO) apt-get update -qq && \
+		DEBIAN_FRONTEND=noninteractive $(SUDO) apt-get install -y -qq chromium chromium-driver; \
+	fi
+
+# ANNUITY_REQUIRE_BROWSER: the browser test fails rather than skips without Chromium.
+test: install browser
+	ANNUITY_REQUIRE_BROWSER=1 $(BIN)/python -m pytest -q
 
 fuzz: install
 	$(BIN)/python -m tests.live.fuzz --max-examples 300

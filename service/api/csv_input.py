@@ -16,10 +16,12 @@ names (``timing``, ``frequency``, ``term``, ``term_months``, ``deferral``, ``gua
 survivorship amounts.
 """
 
+import copy
 import csv
 import io
 
 from flask import request
+from marshmallow import Schema, missing
 
 from service.api.body import _read_body
 from service.api.problems import ProblemError
@@ -34,6 +36,44 @@ _NUMBERS = {"age", "age_adjustment", "mortality_multiplier", "flat_extra", "term
 #: Query parameters that are request options, and how to read them.
 OPTIONS = {"basis": str, "interest_rate": float, "on_error": str, "buckets": str,
            "valuation_date": str}
+
+#: For the contract: what a CSV body is.
+CSV_DOC = (
+    "JSON, or CSV (Content-Type: text/csv) with one item per row and the basis and options "
+    "in the query string. CSV columns: id; the first life's age, sex, duration, "
+    "age_adjustment, mortality_multiplier; a second life's age_2, sex_2, duration_2, "
+    "age_adjustment_2, mortality_multiplier_2; the item's own fields by their JSON names "
+    "(timing, frequency, term, term_months, deferral, guarantee, escalation, survivorship as "
+    "a shortcut, start_requires; for insurance cover, benefit_timing, on); both, first_only, "
+    "second_only for survivorship amounts. An empty cell is an absent field. Errors name the "
+    "row (the file's line, the header being line 1) and column: rows.3.age.")
+
+_OPTION_SCHEMAS: dict[type, type[Schema]] = {}
+
+
+def options_schema(request_schema: type[Schema]) -> type[Schema]:
+    """The query parameters a CSV batch for ``request_schema`` may give: that schema's own
+    fields of the names in OPTIONS (so the JSON field and the query option are one field),
+    described as options of a CSV body, never required, and without examples or defaults (a
+    query option sent with a JSON body is refused, so a client that fills parameters in from
+    them must not send one). Only the contract reads it; csv_batch reads the query itself."""
+    if request_schema not in _OPTION_SCHEMAS:
+        chosen = {}
+        for name, declared in request_schema._declared_fields.items():
+            if name not in OPTIONS:
+                continue
+            option = copy.deepcopy(declared)
+            meta = {k: v for k, v in option.metadata.items() if k != "example"}
+            meta["description"] = "With a CSV body: " + meta.get("description", "as the "
+                                                                               "JSON field.")
+            option.metadata = meta
+            option.required = False
+            option.allow_none = False
+            option.load_default = missing
+            chosen[name] = option
+        _OPTION_SCHEMAS[request_schema] = Schema.from_dict(
+            chosen, name=f"{request_schema.__name__.removesuffix('Schema')}CsvOptions")
+    return _OPTION_SCHEMAS[request_schema]
 
 
 def _cell(column: str, text: str):

@@ -20,6 +20,8 @@ from prometheus_client import (
     multiprocess,
 )
 
+from service.api.contract import Reply, operation
+
 bp = Blueprint("metrics", __name__)
 
 REQUESTS = Counter("annuity_http_requests_total", "HTTP requests answered, by route and status.",
@@ -72,6 +74,9 @@ def observe(route: str, method: str, status: int, seconds: float) -> None:
 
 
 @bp.get("/metrics")
+@operation("metrics", "Prometheus text format: requests and latency by route and status, "
+                      "factors computed, one info series per loaded basis with its digest.",
+           responses={200: Reply(None, "The metrics.", media="text/plain")})
 def metrics():
     """Prometheus text format."""
     if os.environ.get("PROMETHEUS_MULTIPROC_DIR"):

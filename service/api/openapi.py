@@ -1,13 +1,20 @@
-"""The OpenAPI 3.1 contract, generated from the marshmallow schemas, and the /docs page."""
+"""The OpenAPI 3.1 contract, generated from the marshmallow schemas and the operations
+recorded on the routes (service.api.contract), and the /docs page."""
 
+import functools
 import html
+import importlib.util
 import json
+import re
+from pathlib import Path
 
 from apispec import APISpec
 from apispec.ext.marshmallow import MarshmallowPlugin
-from flask import Blueprint, Response, current_app, jsonify
+from flask import Blueprint, Flask, Response, current_app, jsonify, send_from_directory
 
+from service.api import contract
 from service.api import schemas as s
+from service.api.problems import ProblemError
 
 bp = Blueprint("contract", __name__)
 
@@ -26,59 +33,8 @@ DESCRIPTION = (
     + CAUTION
 )
 
-_ERRORS = {
-    "400": "Malformed JSON, a body that is not UTF-8, duplicate keys, or NaN/Infinity literals.",
-    "404": "No loaded basis answers to the reference.",
-    "413": "Body or batch too large, or the batch needs more payment dates than one request "
-           "may evaluate.",
-    "415": "The body is not application/json (nor text/csv, where a batch may be CSV), or "
-           "not UTF-8.",
-    "406": "The Accept header allows neither application/json nor text/csv.",
-    "422": "Well-formed but invalid or impossible input; `errors` maps field paths to messages.",
-    "503": "The valuation was abandoned at its deadline (busy service or heavy request); "
-           "retry later (Retry-After) or split the batch.",
-    "401": "Bearer-token authentication is configured and no valid token was sent.",
-}
-
-
-CSV_DOC = (
-    "JSON, or CSV (Content-Type: text/csv) with one item per row and the basis and options "
-    "in the query string. CSV columns: id; the first life's age, sex, duration, "
-    "age_adjustment, mortality_multiplier; a second life's age_2, sex_2, duration_2, "
-    "age_adjustment_2, mortality_multiplier_2; the item's own fields by their JSON names "
-    "(timing, frequency, term, term_months, deferral, guarantee, escalation, survivorship as "
-    "a shortcut, start_requires; for insurance cover, benefit_timing, on); both, first_only, "
-    "second_only for survivorship amounts. An empty cell is an absent field. Errors name the "
-    "row (the file's line, the header being line 1) and column: rows.3.age.")
-CSV_EXAMPLE = ("id,age,sex,timing,frequency,guarantee\n"
-               "FM-20417,67,female,advance,12,5\nFM-20418,71.5,male,arrears,4,\n")
-
-
-def _problem_responses(*codes):
-    return {code: {"description": _ERRORS[code],
-                   "content": {"application/problem+json": {
-                       "schema": {"$ref": "#/components/schemas/Problem"}}}}
-            for code in codes}
-
-
-def _ok(schema: str, description: str, extra_content: dict | None = None):
-    content = {"application/json": {"schema": {"$ref": f"#/components/schemas/{schema}"}}}
-    if extra_content:
-        content |= extra_content
-    return {"200": {"description": description, "content": content,
-                    "headers": {"X-Request-ID": {"schema": {"type": "string"},
-                                                 "description": "The request id (echoed "
-                                                                "when the caller sent one)."}}}}
-
-
 #: /v1 operations take a bearer token when the operator configures tokens, none otherwise.
 _AUTH = [{}, {"bearer": []}]
-
-
-def _ref_param():
-    return {"name": "ref", "in": "path", "required": True,
-            "description": "ID (the default version) or ID@VERSION.",
-            "schema": {"type": "string", "pattern": "^[^/]+$"}}
 
 
 def _survivorship(converter, field, **kwargs):
@@ -87,8 +43,104 @@ def _survivorship(converter, field, **kwargs):
     return {}
 
 
-def build_spec(max_items: int, version: str = "") -> dict:
-    """Return the OpenAPI document as a dict (deterministic for a given code version)."""
+def _header(name: str) -> dict:
+    entry = contract.HEADERS[name]
+    return {"description": entry["description"],
+            "schema": entry.get("schema", {"type": "string"}),
+            **({"required": True} if name in contract.EVERY_RESPONSE else {})}
+
+
+def _headers(names) -> dict:
+    return {name: _header(name) for name in (*contract.EVERY_RESPONSE, *names)}
+
+
+def _reply(reply: contract.Reply) -> dict:
+    media = {"schema": reply.schema if reply.schema is not None else {"type": "string"}}
+    if reply.example is not None:
+        media["example"] = reply.example
+    content = {reply.media: media}
+    if reply.csv is not None:
+        content["text/csv"] = {"schema": {"type": "string"}}
+    return {"description": reply.description, "content": content,
+            "headers": _headers((*reply.headers, *(reply.csv or ())))}
+
+
+def _problem(code: int) -> dict:
+    return {"description": contract.PROBLEMS[code],
+            "content": {"application/problem+json": {"schema": s.ProblemSchema}},
+            "headers": _headers(contract.PROBLEM_HEADERS.get(code, ()))}
+
+
+def _operation(op: contract.Operation, max_items: int) -> dict:
+    """The OpenAPI operation for a recorded one (schemas still as marshmallow classes:
+    apispec's plugin expands and references them)."""
+    out: dict = {"operationId": op.operation_id,
+                 "summary": op.summary.format(max_items=max_items)}
+    if op.description:
+        out["description"] = op.description
+    if op.auth:
+        out["security"] = _AUTH
+    parameters = [{"in": where, "schema": schema} for where, schema in (
+        ("path", op.path), ("query", op.query),
+        ("query", op.csv_body.options if op.csv_body else None)) if schema is not None]
+    if parameters:
+        out["parameters"] = parameters
+    if op.body is not None:
+        json_body = {"schema": op.body}
+        if op.examples:
+            json_body["examples"] = {name: dict(example)
+                                     for name, example in op.examples.items()}
+        content = {"application/json": json_body}
+        body = {"required": True, "content": content}
+        if op.csv_body is not None:
+            content["text/csv"] = {"schema": {"type": "string"},
+                                   "example": op.csv_body.example}
+            body["description"] = op.csv_body.description
+        out["requestBody"] = body
+    out["responses"] = {str(code): _reply(reply) for code, reply in op.responses.items()}
+    out["responses"] |= {str(code): _problem(code) for code in op.problems}
+    return out
+
+
+def _with_parameter_examples(operation: dict, examples: dict) -> None:
+    """Set the examples of the expanded path and query parameters."""
+    for parameter in operation.get("parameters", ()):
+        if parameter["name"] in examples:
+            parameter["example"] = examples[parameter["name"]]
+
+
+_RULE_ARGUMENT = re.compile(r"<(?:[^<>:]+:)?([^<>]+)>")
+
+
+def documented_routes(app: Flask):
+    """(OpenAPI path, method, recorded operation) for every documented route of ``app``,
+    from its url_map (HEAD and OPTIONS, which Flask adds, are not listed)."""
+    for rule in app.url_map.iter_rules():
+        op = contract.operation_of(app.view_functions[rule.endpoint])
+        if op is None:
+            continue
+        path = _RULE_ARGUMENT.sub(r"{\1}", rule.rule)
+        for method in sorted((rule.methods or set()) - {"HEAD", "OPTIONS"}):
+            yield path, method.lower(), op
+
+
+def routes_app() -> Flask:
+    """An app holding the service's routes alone (no bases loaded): what the contract of the
+    committed file is built from."""
+    from service.api import route_blueprints
+
+    app = Flask("service.api.routes")
+    app.url_map.merge_slashes = False
+    for blueprint in route_blueprints():
+        app.register_blueprint(blueprint)
+    return app
+
+
+def build_spec(max_items: int, version: str = "", app: Flask | None = None) -> dict:
+    """Return the OpenAPI document as a dict (deterministic for a given code version).
+
+    Components come from the marshmallow schemas; paths from the operations recorded on the
+    view functions of ``app`` (default: :func:`routes_app`), walked through its url_map."""
     plugin = MarshmallowPlugin(schema_name_resolver=lambda schema: None)
     spec = APISpec(title="Annuity Factor Service", version=version or "0.1.0",
                    openapi_version="3.1.0", plugins=[plugin],
@@ -118,104 +170,17 @@ def build_spec(max_items: int, version: str = "") -> dict:
         ("ProjectionResponse", s.ProjectionResponseSchema),
     ]:
         spec.components.schema(name, schema=schema)
-    spec.path("/v1/bases", operations={"get": {
-        "operationId": "listBases", "summary": "List the loaded bases.", "security": _AUTH,
-        "responses": _ok("BasisList", "Every loaded basis version.")
-        | _problem_responses("401")}})
-    spec.path("/v1/bases/{ref}", parameters=[_ref_param()], operations={"get": {
-        "operationId": "getBasis", "summary": "One basis in full.", "security": _AUTH,
-        "responses": _ok("BasisDetail", "The basis.") | _problem_responses("401", "404")}})
-    spec.path("/v1/bases/{ref}/life-table", parameters=[_ref_param()], operations={"get": {
-        "operationId": "getLifeTable", "security": _AUTH,
-        "summary": "The basis' table as rows (age, q, p, l, d, curtate expectation) for one "
-                   "life followed from from_age; with duration, a life selected duration "
-                   "years before from_age.",
-        # One parameter per field of the query schema (apispec expands it).
-        "parameters": [{"in": "query", "schema": s.LifeTableQuerySchema}],
-        "responses": _ok("LifeTable", "The rows; as CSV with Accept: text/csv (the audit "
-                                      "block then travels in X- headers).",
-                         {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("401", "404", "406", "422")}})
-    csv_body = {"text/csv": {"schema": {"type": "string"}, "example": CSV_EXAMPLE}}
-    csv_params = [
-        {"name": "basis", "in": "query", "schema": {"type": "string"},
-         "description": "With a CSV body: the basis ref (ID or ID@VERSION)."},
-        {"name": "interest_rate", "in": "query", "schema": {"type": "number"},
-         "description": "With a CSV body: a flat rate replacing the basis' interest."},
-        {"name": "on_error", "in": "query", "schema": {"type": "string",
-                                                       "enum": ["reject", "per-item"]},
-         "description": "With a CSV body: as the JSON field."},
-        {"name": "valuation_date", "in": "query", "schema": {"type": "string",
-                                                             "format": "date"},
-         "description": "With a CSV body: as the JSON field."}]
-    spec.path("/v1/annuity-factors", operations={"post": {
-        "operationId": "annuityFactors", "security": _AUTH,
-        "summary": f"One or many annuity factors under one basis (at most {max_items} items).",
-        "parameters": csv_params,
-        "requestBody": {"required": True, "description": CSV_DOC, "content": {
-            "application/json": {"schema": {"$ref": "#/components/schemas/FactorRequest"}},
-            **csv_body}},
-        "responses": _ok("FactorResponse", "results[i] answers items[i]. With Accept: text/csv "
-                                           "one row per item (id, value, the measures and "
-                                           "spread asked for, the method), the audit block in "
-                                           "X- headers.",
-                         {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
-    spec.path("/v1/insurance-factors", operations={"post": {
-        "operationId": "insuranceFactors", "security": _AUTH,
-        "summary": f"One or many insurance factors under one basis (at most {max_items} "
-                   "items), each with its second moment.",
-        "parameters": csv_params,
-        "requestBody": {"required": True, "description": CSV_DOC, "content": {
-            "application/json": {"schema": {"$ref": "#/components/schemas/InsuranceRequest"}},
-            **csv_body}},
-        "responses": _ok("InsuranceResponse", "results[i] answers items[i]; as CSV (one row "
-                                              "per item) with Accept: text/csv.",
-                         {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
-    spec.path("/v1/cash-flow-projections", operations={"post": {
-        "operationId": "cashFlowProjections", "security": _AUTH,
-        "summary": f"The expected payments of a portfolio of annuities (at most {max_items} "
-                   "items, each with its annual amount), aggregated by month, year or payment "
-                   "time, with their present values; as CSV with Accept: text/csv.",
-        "parameters": [*csv_params, {
-            "name": "buckets", "in": "query",
-            "schema": {"type": "string", "enum": ["monthly", "annual", "exact"]},
-            "description": "With a CSV body: as the JSON field."}],
-        "requestBody": {"required": True, "description": CSV_DOC + " A CSV projection adds "
-                                                                   "an amount column.",
-                        "content": {"application/json": {"schema": {
-                            "$ref": "#/components/schemas/ProjectionRequest"}}, **csv_body}},
-        "responses": _ok("ProjectionResponse", "One row per period with a payment.",
-                         {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "401", "404", "406", "413", "415", "422", "503")}})
-    spec.path("/v1/cash-flow-schedules", operations={"post": {
-        "operationId": "cashFlowSchedules", "security": _AUTH,
-        "summary": "The expected payment schedule behind one factor, as JSON or as CSV "
-                   "(Accept: text/csv; the audit block then travels in X- headers).",
-        "requestBody": {"required": True, "content": {"application/json": {
-            "schema": {"$ref": "#/components/schemas/ScheduleRequest"}}}},
-        "responses": _ok("ScheduleResponse", "One row per possible payment date (one per year "
-                                             "of the window for continuous payments).",
-                         {"text/csv": {"schema": {"type": "string"}}})
-        | _problem_responses("400", "401", "404", "406", "413", "415", "422")}})
-    spec.path("/livez", operations={"get": {
-        "operationId": "livez", "summary": "Liveness: the process answers.",
-        "responses": _ok("Health", "Alive.")}})
-    spec.path("/readyz", operations={"get": {
-        "operationId": "readyz",
-        "summary": "Readiness: 200 when every required basis is loaded and verified, else 503.",
-        "responses": _ok("Health", "Ready.") | {"503": {
-            "description": "Not ready: a required basis is missing or refused.",
-            "content": {"application/json": {
-                "schema": {"$ref": "#/components/schemas/Health"}}}}}}})
-    spec.path("/metrics", operations={"get": {
-        "operationId": "metrics",
-        "summary": "Prometheus text format: requests and latency by route and status, "
-                   "factors computed, one info series per loaded basis with its digest.",
-        "responses": {"200": {"description": "The metrics.",
-                              "content": {"text/plain": {"schema": {"type": "string"}}}}}}})
-    return spec.to_dict()
+    by_path: dict[str, dict] = {}
+    examples: dict[tuple[str, str], dict] = {}
+    for path, method, op in documented_routes(app or routes_app()):
+        by_path.setdefault(path, {})[method] = _operation(op, max_items)
+        examples[path, method] = dict(op.parameter_examples)
+    for path, operations in by_path.items():
+        spec.path(path, operations=operations)
+    document = spec.to_dict()
+    for (path, method), given in examples.items():
+        _with_parameter_examples(document["paths"][path][method], given)
+    return document
 
 
 def spec_json(max_items: int, version: str = "") -> str:
@@ -223,10 +188,11 @@ def spec_json(max_items: int, version: str = "") -> str:
 
 
 def _app_spec() -> dict:
-    """The contract for this app's configuration, built once per app."""
+    """The contract for this app's configuration and routes, built once per app."""
     if "openapi" not in current_app.extensions:
-        current_app.extensions["openapi"] = build_spec(current_app.config["MAX_ITEMS"],
-                                                       current_app.config["SERVICE_VERSION"])
+        current_app.extensions["openapi"] = build_spec(
+            current_app.config["MAX_ITEMS"], current_app.config["SERVICE_VERSION"],
+            current_app._get_current_object())
     return current_app.extensions["openapi"]
 
 
@@ -236,34 +202,117 @@ def openapi_json():
     return jsonify(_app_spec())
 
 
-@bp.get("/docs")
-def docs():
-    """A browsable page of the contract."""
-    spec = _app_spec()
+@functools.cache
+def swagger_ui_dist() -> Path:
+    """Swagger UI's own files, as the flask-swagger-ui package ships them (nothing is fetched
+    from elsewhere, at build or at run time). Looked up on first use: building the contract
+    (write-openapi) does not need them."""
+    found = importlib.util.find_spec("flask_swagger_ui")
+    if found is None or found.origin is None:
+        raise RuntimeError("/docs needs the flask-swagger-ui package (make install)")
+    return Path(found.origin).resolve().parent / "dist"
+
+
+_SWAGGER_UI_FILES = ("swagger-ui.css", "swagger-ui-bundle.js", "favicon-32x32.png",
+                     "favicon-16x16.png", "LICENSE", "VERSION")
+
+#: The /docs page loads scripts and styles from this service only, and sends requests (Try
+#: it out) to this service only; the page's own script is a file, so no inline script runs.
+#: Styles allow 'unsafe-inline': Swagger UI sets style attributes in the markup it renders.
+DOCS_CSP = ("default-src 'none'; script-src 'self'; style-src 'self' 'unsafe-inline'; "
+            "img-src 'self' data:; connect-src 'self'; font-src 'self'; base-uri 'none'; "
+            "form-action 'none'; frame-ancestors 'none'")
+_DOCS_HEADERS = {"Content-Security-Policy": DOCS_CSP, "X-Content-Type-Options": "nosniff",
+                 "Referrer-Policy": "no-referrer", "X-Frame-Options": "DENY"}
+
+_DOCS_SCRIPT = """// Swagger UI on this service's contract (/openapi.json).
+window.addEventListener("load", function () {
+  window.ui = SwaggerUIBundle({
+    url: "/openapi.json",
+    dom_id: "#swagger-ui",
+    deepLinking: true,
+    presets: [SwaggerUIBundle.presets.apis],
+    layout: "BaseLayout",
+    validatorUrl: null,
+    displayRequestDuration: true,
+    defaultModelsExpandDepth: 0,
+    tryItOutEnabled: false
+  });
+});
+"""
+
+
+def _operation_rows(spec: dict) -> str:
+    """The operations as table rows (the page without scripts lists them)."""
     rows = []
     for path, ops in spec["paths"].items():
         for method, op in ops.items():
-            if method == "parameters":
-                continue
             rows.append(f"<tr><td><code>{method.upper()}</code></td><td><code>"
                         f"{html.escape(path)}</code></td><td>{html.escape(op['summary'])}</td>"
                         "</tr>")
-    schemas = "".join(
-        f"<details><summary><code>{html.escape(name)}</code></summary><pre>"
-        f"{html.escape(json.dumps(body, indent=2))}</pre></details>"
-        for name, body in spec["components"]["schemas"].items())
-    page = f"""<!doctype html>
-<html lang="en"><head><meta charset="utf-8"><title>Annuity Factor Service</title>
-<style>body{{font-family:sans-serif;max-width:60rem;margin:2rem auto;padding:0 1rem}}
-td,th{{padding:.3rem .6rem;text-align:left;vertical-align:top}}
-.caution{{border:2px solid #a60;padding:.8rem;background:#fff6e8}}</style></head>
-<body><h1>Annuity Factor Service</h1>
-<p class="caution"><strong>Caution.</strong> {html.escape(CAUTION)}</p>
-<p>{html.escape(DESCRIPTION.replace(CAUTION, ''))}</p>
-<p>The machine-readable contract is at <a href="/openapi.json">/openapi.json</a>.</p>
-<h2>Operations</h2><table><tr><th>Method</th><th>Path</th><th>What it does</th></tr>
-{''.join(rows)}</table>
-<h2>Schemas</h2>{schemas}
+    return "\n".join(rows)
+
+
+def _docs_page(spec: dict) -> str:
+    version = (swagger_ui_dist() / "VERSION").read_text(encoding="utf-8").strip()
+    return f"""<!doctype html>
+<html lang="en"><head><meta charset="utf-8">
+<meta name="viewport" content="width=device-width, initial-scale=1">
+<title>Annuity Factor Service</title>
+<link rel="icon" type="image/png" href="/docs/assets/favicon-32x32.png">
+<link rel="stylesheet" href="/docs/assets/swagger-ui.css">
+<link rel="stylesheet" href="/docs/page.css">
+</head>
+<body>
+<p class="caution" id="caution" role="note"><strong>Caution.</strong> {html.escape(CAUTION)}</p>
+<p class="about">Try it out sends real requests to this service; the machine-readable
+contract is at <a href="/openapi.json">/openapi.json</a>.</p>
+<div id="swagger-ui"></div>
+<noscript><table><tr><th>Method</th><th>Path</th><th>What it does</th></tr>
+{_operation_rows(spec)}</table></noscript>
+<footer>Swagger UI {html.escape(version)}, as shipped by the flask-swagger-ui package.</footer>
+<script src="/docs/assets/swagger-ui-bundle.js"></script>
+<script src="/docs/page.js"></script>
 </body></html>
 """
-    return Response(page, mimetype="text/html")
+
+
+_DOCS_STYLE = """body{margin:0;font-family:sans-serif}
+.caution{border:2px solid #a60;background:#fff6e8;padding:.8rem 1rem;margin:1rem auto;
+max-width:1420px;box-sizing:border-box}
+.about,footer{max-width:1420px;margin:0 auto;padding:0 1rem;box-sizing:border-box}
+footer{color:#666;font-size:.8rem;padding:1rem}
+"""
+
+
+def _docs_response(body, mimetype: str) -> Response:
+    response = body if isinstance(body, Response) else Response(body, mimetype=mimetype)
+    response.headers.update(_DOCS_HEADERS)
+    return response
+
+
+@bp.get("/docs")
+def docs():
+    """An interactive page of the contract: the caution, then Swagger UI."""
+    return _docs_response(_docs_page(_app_spec()), "text/html")
+
+
+@bp.get("/docs/page.js")
+def docs_script():
+    return _docs_response(_DOCS_SCRIPT, "text/javascript")
+
+
+@bp.get("/docs/page.css")
+def docs_style():
+    return _docs_response(_DOCS_STYLE, "text/css")
+
+
+@bp.get("/docs/assets/<name>")
+def docs_asset(name: str):
+    """Swagger UI's files, from the installed package (only the ones the page uses)."""
+    if name not in _SWAGGER_UI_FILES:
+        raise ProblemError(404, f"No such file: {name}.")
+    response = send_from_directory(swagger_ui_dist(), name, max_age=3600)
+    if name in ("LICENSE", "VERSION"):
+        response.mimetype = "text/plain"
+    return _docs_response(response, response.mimetype)

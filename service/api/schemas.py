@@ -787,6 +787,13 @@ class LifeTableRowSchema(Schema):
     a_due = fields.Float(metadata={"description": "Whole-life annuity-due N / D at the rate."})
 
 
+class BasisPathSchema(Schema):
+    """The basis named in a path (/v1/bases/{ref}); a ref never holds a slash."""
+
+    ref = fields.String(required=True, validate=validate.Regexp(r"^[^/]+$"), metadata={
+        "description": "ID (the default version) or ID@VERSION."})
+
+
 class LifeTableQuerySchema(_Strict):
     from_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))
     to_age = fields.Integer(load_default=None, validate=validate.Range(0, 200))

@@ -10,6 +10,7 @@ import numpy as np
 from flask import Blueprint, Response, current_app, jsonify, request
 from marshmallow import Schema, ValidationError, fields, validate
 
+from service.api import examples as ex
 from service.api.audit import (
     audit_block,
     improvement_block,
@@ -19,19 +20,29 @@ from service.api.audit import (
     use_valuation_date,
 )
 from service.api.body import flatten_errors, json_body, load
-from service.api.csv_input import column_of, csv_batch, row_path
+from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
+from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
     SEX_VALUES,
+    BasisDetailSchema,
+    BasisListSchema,
+    BasisPathSchema,
     FactorRequestSchema,
+    FactorResponseSchema,
+    HealthSchema,
     InsuranceItemSchema,
     InsuranceRequestSchema,
+    InsuranceResponseSchema,
     ItemSchema,
     LifeTableQuerySchema,
+    LifeTableSchema,
     ProjectionItemSchema,
     ProjectionRequestSchema,
+    ProjectionResponseSchema,
     ScheduleRequestSchema,
+    ScheduleResponseSchema,
 )
 from service.api.state import current
 from service.api.warnings import request_warnings
@@ -99,6 +110,8 @@ def _summary(basis, registry) -> dict:
 
 
 @bp.get("/v1/bases")
+@operation("listBases", "List the loaded bases.", auth=True, problems=(401,),
+           responses={200: Reply(BasisListSchema, "Every loaded basis version.")})
 def list_bases():
     """List the loaded bases."""
     reg = _registry()
@@ -107,6 +120,9 @@ def list_bases():
 
 
 @bp.get("/v1/bases/<ref>")
+@operation("getBasis", "One basis in full.", auth=True, path=BasisPathSchema,
+           parameter_examples=ex.BASIS_REF, problems=(401, 404),
+           responses={200: Reply(BasisDetailSchema, "The basis.")})
 def get_basis(ref: str):
     """One basis in full."""
     reg = _registry()
@@ -159,6 +175,14 @@ _COMMUTATION_COLUMNS = ("D", "N", "C", "M", "S", "R", "a_due")
 
 
 @bp.get("/v1/bases/<ref>/life-table")
+@operation("getLifeTable", "The basis' table as rows (age, q, p, l, d, curtate expectation) for "
+                           "one life followed from from_age; with duration, a life selected "
+                           "duration years before from_age.",
+           auth=True, path=BasisPathSchema, query=LifeTableQuerySchema,
+           parameter_examples=ex.LIFE_TABLE, problems=(401, 404, 406, 422),
+           responses={200: Reply(LifeTableSchema, "The rows; as CSV with Accept: text/csv (the "
+                                                  "audit block then travels in X- headers).",
+                                 csv=(*AUDIT_CSV, "X-Radix", "X-Radix-Age"))})
 def life_table(ref: str):
     """The basis' table as rows for one life followed from an age."""
     wants_csv = _wants_csv()
@@ -590,6 +614,15 @@ def _placed(exc: ItemError, req: _Request) -> ItemError:
 
 
 @bp.post("/v1/annuity-factors")
+@operation("annuityFactors", "One or many annuity factors under one basis (at most {max_items} "
+                             "items).",
+           auth=True, body=FactorRequestSchema, examples=ex.ANNUITY_FACTORS,
+           csv_body=CsvBody(CSV_DOC, ex.CSV_ANNUITIES, options_schema(FactorRequestSchema)),
+           problems=(400, 401, 404, 406, 413, 415, 422, 503),
+           responses={200: Reply(FactorResponseSchema, "results[i] answers items[i]. With "
+                                 "Accept: text/csv one row per item (id, value, the measures "
+                                 "and spread asked for, the method), the audit block in X- "
+                                 "headers.", csv=(*AUDIT_CSV, "X-Warnings"))})
 def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
@@ -645,6 +678,14 @@ def _add_spread(results, tables, items, asked, valuation, limit, deadline):
 
 
 @bp.post("/v1/insurance-factors")
+@operation("insuranceFactors", "One or many insurance factors under one basis (at most "
+                               "{max_items} items), each with its second moment.",
+           auth=True, body=InsuranceRequestSchema, examples=ex.INSURANCE_FACTORS,
+           csv_body=CsvBody(CSV_DOC, ex.CSV_INSURANCE, options_schema(InsuranceRequestSchema)),
+           problems=(400, 401, 404, 406, 413, 415, 422, 503),
+           responses={200: Reply(InsuranceResponseSchema, "results[i] answers items[i]; as CSV "
+                                 "(one row per item) with Accept: text/csv.",
+                                 csv=(*AUDIT_CSV, "X-Warnings"))})
 def insurance_factors():
     """One or many insurance factors, with their second moments, under one basis."""
     wants_csv = _wants_csv()
@@ -669,6 +710,17 @@ def insurance_factors():
 
 
 @bp.post("/v1/cash-flow-projections")
+@operation("cashFlowProjections", "The expected payments of a portfolio of annuities (at most "
+                                  "{max_items} items, each with its annual amount), aggregated "
+                                  "by month, year or payment time, with their present values; "
+                                  "as CSV with Accept: text/csv.",
+           auth=True, body=ProjectionRequestSchema, examples=ex.CASH_FLOW_PROJECTIONS,
+           csv_body=CsvBody(CSV_DOC + " A CSV projection adds an amount column.",
+                            ex.CSV_PROJECTIONS, options_schema(ProjectionRequestSchema)),
+           problems=(400, 401, 404, 406, 413, 415, 422, 503),
+           responses={200: Reply(ProjectionResponseSchema, "One row per period with a payment.",
+                                 csv=(*AUDIT_CSV, "X-Total-Payment", "X-Total-Present-Value",
+                                      "X-Items-Valued", "X-Items-Refused", "X-Warnings"))})
 def cash_flow_projections():
     """The expected payments of a portfolio of annuities, aggregated by period."""
     wants_csv = _wants_csv()
@@ -784,6 +836,17 @@ def _add_measures(results, asked, got, factors):
 
 
 @bp.post("/v1/cash-flow-schedules")
+@operation("cashFlowSchedules", "The expected payment schedule behind one factor, as JSON or as "
+                                "CSV (Accept: text/csv; the audit block then travels in X- "
+                                "headers).",
+           auth=True, body=ScheduleRequestSchema, examples=ex.CASH_FLOW_SCHEDULES,
+           problems=(400, 401, 404, 406, 413, 415, 422),
+           responses={200: Reply(ScheduleResponseSchema, "One row per possible payment date "
+                                 "(one per year of the window for continuous payments).",
+                                 csv=(*AUDIT_CSV, "X-Method-Evaluation",
+                                      "X-Method-Fractional-Age", "X-Method-Approximation",
+                                      "X-Total-Present-Value", "X-Factor", "X-Amount",
+                                      "X-Warnings"))})
 def cash_flow_schedules():
     """The expected payment schedule behind one factor."""
     wants_csv = _wants_csv()
@@ -898,12 +961,18 @@ def _structure_header(interest: dict) -> dict:
 
 
 @bp.get("/livez")
+@operation("livez", "Liveness: the process answers.",
+           responses={200: Reply(HealthSchema, "Alive.", example=ex.LIVE)})
 def livez():
     """Liveness: the process answers."""
     return jsonify({"status": "ok"})
 
 
 @bp.get("/readyz")
+@operation("readyz", "Readiness: 200 when every required basis is loaded and verified, else 503.",
+           responses={200: Reply(HealthSchema, "Ready."),
+                      503: Reply(HealthSchema, "Not ready: a required basis is missing or "
+                                               "refused.")})
 def readyz():
     """Readiness: every required basis is loaded and verified, and at least one basis is."""
     reg = _registry()
