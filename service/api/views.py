@@ -22,6 +22,7 @@ from service.api.audit import (
 from service.api.body import flatten_errors, json_body, load
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
+from service.api.dump import dump
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
@@ -77,6 +78,11 @@ _schedule_request = ScheduleRequestSchema()
 _life_table_query = LifeTableQuerySchema()
 
 
+def _respond(schema, body: dict) -> Response:
+    """A JSON answer, dumped through the schema the contract documents for it."""
+    return jsonify(dump(schema, body))
+
+
 def _registry():
     return current_app.extensions["registry"]
 
@@ -115,7 +121,7 @@ def _summary(basis, registry) -> dict:
 def list_bases():
     """List the loaded bases."""
     reg = _registry()
-    return jsonify({"bases": [_summary(b, reg) for b in reg.listing()],
+    return _respond(BasisListSchema, {"bases": [_summary(b, reg) for b in reg.listing()],
                     "audit": audit_block()})
 
 
@@ -163,7 +169,7 @@ def get_basis(ref: str):
                      "fractional_age": basis.fractional_age, "mthly": basis.approximation},
         "audit": audit_block(),
     }
-    return jsonify(body)
+    return _respond(BasisDetailSchema, body)
 
 
 def _iso(date) -> str | None:
@@ -228,7 +234,8 @@ def life_table(ref: str):
     rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
     cohort_fields = ({} if query["age"] is None else {"age": query["age"]}) | (
         {} if cohort is None else {"cohort": cohort})
-    return jsonify({"basis": basis.ref, "sex": basis.names[index], "duration": duration,
+    return _respond(LifeTableSchema, {"basis": basis.ref, "sex": basis.names[index],
+                                      "duration": duration,
                     **cohort_fields, "radix": cols.radix, "radix_age": cols.radix_age,
                     "rows": rows, "audit": audit_block()})
 
@@ -436,7 +443,7 @@ class _Request:
         self.items = [self.items[n] for n in keep]
         self.engine = [self.engine[n] for n in keep]
 
-    def answer(self, results: list[dict], wants_csv: bool):
+    def answer(self, results: list[dict], wants_csv: bool, schema=FactorResponseSchema):
         """Results in request order (refusals in their places), as JSON or CSV."""
         placed: list[dict | None] = [None] * self.count
         for place, result in zip(self.places, results, strict=True):
@@ -454,7 +461,7 @@ class _Request:
                              else refusal)
         if wants_csv:
             return _results_csv(placed, self.warnings)
-        return jsonify({"results": placed, "valued": len(results),
+        return _respond(schema, {"results": placed, "valued": len(results),
                         "refused": len(self.refused), "warnings": self.warnings,
                         "audit": audit_block()})
 
@@ -697,7 +704,7 @@ def insurance_factors():
 
     valued = _value_batch(req, value)
     if valued is None:
-        return req.answer([], wants_csv)
+        return req.answer([], wants_csv, InsuranceResponseSchema)
     _finite_items(valued.value, req.places)
     _finite_items(valued.second_moment, req.places)
     FACTORS.labels(req.basis.ref, "insurance").inc(len(req.engine))
@@ -706,7 +713,7 @@ def insurance_factors():
                for item, v, v2, code in zip(req.items, valued.value.tolist(),
                                             valued.second_moment.tolist(),
                                             valued.method_code.tolist(), strict=True)]
-    return req.answer(results, wants_csv)
+    return req.answer(results, wants_csv, InsuranceResponseSchema)
 
 
 @bp.post("/v1/cash-flow-projections")
@@ -752,7 +759,7 @@ def cash_flow_projections():
     refused = [{"item": place, **({"id": req.raw_ids[place]} if place in req.raw_ids else {}),
                 "problem": {"title": "This item was refused.", "errors": errors}}
                for place, errors in sorted(req.refused.items())]
-    return jsonify({"rows": [dict(zip(names, row, strict=True))
+    return _respond(ProjectionResponseSchema, {"rows": [dict(zip(names, row, strict=True))
                              for row in zip(*lists, strict=True)],
                     "totals": totals, "valued": len(req.engine), "refused": len(refused),
                     "refused_items": refused, "warnings": req.warnings,
@@ -896,7 +903,7 @@ def cash_flow_schedules():
             "X-Total-Present-Value": repr(total), "X-Factor": repr(factor),
             "X-Amount": repr(amount)}, warnings)
     rows = [dict(zip(names, values, strict=True)) for values in zip(*lists, strict=True)]
-    return jsonify({"rows": rows,
+    return _respond(ScheduleResponseSchema, {"rows": rows,
                     "totals": {"present_value": total, "factor": factor, "amount": amount},
                     "method": method, "warnings": warnings, "audit": audit_block()})
 
@@ -965,7 +972,7 @@ def _structure_header(interest: dict) -> dict:
            responses={200: Reply(HealthSchema, "Alive.", example=ex.LIVE)})
 def livez():
     """Liveness: the process answers."""
-    return jsonify({"status": "ok"})
+    return _respond(HealthSchema, {"status": "ok"})
 
 
 @bp.get("/readyz")
@@ -985,7 +992,7 @@ def readyz():
     ready = not missing and bool(reg.bases)
     body = {"status": "ready" if ready else "not ready", "bases": len(reg.bases),
             "refused": [f"{r.file}: {r.reason}" for r in reg.refused], "missing": missing}
-    response = jsonify(body)
+    response = _respond(HealthSchema, body)
     response.status_code = 200 if ready else 503
     return response
 
