@@ -8,7 +8,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from flask import Blueprint, Response, current_app, jsonify, request
-from marshmallow import Schema, ValidationError, fields, validate
+from marshmallow import Schema, fields, validate
 
 from service.api.audit import (
     audit_block,
@@ -18,8 +18,9 @@ from service.api.audit import (
     use_basis,
     use_valuation_date,
 )
-from service.api.body import flatten_errors, json_body, load
+from service.api.body import flatten_errors, json_body, load, validate_capped
 from service.api.csv_input import column_of, csv_batch, row_path
+from service.api.fastload import load_items
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
@@ -464,19 +465,10 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     if per_item:
         data = load(_top_schema(schema), body)
         raw = data["items"]
-        loaded, places = [], []
-        for n, item in enumerate(raw):
-            try:
-                loaded.append(item_schema.load(item))
-                places.append(n)
-            except ValidationError as exc:
-                refused[n] = flatten_errors(exc.messages)
-        data["items"] = loaded
+        data["items"], places, errors = load_items(item_schema, raw)
+        refused = {n: flatten_errors(messages) for n, messages in errors.items()}
     else:
-        try:
-            data = load(schema, body)
-        except ProblemError as exc:
-            raise _with_basis_errors(exc, schema, item_schema, body, build) from None
+        data = _load_whole(schema, item_schema, body, build)
         raw = data["items"]
         places = list(range(len(raw)))
     current().item_count = len(raw)
@@ -501,6 +493,24 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     return req
 
 
+def _load_whole(schema, item_schema, body, build) -> dict:
+    """Load a batch whose first problem refuses it: the request's own fields by the schema
+    with the items left raw, then the items one by one (fast where the fast loader vouches
+    for them). At the first item refused, the whole body goes through ``load(schema, ...)``
+    as before, which words every problem (and the basis adds its own)."""
+    if isinstance(body, dict):
+        top, _, _, _ = validate_capped(_top_schema(schema), body)
+        if top is not None:
+            items, _, errors = load_items(item_schema, top["items"], stop_at_first=True)
+            if not errors:
+                top["items"] = items
+                return top
+    try:
+        return load(schema, body)
+    except ProblemError as exc:
+        raise _with_basis_errors(exc, schema, item_schema, body, build) from None
+
+
 def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> ProblemError:
     """The schema's 422 for a batch, with the basis' objections to the items the schema
     passed added in item order, so that one answer lists every problem (up to the cap).
@@ -520,15 +530,9 @@ def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> P
         return exc
     named = {int(path.split(".")[1]) for path in errors}
     reach = len(data["items"]) if len(errors) < MAX_ERROR_PATHS else max(named) + 1
-    places, items = [], []
-    for n, item in enumerate(data["items"][:reach]):
-        if n in named:
-            continue
-        try:
-            items.append(item_schema.load(item))
-            places.append(n)
-        except ValidationError:
-            continue
+    unnamed = [n for n in range(reach) if n not in named]
+    items, kept, _ = load_items(item_schema, [data["items"][n] for n in unnamed])
+    places = [unnamed[k] for k in kept]
     if not any(life["date_of_birth"] is not None for item in items for life in item["lives"]) \
             or data["valuation_date"] is not None:
         _, refused, _ = _engine_items(basis, items, data["valuation_date"], build)
