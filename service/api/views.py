@@ -3,6 +3,7 @@
 import csv
 import io
 import json
+import secrets
 import time
 from dataclasses import dataclass
 
@@ -431,9 +432,44 @@ class _Request:
                              else refusal)
         if wants_csv:
             return _results_csv(placed, self.warnings)
-        return jsonify({"results": placed, "valued": len(results),
-                        "refused": len(self.refused), "warnings": self.warnings,
-                        "audit": audit_block()})
+        return _results_json({"results": placed, "valued": len(results),
+                              "refused": len(self.refused), "warnings": self.warnings,
+                              "audit": audit_block()})
+
+
+def _results_json(body: dict) -> Response:
+    """``jsonify(body)``, byte for byte, with each distinct ``method`` block of the results
+    (most items share one: the engine makes one per kind of valuation) encoded once.
+
+    Each block is swapped for a placeholder string that no input can give (a per-response
+    token, and every occurrence counted: if any placeholder appears more often than it was
+    placed, the body is encoded plainly), the rest encoded as jsonify does, and the
+    placeholders' JSON replaced by the blocks' JSON."""
+    provider = current_app.json
+    if provider.compact is False or (provider.compact is None and current_app.debug):
+        return jsonify(body)  # indented: the blocks would need the indentation of their place
+    token = secrets.token_hex(8)
+    blocks: dict[int, list] = {}  # id of a method dict -> [placeholder, the dict, uses]
+    swapped = []
+    for result in body["results"]:
+        method = result.get("method") if result is not None else None
+        if method is None:
+            swapped.append(result)
+            continue
+        entry = blocks.get(id(method))
+        if entry is None:
+            entry = blocks[id(method)] = [f"\x00{token}.{len(blocks)}", method, 0]
+        entry[2] += 1
+        swapped.append(result | {"method": entry[0]})
+    response = jsonify(body | {"results": swapped})
+    text = response.get_data(as_text=True)
+    for placeholder, method, uses in blocks.values():
+        quoted = provider.dumps(placeholder)
+        if text.count(quoted) != uses:
+            return jsonify(body)
+        text = text.replace(quoted, provider.dumps(method, separators=(",", ":")))
+    response.set_data(text)
+    return response
 
 
 def _batch(schema, item_schema, build=None) -> _Request:

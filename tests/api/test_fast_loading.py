@@ -347,3 +347,32 @@ def test_other_batches_answer_the_same(client, monkeypatch, on_error, path, item
                             _batch(items, on_error=on_error, **extra))
     assert fast.status_code == slow.status_code
     assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+
+
+# ---- the answer: method blocks encoded once -------------------------------------------------
+
+
+def _answer_body(results):
+    return {"results": results, "valued": 3, "refused": 1, "warnings": [],
+            "audit": {"request_id": "r"}}
+
+
+def test_results_with_shared_method_blocks_encode_as_jsonify_does(app, monkeypatch):
+    exact = {"evaluation": "sum \u00e9 \"quoted\"", "fractional_age": "udd",
+             "approximation": "exact", "discounting": "v^t"}
+    other = exact | {"approximation": "woolhouse-3"}
+    results = [{"id": "a", "value": 1.5, "method": exact},
+               {"value": 2.0, "rounded": 2.0, "ages": [None, 61.5], "method": other},
+               None,
+               {"id": "b", "problem": {"title": "t", "errors": {"x": ["y"]}}},
+               {"id": "c", "value": -0.0, "method": exact}]
+    with app.test_request_context():
+        fast = views._results_json(_answer_body(results))
+        plain = views.jsonify(_answer_body(results))
+        assert fast.get_data() == plain.get_data()
+        assert fast.mimetype == plain.mimetype
+        # An id spelling the placeholder itself is counted, and the body encoded plainly.
+        monkeypatch.setattr(views.secrets, "token_hex", lambda n: "f" * 2 * n)
+        sly = [*results, {"id": "\x00" + "f" * 16 + ".0", "value": 1.0, "method": exact}]
+        assert views._results_json(_answer_body(sly)).get_data() == \
+            views.jsonify(_answer_body(sly)).get_data()
