@@ -461,15 +461,14 @@ def _results_json(body: dict) -> Response:
             entry = blocks[id(method)] = [f"\x00{token}.{len(blocks)}", method, 0]
         entry[2] += 1
         swapped.append(result | {"method": entry[0]})
-    response = jsonify(body | {"results": swapped})
-    text = response.get_data(as_text=True)
+    compact = (",", ":")  # as jsonify encodes when not indenting
+    text = provider.dumps(body | {"results": swapped}, separators=compact)
     for placeholder, method, uses in blocks.values():
         quoted = provider.dumps(placeholder)
         if text.count(quoted) != uses:
             return jsonify(body)
-        text = text.replace(quoted, provider.dumps(method, separators=(",", ":")))
-    response.set_data(text)
-    return response
+        text = text.replace(quoted, provider.dumps(method, separators=compact))
+    return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
 
 
 def _batch(schema, item_schema, build=None) -> _Request:
