@@ -2,7 +2,7 @@
 
     make bench                                    # everything, a few minutes
     .venv/bin/python -m bench.run --only curves   # one suite (curves, risk, costly,
-                                                  # capabilities, mortality),
+                                                  # capabilities, mortality, http),
                                                   # printed, results left as they were
 
 Shared, noisy machines: read the ratios, not the seconds. See bench/README.md.
@@ -18,10 +18,10 @@ from pathlib import Path
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from bench import capabilities, costly, curves, mortality, risk  # noqa: E402
+from bench import capabilities, costly, curves, http_path, mortality, risk  # noqa: E402
 from bench.common import ROOT, environment  # noqa: E402
 
-SUITES = ("curves", "risk", "costly", "capabilities", "mortality")
+SUITES = ("curves", "risk", "costly", "capabilities", "mortality", "http")
 
 
 def main() -> int:
@@ -58,6 +58,8 @@ def main() -> int:
             sections.append(costly.run(args.costly_repeats, kinds))
         elif name == "mortality":
             sections.append(mortality.run(args.items, args.repeats))
+        elif name == "http":
+            sections.append(http_path.run(args.repeats))
         else:
             sections.append(capabilities.run(args.items, args.repeats))
     elapsed = time.perf_counter() - started

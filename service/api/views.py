@@ -3,12 +3,13 @@
 import csv
 import io
 import json
+import secrets
 import time
 from dataclasses import dataclass
 
 import numpy as np
 from flask import Blueprint, Response, current_app, jsonify, request
-from marshmallow import Schema, ValidationError, fields, validate
+from marshmallow import Schema, fields, validate
 
 from service.api import examples as ex
 from service.api.audit import (
@@ -19,10 +20,11 @@ from service.api.audit import (
     use_basis,
     use_valuation_date,
 )
-from service.api.body import flatten_errors, json_body, load
+from service.api.body import flatten_errors, json_body, load, validate_capped
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
+from service.api.fastload import load_items
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
@@ -461,9 +463,47 @@ class _Request:
                              else refusal)
         if wants_csv:
             return _results_csv(placed, self.warnings)
-        return _respond(schema, {"results": placed, "valued": len(results),
-                        "refused": len(self.refused), "warnings": self.warnings,
-                        "audit": audit_block()})
+        return _results_json(dump(schema, {
+            "results": placed, "valued": len(results), "refused": len(self.refused),
+            "warnings": self.warnings, "audit": audit_block()}))
+
+
+def _results_json(body: dict) -> Response:
+    """``jsonify(body)``, byte for byte, with each distinct ``method`` block of the results
+    (most items share one: the engine makes one per kind of valuation) encoded once.
+
+    Each block is swapped for a placeholder string that no input can give (a per-response
+    token, and every occurrence counted: if any placeholder appears more often than it was
+    placed, the body is encoded plainly), the rest encoded as jsonify does, and the
+    placeholders' JSON replaced by the blocks' JSON."""
+    provider = current_app.json
+    if provider.compact is False or (provider.compact is None and current_app.debug):
+        return jsonify(body)  # indented: the blocks would need the indentation of their place
+    token = secrets.token_hex(8)
+    blocks: dict[tuple, list] = {}  # a method block's items -> [placeholder, the dict, uses]
+    swapped = []
+    for result in body["results"]:
+        method = result.get("method") if result is not None else None
+        if method is None:
+            swapped.append(result)
+            continue
+        try:
+            key = tuple(method.items())  # equal blocks, not only the same dict
+            entry = blocks.get(key)
+        except TypeError:  # a block holding a list or object: encoded plainly
+            return jsonify(body)
+        if entry is None:
+            entry = blocks[key] = [f"\x00{token}.{len(blocks)}", method, 0]
+        entry[2] += 1
+        swapped.append(result | {"method": entry[0]})
+    compact = (",", ":")  # as jsonify encodes when not indenting
+    text = provider.dumps(body | {"results": swapped}, separators=compact)
+    for placeholder, method, uses in blocks.values():
+        quoted = provider.dumps(placeholder)
+        if text.count(quoted) != uses:
+            return jsonify(body)
+        text = text.replace(quoted, provider.dumps(method, separators=compact))
+    return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
 
 
 def _batch(schema, item_schema, build=None) -> _Request:
@@ -495,19 +535,10 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     if per_item:
         data = load(_top_schema(schema), body)
         raw = data["items"]
-        loaded, places = [], []
-        for n, item in enumerate(raw):
-            try:
-                loaded.append(item_schema.load(item))
-                places.append(n)
-            except ValidationError as exc:
-                refused[n] = flatten_errors(exc.messages)
-        data["items"] = loaded
+        data["items"], places, errors = load_items(item_schema, raw)
+        refused = {n: flatten_errors(messages) for n, messages in errors.items()}
     else:
-        try:
-            data = load(schema, body)
-        except ProblemError as exc:
-            raise _with_basis_errors(exc, schema, item_schema, body, build) from None
+        data = _load_whole(schema, item_schema, body, build)
         raw = data["items"]
         places = list(range(len(raw)))
     current().item_count = len(raw)
@@ -532,6 +563,24 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     return req
 
 
+def _load_whole(schema, item_schema, body, build) -> dict:
+    """Load a batch whose first problem refuses it: the request's own fields by the schema
+    with the items left raw, then the items one by one (fast where the fast loader vouches
+    for them). At the first item refused, the whole body goes through ``load(schema, ...)``
+    as before, which words every problem (and the basis adds its own)."""
+    if isinstance(body, dict):
+        top, _, _, _ = validate_capped(_top_schema(schema), body)
+        if top is not None:
+            items, _, errors = load_items(item_schema, top["items"], stop_at_first=True)
+            if not errors:
+                top["items"] = items
+                return top
+    try:
+        return load(schema, body)
+    except ProblemError as exc:
+        raise _with_basis_errors(exc, schema, item_schema, body, build) from None
+
+
 def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> ProblemError:
     """The schema's 422 for a batch, with the basis' objections to the items the schema
     passed added in item order, so that one answer lists every problem (up to the cap).
@@ -551,15 +600,9 @@ def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> P
         return exc
     named = {int(path.split(".")[1]) for path in errors}
     reach = len(data["items"]) if len(errors) < MAX_ERROR_PATHS else max(named) + 1
-    places, items = [], []
-    for n, item in enumerate(data["items"][:reach]):
-        if n in named:
-            continue
-        try:
-            items.append(item_schema.load(item))
-            places.append(n)
-        except ValidationError:
-            continue
+    unnamed = [n for n in range(reach) if n not in named]
+    items, kept, _ = load_items(item_schema, [data["items"][n] for n in unnamed])
+    places = [unnamed[k] for k in kept]
     if not any(life["date_of_birth"] is not None for item in items for life in item["lives"]) \
             or data["valuation_date"] is not None:
         _, refused, _ = _engine_items(basis, items, data["valuation_date"], build)

@@ -1,0 +1,378 @@
+"""The fast loader of batch items against marshmallow, the contract's one source.
+
+The reference throughout is marshmallow's own ``schema.load`` (service/api/schemas.py): for
+every item the fast loader either returns exactly what ``schema.load`` returns (the same
+values, the same keys in the same order) or declines, and a batch answers the same whether
+items are loaded fast or each through marshmallow as before: the same 422 (every error path,
+message, detail and count) in reject mode, and the same results and refusals in per-item
+mode. Request ids and timestamps are the only parts that may differ.
+"""
+
+import copy
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from marshmallow import ValidationError
+
+from service.api import fastload, views
+from service.api.body import load
+from service.api.problems import ProblemError
+from service.api.schemas import InsuranceItemSchema, ItemSchema, ProjectionItemSchema
+
+GOOD = [
+    {"lives": [{"age": 65}], "timing": "advance"},
+    {"lives": [{"age": 65.25}], "timing": "arrears", "frequency": 12, "term": 10.0},
+    {"id": "policy-1", "lives": [{"age": 0}], "timing": "continuous", "term": 200},
+    {"id": "x" * 64, "lives": [{"age": 200.0, "age_adjustment": -50}], "timing": "advance"},
+    {"lives": [{"age": 70, "sex": "female", "duration": 0, "mortality_multiplier": 0,
+                "flat_extra": 1}], "timing": "advance", "frequency": 365, "deferral": 0},
+    {"lives": [{"age": 70, "sex": "blend-60.40", "duration": None}], "timing": "advance"},
+    {"lives": [{"age": 60, "age_adjustment": 50, "mortality_multiplier": 100,
+                "flat_extra": 0.0}], "timing": "advance", "escalation": -0.5},
+    {"lives": [{"age": 60}], "timing": "advance", "escalation": 1, "guarantee": 5,
+     "term": 10},
+    {"lives": [{"age": 60}], "timing": "advance", "frequency": 12, "term_months": 1},
+    {"lives": [{"age": 60}], "timing": "advance", "frequency": 12, "term_months": 2400,
+     "deferral_months": 0, "guarantee_months": 24},
+    {"lives": [{"age": 60}], "timing": "continuous", "term": 0.3, "deferral": 0.7,
+     "guarantee": 0.1},
+    {"lives": [{"age": 60}], "timing": "advance", "term": None, "start_requires": "first"},
+    {"lives": [{"age": 60}, {"age": 57.5, "sex": "male"}], "timing": "advance",
+     "survivorship": "joint-life", "start_requires": "both"},
+    {"lives": [{"age": 60}, {"age": 57}], "timing": "arrears", "frequency": 4,
+     "survivorship": {"both": 1, "first_only": 0.5, "second_only": 0.6667}},
+    {"lives": [{"age": 60}, {"age": 57}], "timing": "continuous",
+     "survivorship": "reversionary"},
+    {"lives": [{"age": 60}], "timing": "advance", "measures": []},
+    {"lives": [{"age": 60}], "timing": "advance",
+     "measures": ["duration", "convexity", "key_rate_durations"]},
+    {"lives": [{"age": 60}], "timing": "advance", "spread": {"percentiles": [5, 50, 95]}},
+    {"lives": [{"age": 60}], "timing": "advance", "spread": {"percentiles": [100]}},
+    {"lives": [{"date_of_birth": "1958-03-14"}], "timing": "advance"},
+    {"lives": [{"date_of_birth": "1960-02-29", "sex": "male"}, {"age": 60}],
+     "timing": "advance", "survivorship": "last-survivor"},
+]
+
+BAD = [
+    {},
+    {"timing": "advance"},
+    {"lives": [{"age": 65}]},
+    {"lives": [{"age": 65}], "timing": "advance", "colour": "blue"},
+    {"lives": [{"age": 65, "height": 1.8}], "timing": "advance"},
+    {"lives": [], "timing": "advance"},
+    {"lives": [{"age": 1}, {"age": 2}, {"age": 3}], "timing": "advance",
+     "survivorship": "joint-life"},
+    {"lives": {"age": 65}, "timing": "advance"},
+    {"lives": [65], "timing": "advance"},
+    {"lives": [{}], "timing": "advance"},
+    {"lives": [{"age": None}], "timing": "advance"},
+    {"lives": [{"age": True}], "timing": "advance"},
+    {"lives": [{"age": "65"}], "timing": "advance"},
+    {"lives": [{"age": -0.01}], "timing": "advance"},
+    {"lives": [{"age": 200.0001}], "timing": "advance"},
+    {"lives": [{"age": 10**400}], "timing": "advance"},
+    {"lives": [{"age": 65, "date_of_birth": "1958-03-14"}], "timing": "advance"},
+    {"lives": [{"date_of_birth": "1958-02-30"}], "timing": "advance"},
+    {"lives": [{"date_of_birth": "14/03/1958"}], "timing": "advance"},
+    {"lives": [{"date_of_birth": 1958}], "timing": "advance"},
+    {"lives": [{"age": 65, "sex": ""}], "timing": "advance"},
+    {"lives": [{"age": 65, "sex": "Female"}], "timing": "advance"},
+    {"lives": [{"age": 65, "sex": "a" * 65}], "timing": "advance"},
+    {"lives": [{"age": 65, "sex": 1}], "timing": "advance"},
+    {"lives": [{"age": 65, "duration": 1.0}], "timing": "advance"},
+    {"lives": [{"age": 65, "duration": True}], "timing": "advance"},
+    {"lives": [{"age": 65, "duration": -1}], "timing": "advance"},
+    {"lives": [{"age": 65, "age_adjustment": 50.5}], "timing": "advance"},
+    {"lives": [{"age": 65, "mortality_multiplier": None}], "timing": "advance"},
+    {"lives": [{"age": 65, "flat_extra": 1.01}], "timing": "advance"},
+    {"lives": [{"age": 65, "flat_extra": False}], "timing": "advance"},
+    {"lives": [{"age": 65}], "timing": "sometimes"},
+    {"lives": [{"age": 65}], "timing": None},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": 0},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": 366},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": 12.0},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": True},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": None},
+    {"lives": [{"age": 65}], "timing": "advance", "term": 0},
+    {"lives": [{"age": 65}], "timing": "advance", "term": 200.5},
+    {"lives": [{"age": 65}], "timing": "advance", "term": 10.5},
+    {"lives": [{"age": 65}], "timing": "advance", "frequency": 12, "term": 0.1},
+    {"lives": [{"age": 65}], "timing": "advance", "term": "10"},
+    {"lives": [{"age": 65}], "timing": "advance", "deferral": -1},
+    {"lives": [{"age": 65}], "timing": "advance", "deferral": None},
+    {"lives": [{"age": 65}], "timing": "advance", "deferral": 2.5},
+    {"lives": [{"age": 65}], "timing": "advance", "guarantee": 20, "term": 10},
+    {"lives": [{"age": 65}], "timing": "continuous", "guarantee": 10.5, "term": 10},
+    {"lives": [{"age": 65}], "timing": "advance", "term": 10, "term_months": 120},
+    {"lives": [{"age": 65}], "timing": "advance", "term_months": 0},
+    {"lives": [{"age": 65}], "timing": "advance", "term_months": 2401},
+    {"lives": [{"age": 65}], "timing": "advance", "term_months": 7},
+    {"lives": [{"age": 65}], "timing": "advance", "deferral_months": 1.0},
+    {"lives": [{"age": 65}], "timing": "advance", "guarantee_months": -1},
+    {"lives": [{"age": 65}], "timing": "advance", "guarantee": 1, "guarantee_months": 12},
+    {"lives": [{"age": 65}], "timing": "advance", "escalation": 1.5},
+    {"lives": [{"age": 65}], "timing": "advance", "escalation": True},
+    {"lives": [{"age": 65}], "timing": "advance", "survivorship": "joint-life"},
+    {"lives": [{"age": 65}, {"age": 60}], "timing": "advance"},
+    {"lives": [{"age": 65}, {"age": 60}], "timing": "advance", "survivorship": "joint"},
+    {"lives": [{"age": 65}, {"age": 60}], "timing": "advance", "survivorship": 1},
+    {"lives": [{"age": 65}, {"age": 60}], "timing": "advance",
+     "survivorship": {"both": 1, "first_only": 2, "second_only": 0}},
+    {"lives": [{"age": 65}, {"age": 60}], "timing": "advance",
+     "survivorship": {"both": 1, "first_only": 1}},
+    {"lives": [{"age": 65}], "timing": "advance", "measures": ["duration", "beta"]},
+    {"lives": [{"age": 65}], "timing": "advance", "measures": "duration"},
+    {"lives": [{"age": 65}], "timing": "advance",
+     "measures": ["duration", "duration", "convexity", "key_rate_durations"]},
+    {"lives": [{"age": 65}], "timing": "advance", "measures": None},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": {"percentiles": []}},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": {"percentiles": [0]}},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": {"percentiles": [50, True]}},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": {"levels": [50]}},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": [50]},
+    {"lives": [{"age": 65}], "timing": "advance", "spread": None},
+    {"lives": [{"age": 65}], "timing": "advance", "start_requires": "neither"},
+    {"id": "", "lives": [{"age": 65}], "timing": "advance"},
+    {"id": "x" * 65, "lives": [{"age": 65}], "timing": "advance"},
+    {"id": 7, "lives": [{"age": 65}], "timing": "advance"},
+    {"id": None, "lives": [{"age": 65}], "timing": "advance"},
+    [{"lives": [{"age": 65}], "timing": "advance"}],
+    "an item",
+    None,
+]
+
+INSURANCE = [
+    {"lives": [{"age": 50}], "cover": "whole-life"},
+    {"lives": [{"age": 50}], "cover": "term", "term": 10, "benefit_timing": "end-of-period",
+     "frequency": 12, "escalation": 0.02},
+    {"lives": [{"age": 50}], "cover": "endowment", "term_months": 120, "deferral_months": 6},
+    {"lives": [{"age": 50}, {"age": 48}], "cover": "whole-life", "on": "second-death"},
+    {"lives": [{"age": 50}], "cover": "term"},
+    {"lives": [{"age": 50}, {"age": 48}], "cover": "whole-life"},
+    {"lives": [{"age": 50}], "cover": "whole-life", "on": "first-death"},
+    {"lives": [{"age": 50}], "cover": "term", "term": 10, "term_months": 120},
+    {"lives": [{"age": 50}], "cover": "life"},
+    {"lives": [{"age": 50}], "cover": "whole-life", "benefit_timing": "now"},
+    {"lives": [{"age": 50}], "cover": "whole-life", "timing": "advance"},
+]
+
+PROJECTION = [
+    {"lives": [{"age": 66}], "timing": "advance", "frequency": 12, "amount": 12000},
+    {"lives": [{"age": 66}], "timing": "advance", "amount": 0},
+    {"lives": [{"age": 66}], "timing": "advance"},
+    {"lives": [{"age": 66}], "timing": "advance", "amount": -1},
+    {"lives": [{"age": 66}], "timing": "advance", "amount": 1e13},
+    {"lives": [{"age": 66}], "timing": "advance", "amount": True},
+]
+
+
+def _marshmallow(schema, item):
+    """``schema.load(item)``, or None when it refuses the item."""
+    try:
+        return schema.load(copy.deepcopy(item))
+    except ValidationError:
+        return None
+
+
+def _same(fast, slow) -> bool:
+    """The same value with the same keys in the same order, at every depth."""
+    if isinstance(slow, dict):
+        return isinstance(fast, dict) and list(fast) == list(slow) and all(
+            _same(fast[k], slow[k]) for k in slow)
+    if isinstance(slow, list | tuple):
+        return type(fast) is type(slow) and len(fast) == len(slow) and all(
+            _same(a, b) for a, b in zip(fast, slow, strict=True))
+    return type(fast) is type(slow) and fast == slow
+
+
+@pytest.mark.parametrize("schema_class, corpus", [
+    (ItemSchema, GOOD + BAD), (InsuranceItemSchema, INSURANCE),
+    (ProjectionItemSchema, PROJECTION)])
+def test_the_fast_loader_gives_marshmallows_answer_or_declines(schema_class, corpus):
+    schema = schema_class()
+    loader = fastload.fast_loader(schema)
+    assert loader is not None  # else every item would go through marshmallow
+    for item in corpus:
+        slow = _marshmallow(schema, item)
+        fast = loader.load(copy.deepcopy(item))
+        if slow is None:
+            assert fast is None, item
+        else:
+            assert fast is None or _same(fast, slow), (item, fast, slow)
+
+
+def test_the_fast_loader_vouches_for_every_plain_good_item():
+    """Without this the comparisons above could pass with a loader that always declines."""
+    schema = ItemSchema()
+    loader = fastload.fast_loader(schema)
+    for item in GOOD:
+        assert _marshmallow(schema, item) is not None, item  # the corpus is good
+        assert loader.load(copy.deepcopy(item)) is not None, item
+    for item in BAD:
+        assert _marshmallow(schema, item) is None, item  # the corpus is bad
+
+
+def test_the_loader_leaves_the_item_as_it_was():
+    item = {"lives": [{"age": 60}], "timing": "advance", "frequency": 12, "term_months": 24}
+    before = copy.deepcopy(item)
+    fastload.fast_loader(ItemSchema()).load(item)
+    assert item == before
+
+
+_NUMBERS = st.one_of(st.integers(-5, 420), st.floats(-5, 420, allow_nan=False),
+                     st.sampled_from([0, 0.5, 1, 12, 200, 10**400, True, False, None, "1"]))
+_LIFE = st.fixed_dictionaries({}, optional={
+    "age": _NUMBERS, "sex": st.sampled_from(["female", "male", "", "X", None, 3]),
+    "duration": _NUMBERS, "age_adjustment": _NUMBERS, "mortality_multiplier": _NUMBERS,
+    "flat_extra": st.sampled_from([0, 0.005, 1, 1.5, -0.1, None, True]),
+    "date_of_birth": st.sampled_from(["1958-03-14", "1958-02-30", "x", None, 1958]),
+    "other": st.just(1)})
+_ITEM = st.fixed_dictionaries({}, optional={
+    "id": st.one_of(st.text(max_size=70), st.integers(), st.none()),
+    "lives": st.one_of(st.lists(_LIFE, max_size=3), _LIFE),
+    "timing": st.sampled_from(["advance", "arrears", "continuous", "never", None, 1]),
+    "frequency": _NUMBERS, "term": _NUMBERS, "deferral": _NUMBERS, "guarantee": _NUMBERS,
+    "term_months": _NUMBERS, "deferral_months": _NUMBERS, "guarantee_months": _NUMBERS,
+    "escalation": st.sampled_from([0, 0.02, -0.5, 1, 1.01, True, None]),
+    "survivorship": st.one_of(
+        st.sampled_from(["joint-life", "last-survivor", "reversionary", "both", 1, None]),
+        st.fixed_dictionaries({}, optional={"both": _NUMBERS, "first_only": _NUMBERS,
+                                            "second_only": _NUMBERS})),
+    "measures": st.one_of(st.lists(st.sampled_from(
+        ["duration", "convexity", "key_rate_durations", "beta", 1]), max_size=4), st.none()),
+    "spread": st.one_of(st.fixed_dictionaries({"percentiles": st.lists(_NUMBERS,
+                                                                       max_size=3)}),
+                        st.none(), st.just([5])),
+    "start_requires": st.sampled_from(["any", "first", "both", "all"]),
+    "unknown": st.just(0)})
+
+
+@settings(max_examples=400, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(_ITEM)
+def test_generated_items_load_alike(item):
+    schema = _SCHEMA
+    slow = _marshmallow(schema, item)
+    fast = fastload.fast_loader(schema).load(copy.deepcopy(item))
+    if slow is None:
+        assert fast is None
+    else:
+        assert fast is None or _same(fast, slow)
+
+
+_SCHEMA = ItemSchema()
+
+
+# ---- whole requests: the fast path against marshmallow alone --------------------------------
+
+
+def _old_load_whole(schema, item_schema, body, build):
+    """The batch read as before the fast loader: the whole body by the schema."""
+    try:
+        return load(schema, body)
+    except ProblemError as exc:
+        raise views._with_basis_errors(exc, schema, item_schema, body, build) from None
+
+
+def _without_ids(body):
+    """The answer bar its request id and time of computation."""
+    body = copy.deepcopy(body)
+    body.pop("request_id", None)
+    audit = body.get("audit") or {}
+    audit.pop("request_id", None)
+    audit.pop("computed_at", None)
+    return body
+
+
+def _both_ways(client, monkeypatch, path, body):
+    fast = client.post(path, json=copy.deepcopy(body))
+    with monkeypatch.context() as m:
+        m.setattr(fastload, "fast_loader", lambda schema: None)
+        m.setattr(views, "_load_whole", _old_load_whole)
+        slow = client.post(path, json=copy.deepcopy(body))
+    return fast, slow
+
+
+def _batch(items, **extra):
+    return {"basis": "standard-ultimate", "valuation_date": "2026-12-31", "items": items,
+            **extra}
+
+
+@pytest.mark.parametrize("on_error", ["reject", "per-item"])
+@pytest.mark.parametrize("corpus", ["good", "bad", "mixed", "one bad"])
+def test_a_batch_answers_the_same_either_way(client, monkeypatch, on_error, corpus):
+    mixed = [x for pair in zip(GOOD, BAD[:len(GOOD)], strict=True) for x in pair]
+    items = {"good": GOOD, "bad": BAD, "mixed": mixed,
+             "one bad": [*GOOD, BAD[11], *GOOD]}[corpus]
+    # standard-ultimate is unisex and has no blended table: the blend is refused by the basis.
+    fast, slow = _both_ways(client, monkeypatch, "/v1/annuity-factors",
+                            _batch(items, on_error=on_error))
+    assert fast.status_code == slow.status_code
+    assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+    if corpus != "good" and on_error == "reject":
+        assert fast.status_code == 422
+
+
+def test_a_batch_with_many_bad_items_lists_the_same_first_paths(client, monkeypatch):
+    items = [{"lives": [{"age": 300 + n}], "timing": "advance", "frequency": 0}
+             for n in range(150)]
+    fast, slow = _both_ways(client, monkeypatch, "/v1/annuity-factors", _batch(items))
+    assert fast.status_code == slow.status_code == 422
+    assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+    answer = fast.get_json()
+    assert len(answer["errors"]) == 100 and "Checking stopped" in answer["detail"]
+
+
+@pytest.mark.parametrize("body", [
+    _batch(GOOD[:3], interest_rate="5%"),
+    _batch(GOOD[:3], extra=1),
+    _batch([]),
+    _batch(GOOD[:3] + BAD[:3], interest_rate=2.0),
+    {"items": GOOD[:3]},
+    [GOOD[0]],
+])
+def test_request_level_problems_answer_the_same(client, monkeypatch, body):
+    fast, slow = _both_ways(client, monkeypatch, "/v1/annuity-factors", body)
+    assert fast.status_code == slow.status_code == 422
+    assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+
+
+@pytest.mark.parametrize("on_error", ["reject", "per-item"])
+@pytest.mark.parametrize("path, items, extra", [
+    ("/v1/insurance-factors", INSURANCE, {}),
+    ("/v1/cash-flow-projections", PROJECTION, {"buckets": "annual"}),
+])
+def test_other_batches_answer_the_same(client, monkeypatch, on_error, path, items, extra):
+    fast, slow = _both_ways(client, monkeypatch, path,
+                            _batch(items, on_error=on_error, **extra))
+    assert fast.status_code == slow.status_code
+    assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+
+
+# ---- the answer: method blocks encoded once -------------------------------------------------
+
+
+def _answer_body(results):
+    return {"results": results, "valued": 3, "refused": 1, "warnings": [],
+            "audit": {"request_id": "r"}}
+
+
+def test_results_with_shared_method_blocks_encode_as_jsonify_does(app, monkeypatch):
+    exact = {"evaluation": "sum \u00e9 \"quoted\"", "fractional_age": "udd",
+             "approximation": "exact", "discounting": "v^t"}
+    other = exact | {"approximation": "woolhouse-3"}
+    results = [{"id": "a", "value": 1.5, "method": exact},
+               {"value": 2.0, "rounded": 2.0, "ages": [None, 61.5], "method": other},
+               None,
+               {"id": "b", "problem": {"title": "t", "errors": {"x": ["y"]}}},
+               {"id": "c", "value": -0.0, "method": exact}]
+    with app.test_request_context():
+        fast = views._results_json(_answer_body(results))
+        plain = views.jsonify(_answer_body(results))
+        assert fast.get_data() == plain.get_data()
+        assert fast.mimetype == plain.mimetype
+        # An id spelling the placeholder itself is counted, and the body encoded plainly.
+        monkeypatch.setattr(views.secrets, "token_hex", lambda n: "f" * 2 * n)
+        sly = [*results, {"id": "\x00" + "f" * 16 + ".0", "value": 1.0, "method": exact}]
+        assert views._results_json(_answer_body(sly)).get_data() == \
+            views.jsonify(_answer_body(sly)).get_data()
