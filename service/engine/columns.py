@@ -550,7 +550,8 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
     size = idx.size
     # Chains: consecutive items (sorted by key) with the same key share one.
     keys = (t, dkey, mult, extra, anchor, growth)
-    new = np.ones(size, dtype=bool)
+    new = np.zeros(size, dtype=bool)
+    new[0] = True
     for key in keys:
         new[1:] |= key[1:] != key[:-1]
     chain = np.cumsum(new) - 1
