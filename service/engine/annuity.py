@@ -830,7 +830,7 @@ class Values:
 
 def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None,
                     deadline: float | None = None, measure=None,
-                    key_rates: bool = False) -> Values:
+                    key_rates: bool = False, fast: bool = True) -> Values:
     """Return the present value of 1 p.a. for each item, and the method that valued it.
 
     Parameters
@@ -848,6 +848,8 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
         durations). Where no Woolhouse value is wanted, those items are valued from the same
         payments in one pass: discrete dates summed, continuous segments integrated by the
         Gauss-Legendre rule (method ``INTEGRAL_BY_RULE``).
+    fast : value the items :mod:`service.engine.columns` covers there (the same values to
+        rounding, on shared chains); False values every item here.
 
     Raises
     ------
@@ -858,6 +860,13 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     DeadlineError
         When the deadline passes.
     """
+    if fast:
+        from service.engine import columns  # (it builds on this module)
+
+        done = columns.dispatch(tables, items, valuation, max_work=max_work,
+                                deadline=deadline, measure=measure, key_rates=key_rates)
+        if done is not None:
+            return done
     batch = _prepare(tables, items, valuation)
     curve = valuation.curve
     size = len(items)

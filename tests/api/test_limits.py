@@ -94,9 +94,11 @@ class TestPathLikeRefs:
 class TestWorkLimit:
     def test_batch_needing_too_many_payment_dates_is_413_before_valuing(self):
         app = create_app({"TESTING": True, "MAX_EVALUATION_POINTS": 100_000})
-        # 20 young lives paid daily for life: about 20 x 110 x 365 = 800,000 dates.
+        # 20 young couples paid daily to the last survivor: about 20 x 110 x 365 = 800,000
+        # dates (a single life is valued on shared columns, about one unit an item).
         body = {"basis": "standard-ultimate", "items": [
-            {"lives": [{"age": 20}], "timing": "advance", "frequency": 365}] * 20}
+            {"lives": [{"age": 20}, {"age": 20}], "survivorship": "last-survivor",
+             "timing": "advance", "frequency": 365}] * 20}
         problem = assert_problem(app.test_client().post(URL, json=body), 413)
         assert "Split the batch" in problem["detail"]
 

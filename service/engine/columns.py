@@ -1,0 +1,780 @@
+"""Single-life discrete annuities valued from columns, on shared chains of survival.
+
+A batch given as columns (:class:`Columns`: one numpy array per field) is valued without a
+Python object per item, and :func:`service.engine.annuity.value_annuities` sends the items
+this module covers here too (see :func:`dispatch`). The results are those of the general
+path (payment by payment) to rounding.
+
+Derivation (flat force of interest delta, v = e^-delta; escalation r, growth g = ln(1 + r))
+--------------------------------------------------------------------------------------------
+A life aged x = a + f (a its integer age, 0 <= f < 1) has the chain q_k = q(a + k) of its
+table (select rates first, multiplier and flat extra applied, q = 1 from the table's last
+age), C_k = prod_{j<k} (1 - q_j) and S(k + s) = C_k s_p(a+k) for 0 <= s <= 1; it survives
+t years with probability S(f + t) / S(f).
+
+With m payments a year, a deferral of U/m years and arr = 1 in arrears (0 in advance),
+payment j falls at period n = U + arr + j, at t = n / m, of (1 + r)^floor(j/m) / m. Write
+G = floor(f m) and phi = f m - G (an age within 1e-9 of the next 1/m is taken as it, as the
+general path does: then G is one more and phi slightly negative). Then f + n/m = K + s_i
+with (K, i) = divmod(n + G, m) and s_i = (phi + i) / m, clipped to [0, 1]: every year of
+age has the same m slots i, at the same fractions s_i. With D = G + U + arr = m dq + dm,
+floor(j / m) = K - dq - [i < dm], so the payment is worth
+
+    w^K c_i S(K + s_i),   w = v (1 + r),   c_i = v^((i - G)/m) (1 + r)^(-dq) e_i,
+
+with e_i = 1 / (1 + r) for i < dm and 1 otherwise (all over m S(f)).
+
+Under UDD S(K + s) = (1 - s) C_K + s C_(K+1), so a year K whose slots [lo, hi) are paid
+contributes w^K (A C_K + B C_(K+1)) with A = sum c_i (1 - s_i) and B = sum c_i s_i over
+the slots. With x = v^(1/m) and the shared prefix tables P0[k] = sum_(i<k) x^i and
+P1[k] = sum_(i<k) i x^i (one pair per frequency), A and B of any slot range take O(1):
+sum c_i = kappa S0 and sum c_i s_i = kappa (phi S0 + S1) / m, where S0, S1 are the P0, P1
+differences over the range, split at dm (weight 1 / (1 + r) before it) and
+kappa = v^(-G/m) (1 + r)^(-dq); the clipped first slot, when phi < 0, is added back.
+
+An item's life-contingent payments run from its first unguaranteed period to its last: a
+first year (slots from ia), a last year (slots to ib) and whole years between, which
+contribute A_full M0 + B_full M1 with M0 = sum_K w^K C_K and M1 = sum_K w^K C_(K+1) over
+those years: differences of cumulative columns of each chain (prefix or suffix sums,
+whichever subtracts less). Chains are shared by the items with the same (table, select
+duration, multiplier, flat extra, integer age, escalation); an item whose difference would
+cancel badly (the subtracted part over 64 times the result) sums its whole years directly.
+
+Under a constant force or Balducci's assumption S(K + s) is not linear in s: each year of
+each item sums its slots directly (a per-year pass, vectorised over items and years).
+
+The guarantee (g m payments made for certain once the life is alive at the deferral u) is
+P(alive at u) v^u times sum_k ((1 + r) v)^k a(1) over its whole years, a(1) the
+annuity-certain of one year paid m-thly, plus its part year; the geometric sum is taken in
+closed form.
+
+Not covered here (the general path values them): two lives, continuous payments, interest
+structures other than one flat rate, Woolhouse's approximation with m > 1, and items whose
+sensitivities are wanted.
+"""
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+import numpy as np
+
+from service.engine import annuity
+from service.engine.annuity import (
+    EXACT_SUM,
+    MAX_FREQUENCY,
+    START_REQUIREMENTS,
+    Item,
+    Life,
+    Payments,
+    Valuation,
+    Values,
+    methods,
+)
+from service.engine.errors import ItemError, WorkLimitError
+from service.engine.integrals import phi
+from service.engine.interest import annuity_certain
+from service.engine.survival import build_lives, fraction_survival
+
+#: Timing codes of :attr:`Columns.timing`; any other code is an invalid timing.
+TIMING_CODES = ("advance", "arrears")
+FIELDS = ("table", "age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra",
+          "timing", "frequency", "term", "deferral", "guarantee", "escalation")
+_DEFAULTS = {"table": 0, "duration": math.nan, "age_adjustment": 0.0,
+             "mortality_multiplier": 1.0, "flat_extra": 0.0, "timing": "advance",
+             "frequency": 1, "term": math.inf, "deferral": 0.0, "guarantee": 0.0,
+             "escalation": 0.0}
+_SNAP = 1e-9  # as service.engine.survival
+_EPS = 1e-9  # as service.engine.annuity
+#: Items valued at once (their chains and slot sums are built per chunk).
+_CHUNK_ITEMS = 16_384
+#: (item, year) pairs summed at once by the per-year passes.
+_CHUNK_PAIRS = 200_000
+#: An item whose cumulative difference subtracts more than this many times its value sums
+#: its whole years directly instead.
+_CANCELLATION = 64.0
+
+
+@dataclass(frozen=True, eq=False)
+class Columns:
+    """Single-life discrete annuity items, one array per field (all the same length).
+
+    ``table`` indexes the tables; ``duration`` is NaN for ultimate; ``timing`` holds codes
+    (0 advance, 1 arrears, see ``TIMING_CODES``; -1 an unknown timing); ``frequency`` is
+    payments a year (whole numbers); ``term`` is inf for life. Amounts are per 1 p.a.
+    Build with :meth:`from_dict`, :meth:`from_frame` or :meth:`from_items`.
+    """
+
+    table: np.ndarray
+    age: np.ndarray
+    duration: np.ndarray
+    age_adjustment: np.ndarray
+    mortality_multiplier: np.ndarray
+    flat_extra: np.ndarray
+    timing: np.ndarray
+    frequency: np.ndarray
+    term: np.ndarray
+    deferral: np.ndarray
+    guarantee: np.ndarray
+    escalation: np.ndarray
+
+    def __post_init__(self):
+        sizes = {getattr(self, name).shape for name in FIELDS}
+        if len(sizes) != 1 or len(next(iter(sizes))) != 1:
+            raise ValueError("every column must be one-dimensional and of the same length")
+
+    def __len__(self) -> int:
+        return self.age.size
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "Columns":
+        """Build from a mapping of field name to array (or scalar, broadcast).
+
+        ``age`` is required; the others default as in the JSON items (table 0, ultimate,
+        advance, annual, for life, no deferral, guarantee or escalation). ``timing`` may be
+        strings or codes; a null (NaN) ``term`` is for life and a null ``duration`` ultimate.
+        """
+        unknown = set(data) - set(FIELDS)
+        if unknown:
+            raise ValueError(f"unknown columns: {', '.join(sorted(unknown))}")
+        if "age" not in data:
+            raise ValueError("the column 'age' is required")
+        size = np.asarray(data["age"]).size
+        raw = {name: np.asarray(data.get(name, _DEFAULTS.get(name)))
+               for name in FIELDS}
+        out = {}
+        for name, value in raw.items():
+            if value.ndim == 0:
+                value = np.full(size, value.item())
+            if name == "timing":
+                out[name] = _timing_codes(value)
+            elif name == "table":
+                table = np.asarray(value, dtype=float)
+                if not np.all(np.isfinite(table) & (table == np.round(table))):
+                    raise ValueError("the column 'table' must hold whole numbers")
+                out[name] = table.astype(np.intp)
+            else:
+                with np.errstate(invalid="ignore"):
+                    arr = np.array(value, dtype=float)  # None becomes NaN
+                if name == "term":
+                    arr = np.where(np.isnan(arr), np.inf, arr)
+                out[name] = arr
+        for arr in out.values():
+            arr.setflags(write=False)
+        return cls(**out)
+
+    @classmethod
+    def from_frame(cls, frame) -> "Columns":
+        """Build from a pandas DataFrame whose columns are named like the JSON fields (plus
+        ``table``, the index of the life's table); ``timing`` as strings."""
+        return cls.from_dict({name: frame[name].to_numpy() for name in frame.columns})
+
+    @classmethod
+    def from_items(cls, items) -> "Columns":
+        """Build from engine :class:`~service.engine.annuity.Item` objects, each with one life
+        and discrete payments (ValueError otherwise)."""
+        rows = []
+        for n, item in enumerate(items):
+            row = _item_row(item)
+            if row is None:
+                raise ValueError(f"item {n} is not a single-life item with discrete payments")
+            rows.append(row)
+        return _from_rows(rows)
+
+    def take(self, index) -> "Columns":
+        """The items at ``index`` (an integer array or boolean mask)."""
+        return Columns(**{name: getattr(self, name)[index] for name in FIELDS})
+
+    def to_items(self) -> list[Item]:
+        """The items as engine objects (for the general path)."""
+        return [_row_item(self, n) for n in range(len(self))]
+
+
+def _timing_codes(value) -> np.ndarray:
+    if value.dtype.kind in "iuf":
+        codes = np.asarray(value, dtype=float)
+        ok = np.isin(codes, (0, 1))
+        return np.where(ok, codes, -1).astype(np.int8)
+    text = value.astype(str)
+    if np.any(text == "continuous"):
+        raise ValueError("columns hold discrete timings only (advance, arrears); value "
+                         "continuous payments with value_annuities")
+    return np.select([text == "advance", text == "arrears"], [0, 1], -1).astype(np.int8)
+
+
+def _item_row(item) -> tuple | None:
+    """The columns of one item, or None where it is not single-life and discrete."""
+    if len(item.lives) != 1:
+        return None
+    p = item.payments
+    code = TIMING_CODES.index(p.timing) if p.timing in TIMING_CODES else -1
+    if p.timing == "continuous":
+        return None
+    life = item.lives[0]
+    return (life.table, life.age, math.nan if life.duration is None else life.duration,
+            life.age_adjustment, life.mortality_multiplier, life.flat_extra, code,
+            p.frequency, math.inf if p.term is None else p.term, p.deferral, p.guarantee,
+            p.escalation)
+
+
+def _from_rows(rows) -> Columns:
+    if not rows:
+        cols = [np.zeros(0) for _ in FIELDS]
+    else:
+        cols = [np.array(c) for c in zip(*rows, strict=True)]
+    out = {}
+    for name, arr in zip(FIELDS, cols, strict=True):
+        if name == "table":
+            arr = arr.astype(np.intp)
+        elif name == "timing":
+            arr = arr.astype(np.int8)
+        else:
+            arr = arr.astype(float)
+        arr.setflags(write=False)
+        out[name] = arr
+    return Columns(**out)
+
+
+def _whole_or_float(value: float):
+    return int(value) if math.isfinite(value) and float(value).is_integer() else float(value)
+
+
+def _row_item(cols: Columns, n: int) -> Item:
+    d = float(cols.duration[n])
+    code = int(cols.timing[n])
+    term = float(cols.term[n])
+    life = Life(age=float(cols.age[n]), table=int(cols.table[n]),
+                duration=None if math.isnan(d) else _whole_or_float(d),
+                age_adjustment=float(cols.age_adjustment[n]),
+                mortality_multiplier=float(cols.mortality_multiplier[n]),
+                flat_extra=float(cols.flat_extra[n]))
+    pay = Payments(timing=TIMING_CODES[code] if code in (0, 1) else "unknown",
+                   frequency=_whole_or_float(float(cols.frequency[n])),
+                   term=None if term == math.inf else term, deferral=float(cols.deferral[n]),
+                   guarantee=float(cols.guarantee[n]), escalation=float(cols.escalation[n]))
+    return Item((life,), pay)
+
+
+# ---------------------------------------------------------------------------------------------
+# Validation: the general path's problems, found with array tests and worded by its own checks
+
+
+def _multiple(value, m):
+    scaled = value * m
+    with np.errstate(invalid="ignore"):
+        return np.abs(scaled - np.round(scaled)) <= _EPS * np.maximum(1.0, np.abs(scaled))
+
+
+def _field_suspects(cols: Columns) -> np.ndarray:
+    """Rows that may fail the general path's item checks (a superset)."""
+    m = cols.frequency
+    with np.errstate(invalid="ignore"):
+        good_m = (m == np.round(m)) & (m >= 1) & (m <= MAX_FREQUENCY)
+        bad = ~np.isin(cols.timing, (0, 1)) | ~good_m
+        for v in (cols.deferral, cols.guarantee):
+            bad |= ~(np.isfinite(v) & (v >= 0))
+        life = np.isinf(cols.term) & (cols.term > 0)
+        bad |= ~(life | (np.isfinite(cols.term) & (cols.term > 0)))
+        bad |= ~(np.isfinite(cols.escalation) & (cols.escalation > -1))
+        bad |= ~life & (cols.guarantee > cols.term * (1 + 1e-12))
+        safe_m = np.where(good_m, m, 1.0)
+        for v in (np.where(life, 0.0, cols.term), cols.deferral, cols.guarantee):
+            bad |= ~_multiple(v, safe_m)
+        bad |= ~np.isfinite(cols.age + cols.age_adjustment)
+        mult = cols.mortality_multiplier
+        bad |= ~(np.isfinite(mult) & (mult >= 0))
+        bad |= ~((cols.flat_extra >= 0) & (cols.flat_extra <= 1))
+        d = cols.duration
+        bad |= ~np.isnan(d) & ~((d == np.round(d)) & (d >= 0) & np.isfinite(d))
+    return bad
+
+
+def problems(tables, cols: Columns, assumption: str) -> dict[str, list[str]]:
+    """Return the ItemError paths and messages the general path gives these items (empty
+    when there is none): the item checks, then a table index out of range, then the lives'
+    problems under the tables; each stage only when the ones before found nothing."""
+    errors: dict[str, list[str]] = {}
+    for n in np.flatnonzero(_field_suspects(cols)).tolist():
+        for path, msgs in annuity._check_item(_row_item(cols, n)).items():
+            errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    if errors:
+        return errors
+    bad_table = ~((cols.table >= 0) & (cols.table < len(tables)))
+    if bad_table.any():
+        return {f"{n}.lives.0.sex": ["no table for this life in the basis"]
+                for n in np.flatnonzero(bad_table).tolist()}
+    suspects = np.flatnonzero(_life_suspects(tables, cols, assumption))
+    if not suspects.size:
+        return {}
+    sub = cols.take(suspects)
+    _, found = build_lives(tables, sub.table, sub.age + sub.age_adjustment,
+                           np.where(np.isnan(sub.duration), np.inf, sub.duration),
+                           sub.mortality_multiplier, assumption, sub.flat_extra)
+    return {f"{int(suspects[pos])}.lives.0.{field}": [msg]
+            for pos, (field, msg) in sorted(found.items())}
+
+
+def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
+    """Lives that may be impossible under their tables (a superset of build_lives' finds):
+    outside the table's ages, selected outside the select table, or dead at their age."""
+    ages = cols.age + cols.age_adjustment
+    t = cols.table
+    lo = np.array([tb.first_age for tb in tables])[t]
+    hi = np.array([tb.last_age for tb in tables])[t]
+    outside = ~((ages >= lo - _SNAP) & (ages <= hi + _SNAP))
+    anchor = np.where(outside, lo, np.floor(ages + _SNAP).astype(np.int64))
+    dkey = _select_key(tables, t, cols.duration)
+    suspect = outside.copy()
+    for ti, table in enumerate(tables):
+        rows = (t == ti) & (dkey >= 0)
+        if rows.any():
+            sel = anchor[rows] - dkey[rows]
+            suspect[rows] |= (sel < table.select_first_age) | (sel > table.select_last_age)
+    ok = ~suspect
+    if ok.any():
+        q0 = _year_rates(tables, t[ok], anchor[ok], dkey[ok], cols.mortality_multiplier[ok],
+                         cols.flat_extra[ok], np.zeros(int(ok.sum()), dtype=np.int64))
+        frac = np.maximum(ages[ok] - anchor[ok], 0.0)
+        suspect[ok] = fraction_survival(q0, frac, assumption) <= 0
+    return suspect
+
+
+def _select_key(tables, t, duration) -> np.ndarray:
+    """The whole select duration where the life is in its select period, else -1."""
+    period = np.array([tb.select_period for tb in tables], dtype=float)[t]
+    with np.errstate(invalid="ignore"):
+        selected = np.isfinite(duration) & (duration < period)
+    return np.where(selected, np.nan_to_num(duration), -1).astype(np.int64)
+
+
+def _year_rates(tables, t, anchor, dkey, mult, extra, k):
+    """q of year ``k`` (offset from the integer age ``anchor``) of each life, arrays
+    broadcast: select rates within the select period, the multiplier and flat extra applied
+    and capped at 1, and q = 1 from the table's last age (as build_lives)."""
+    t, anchor, dkey, mult, extra, k = np.broadcast_arrays(t, anchor, dkey, mult, extra, k)
+    out = np.ones(t.shape)
+    for ti, table in enumerate(tables):
+        rows = t == ti
+        if not rows.any():
+            continue
+        age = anchor[rows] + k[rows]
+        index = age - table.first_age
+        base = np.where(index < len(table.q), table.q[np.clip(index, 0, len(table.q) - 1)],
+                        1.0)
+        period = table.select_period
+        if period:
+            d = dkey[rows]
+            dur = d + k[rows]
+            sel = (d >= 0) & (dur < period)
+            srow = np.clip(anchor[rows] - d - table.select_first_age, 0,
+                           table.select_q.shape[0] - 1)
+            base = np.where(sel, table.select_q[srow, np.clip(dur, 0, period - 1)], base)
+        out[rows] = np.where(age >= table.last_age, 1.0,
+                             np.minimum(base * mult[rows] + extra[rows], 1.0))
+    return out
+
+
+# ---------------------------------------------------------------------------------------------
+# Valuation
+
+
+def covered(valuation: Valuation, frequency) -> np.ndarray:
+    """Which items (by payments a year) this module values under ``valuation``."""
+    frequency = np.asarray(frequency)
+    if valuation.curve.kind != "flat":
+        return np.zeros(frequency.shape, dtype=bool)
+    return (valuation.approximation == "exact") | (frequency == 1)
+
+
+def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
+    """Work units: one an item under UDD (a few sums on shared columns); under the other
+    assumptions the per-year pass sums every payment date, as the general path does."""
+    if assumption == "udd":
+        return np.ones(len(cols), dtype=np.int64)
+    m = cols.frequency
+    ages = cols.age + cols.age_adjustment
+    last = np.array([tb.last_age for tb in tables], dtype=float)[cols.table]
+    horizon = last + 1.0 - ages
+    by_life = np.maximum(np.floor(np.maximum(horizon - cols.deferral, -1.0) * m + _EPS) + 1, 0)
+    count = np.minimum(by_life, np.rint(cols.term * m))
+    return np.maximum(count, 1).astype(np.int64)
+
+
+def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None = None,
+                  deadline: float | None = None) -> Values:
+    """Return the present value of 1 p.a. of each single-life discrete item in ``columns``
+    (a :class:`Columns`, a mapping of arrays or a pandas DataFrame), and its method code.
+
+    Items this module does not cover under ``valuation`` (see :func:`covered`) are valued
+    by the general path. Raises ItemError (paths like ``"3.lives.0.age"``, the general
+    path's messages), WorkLimitError and DeadlineError like
+    :func:`service.engine.annuity.value_annuities`.
+    """
+    cols = _as_columns(columns)
+    found = problems(tables, cols, valuation.fractional_age)
+    if found:
+        raise ItemError(found)
+    fast = covered(valuation, cols.frequency)
+    rest = np.flatnonzero(~fast)
+    fast_work = int(_work(tables, cols.take(fast), valuation.fractional_age).sum())
+    values = np.zeros(len(cols))
+    if rest.size:
+        left = None if max_work is None else max_work - fast_work
+        try:
+            got = annuity.value_annuities(tables, cols.take(rest).to_items(), valuation,
+                                          max_work=left, deadline=deadline, fast=False)
+        except WorkLimitError as exc:
+            raise WorkLimitError(exc.work + fast_work, max_work) from None
+        values[rest] = got.value
+        code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
+        code[rest] = got.method_code
+    else:
+        if max_work is not None and fast_work > max_work:
+            raise WorkLimitError(fast_work, max_work)
+        code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
+    which = np.flatnonzero(fast)
+    if which.size:
+        values[which] = _value(tables, cols.take(which), valuation, deadline)
+    return Values(values, code, methods(valuation))
+
+
+def _as_columns(columns) -> Columns:
+    if isinstance(columns, Columns):
+        return columns
+    if isinstance(columns, Mapping):
+        return Columns.from_dict(columns)
+    if hasattr(columns, "columns") and hasattr(columns, "to_numpy"):
+        return Columns.from_frame(columns)
+    raise TypeError("columns must be Columns, a mapping of arrays or a pandas DataFrame")
+
+
+def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure,
+             key_rates) -> Values | None:
+    """Value ``items`` with the covered ones here and the others by the general path, or
+    return None where nothing is covered (the caller then values them all itself).
+
+    Errors are the general path's: on any problem the whole batch is prepared by it, which
+    raises the same ItemError as without this module.
+    """
+    if valuation.curve.kind != "flat" or len(items) == 0:
+        return None
+    if measure is not None and np.any(measure):
+        return None  # sensitivities come from the general path's payments
+    exact = valuation.approximation == "exact"
+    rows, which = [], []
+    for n, item in enumerate(items):
+        p = item.payments
+        if (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
+                and (exact or p.frequency == 1)
+                and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
+                and type(item.lives[0].table) is int
+                and item.start_requires in START_REQUIREMENTS
+                and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)):
+            rows.append(_item_row(item))
+            which.append(n)
+    if not which:
+        return None
+    cols = _from_rows(rows)
+    if problems(tables, cols, valuation.fractional_age):
+        annuity._prepare(tables, items, valuation)  # raises the general path's ItemError
+        return None  # (not reached unless the checks disagree: then the general path)
+    which = np.array(which, dtype=np.intp)
+    fast_work = int(_work(tables, cols, valuation.fractional_age).sum())
+    size = len(items)
+    values = np.zeros(size)
+    code = np.full(size, EXACT_SUM, dtype=np.int8)
+    rest = np.setdiff1d(np.arange(size), which)
+    if rest.size:
+        left = None if max_work is None else max_work - fast_work
+        try:
+            got = annuity.value_annuities(tables, [items[n] for n in rest.tolist()], valuation,
+                                          max_work=left, deadline=deadline, fast=False)
+        except ItemError:
+            annuity._prepare(tables, items, valuation)  # the same problems, placed in the batch
+            raise
+        except WorkLimitError as exc:
+            raise WorkLimitError(exc.work + fast_work, max_work) from None
+        values[rest] = got.value
+        code[rest] = got.method_code
+    elif max_work is not None and fast_work > max_work:
+        raise WorkLimitError(fast_work, max_work)
+    values[which] = _value(tables, cols, valuation, deadline)
+    return Values(values, code, methods(valuation))
+
+
+def _slot_tables(ms, delta):
+    """For each frequency m: P0[k] = sum_(i<k) x^i and P1[k] = sum_(i<k) i x^i, x = e^(-delta/m),
+    k = 0..m, concatenated; return (offset by m, P0, P1)."""
+    offset = {}
+    p0, p1 = [], []
+    at = 0
+    for m in ms:
+        i = np.arange(m, dtype=float)
+        x = np.exp(-delta * i / m)
+        p0.append(np.concatenate([[0.0], np.cumsum(x)]))
+        p1.append(np.concatenate([[0.0], np.cumsum(i * x)]))
+        offset[m] = at
+        at += m + 1
+    return offset, np.concatenate(p0), np.concatenate(p1)
+
+
+def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
+    """Values of validated, covered items (flat rate; exact sums)."""
+    n = len(cols)
+    values = np.zeros(n)
+    if not n:
+        return values
+    ages = cols.age + cols.age_adjustment
+    anchor = np.floor(ages + _SNAP).astype(np.int64)
+    dkey = _select_key(tables, cols.table, cols.duration)
+    growth = np.log1p(cols.escalation)
+    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
+                        cols.table))
+    m_all = cols.frequency.astype(np.int64)
+    delta = valuation.curve.constant_force
+    ms = np.unique(m_all).tolist()
+    slots = _slot_tables(ms, delta)
+    for start in range(0, n, _CHUNK_ITEMS):
+        annuity._on_time(deadline)
+        idx = order[start:start + _CHUNK_ITEMS]
+        values[idx] = _value_chunk(tables, cols, idx, ages[idx], anchor[idx], dkey[idx],
+                                   growth[idx], m_all[idx], delta, valuation.fractional_age,
+                                   slots)
+    return values
+
+
+def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assumption, slots):
+    t = cols.table[idx]
+    mult = cols.mortality_multiplier[idx]
+    extra = cols.flat_extra[idx]
+    size = idx.size
+    # Chains: consecutive items (sorted by key) with the same key share one.
+    keys = (t, dkey, mult, extra, anchor, growth)
+    new = np.zeros(size, dtype=bool)
+    new[0] = True
+    for key in keys:
+        new[1:] |= key[1:] != key[:-1]
+    chain = np.cumsum(new) - 1
+    rep = np.flatnonzero(new)
+    last = np.array([tb.last_age for tb in tables])
+    width = int((last[t[rep]] - anchor[rep]).max()) + 3
+    k = np.arange(width)[None, :]
+    q = _year_rates(tables, t[rep][:, None], anchor[rep][:, None], dkey[rep][:, None],
+                    mult[rep][:, None], extra[rep][:, None], k)
+    cum = np.ones((rep.size, width + 1))
+    cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
+    frac = np.maximum(ages - anchor, 0.0)
+    start = fraction_survival(q[chain, 0], frac, assumption)
+
+    # Payment windows (as annuity._payment_count and _discrete_values).
+    u = cols.deferral[idx]
+    mf = m.astype(float)
+    arr = (cols.timing[idx] == 1).astype(np.int64)
+    horizon = last[t] + 1.0 - (anchor + frac)
+    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
+    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
+    count = np.minimum(np.maximum(by_life, guaranteed),
+                       np.rint(cols.term[idx] * mf)).astype(np.int64)
+    first = np.minimum(guaranteed, count)
+    n0 = np.rint(u * mf).astype(np.int64) + arr
+
+    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
+    fm = frac * mf
+    big = np.floor(fm).astype(np.int64)
+    phi_ = fm - big
+    snap = phi_ >= 1.0 - mf * _SNAP
+    big = np.where(snap, big + 1, big)
+    phi_ = np.where(snap, phi_ - 1.0, phi_)
+    dq, dm = np.divmod(big + n0, m)
+    kappa = np.exp(delta * big / mf - dq * growth)
+    rho = np.exp(-growth)
+    lw = growth - delta  # ln w
+
+    values = np.zeros(size)
+    # The guarantee: P(alive at u) v^u sum over its years, in closed form.
+    has_g = guaranteed > 0
+    if has_g.any():
+        s = frac + u
+        ku = np.floor(s + _SNAP)
+        ru = np.clip(s - ku, 0.0, 1.0)
+        ku = np.clip(ku, 0, width).astype(np.intp)
+        alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
+                                                   assumption) / start
+        whole, part = np.divmod(guaranteed, m)
+        lam = delta - growth
+        i = math.expm1(delta)
+        advance = arr == 0
+        years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
+            i, 1.0, m=mf, advance=advance)
+        tail = np.where(part > 0, np.exp(-lam * whole)
+                        * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
+        values += np.where(has_g, alive * np.exp(-delta * u) * (years + tail), 0.0)
+
+    live = count > first
+    if not live.any():
+        return values
+    ka, ia = np.divmod(n0 + first + big, m)
+    kb, ib = np.divmod(n0 + count - 1 + big, m)
+    ka = np.where(live, ka, 0)
+    kb = np.where(live, np.minimum(kb, width - 1), 0)
+    ctx = _Slots(m, mf, dm, rho, kappa, phi_, slots, delta)
+    life = np.zeros(size)
+    if assumption == "udd":
+        cum2 = np.concatenate([cum, np.zeros((rep.size, 1))], axis=1)  # C up to width + 1
+        one = np.zeros(size, dtype=np.int64)
+        hi_first = np.where(kb == ka, ib + 1, m)
+        a1, b1 = ctx.weights(ia, hi_first)
+        life += np.exp(ka * lw) * (a1 * cum2[chain, ka] + b1 * cum2[chain, ka + 1])
+        two = live & (kb > ka)
+        a2, b2 = ctx.weights(one, ib + 1)
+        life += np.where(two, np.exp(kb * lw) * (a2 * cum2[chain, kb] + b2 * cum2[chain, kb + 1]),
+                         0.0)
+        mid = live & (kb > ka + 1)
+        if mid.any():
+            af, bf = ctx.weights(one, m)
+            life += _whole_years(cum2, chain, lw, growth, delta, rep, ka, kb, af, bf, mid)
+    else:
+        life = _per_year(q, cum, chain, lw, ka, kb, ia, ib, ctx, assumption, live,
+                         (frac, u, n0 - arr, big))
+    values += np.where(live, life / (mf * start), 0.0)
+    return values
+
+
+@dataclass(frozen=True, eq=False)
+class _Slots:
+    """Per-item slot data: sums of c_i (1 - s_i) and c_i s_i over slot ranges."""
+
+    m: np.ndarray
+    mf: np.ndarray
+    dm: np.ndarray
+    rho: np.ndarray
+    kappa: np.ndarray
+    phi: np.ndarray
+    tables: tuple
+    delta: float
+
+    def weights(self, lo, hi):
+        """(A, B): sums of c_i (1 - s_i) and c_i s_i for slots lo <= i < hi."""
+        offset, p0, p1 = self.tables
+        base = _offsets(self.m, offset)
+        lo_ = np.minimum(lo, hi)
+        lo_in, hi_in = np.minimum(lo_, self.dm), np.minimum(hi, self.dm)
+        lo_out, hi_out = np.maximum(lo_, self.dm), np.maximum(hi, self.dm)
+        s0 = (self.rho * (p0[base + hi_in] - p0[base + lo_in])
+              + (p0[base + hi_out] - p0[base + lo_out]))
+        s1 = (self.rho * (p1[base + hi_in] - p1[base + lo_in])
+              + (p1[base + hi_out] - p1[base + lo_out]))
+        b = self.kappa * (self.phi * s0 + s1) / self.mf
+        a = self.kappa * ((self.mf - self.phi) * s0 - s1) / self.mf
+        # The first slot's fraction is clipped to 0 where phi < 0 (an age snapped up).
+        clipped = (lo_ == 0) & (hi > 0) & (self.phi < 0)
+        if clipped.any():
+            c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
+            shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
+            a, b = a - shift, b + shift
+        return a, b
+
+
+def _offsets(m, offset):
+    lookup = np.zeros(int(m.max()) + 1, dtype=np.int64)
+    for key, at in offset.items():
+        if key < lookup.size:
+            lookup[key] = at
+    return lookup[m]
+
+
+def _whole_years(cum2, chain, lw, growth, delta, rep, ka, kb, af, bf, mid):
+    """A_full M0 + B_full M1 over the whole years ka < K < kb of each item ``mid``, from
+    cumulative columns of its chain (or directly where the difference would cancel)."""
+    cols = cum2.shape[1]  # C_0 .. C_(width+1)
+    kk = np.arange(cols - 1)
+    w = np.exp(kk[None, :] * lw[rep][:, None])
+    x = w * cum2[:, :-1]
+    y = w * cum2[:, 1:]
+    zero = np.zeros((rep.size, 1))
+    px = np.concatenate([zero, np.cumsum(x, axis=1)], axis=1)
+    py = np.concatenate([zero, np.cumsum(y, axis=1)], axis=1)
+    sx = np.concatenate([np.cumsum(x[:, ::-1], axis=1)[:, ::-1], zero], axis=1)
+    sy = np.concatenate([np.cumsum(y[:, ::-1], axis=1)[:, ::-1], zero], axis=1)
+    lo = np.where(mid, ka + 1, 0)
+    hi = np.where(mid, kb, 0)
+    c = chain
+    by_prefix = (px[c, lo] * af + py[c, lo] * bf) <= (sx[c, hi] * af + sy[c, hi] * bf)
+    m0 = np.where(by_prefix, px[c, hi] - px[c, lo], sx[c, lo] - sx[c, hi])
+    m1 = np.where(by_prefix, py[c, hi] - py[c, lo], sy[c, lo] - sy[c, hi])
+    value = af * m0 + bf * m1
+    taken = np.where(by_prefix, px[c, lo] * af + py[c, lo] * bf, sx[c, hi] * af + sy[c, hi] * bf)
+    bad = mid & (taken > _CANCELLATION * value)
+    if bad.any():
+        which = np.flatnonzero(bad)
+        direct = np.zeros(which.size)
+        for part in _pair_chunks(hi[which] - lo[which]):
+            sel = which[part]
+            own, k = _expand(np.arange(sel.size), lo[sel], hi[sel])
+            item = sel[own]
+            term = np.exp(k * lw[item]) * (af[item] * cum2[c[item], k]
+                                           + bf[item] * cum2[c[item], k + 1])
+            direct[part] = np.bincount(own, weights=term, minlength=sel.size)
+        value[which] = direct
+    return np.where(mid, value, 0.0)
+
+
+def _expand(owner, start, stop):
+    counts = np.maximum(stop - start, 0)
+    own = np.repeat(owner, counts)
+    firsts = np.cumsum(counts) - counts
+    j = np.arange(counts.sum()) - np.repeat(firsts, counts) + np.repeat(start, counts)
+    return own, j
+
+
+def _pair_chunks(cost):
+    """Yield index arrays of consecutive entries whose summed cost stays near _CHUNK_PAIRS."""
+    total = np.cumsum(cost)
+    start = 0
+    while start < cost.size:
+        base = total[start - 1] if start else 0
+        stop = int(np.searchsorted(total, base + _CHUNK_PAIRS, side="right"))
+        stop = max(stop, start + 1)
+        yield np.arange(start, stop)
+        start = stop
+
+
+def _per_year(q, cum, chain, lw, ka, kb, ia, ib, ctx: _Slots, assumption, live, pay):
+    """Life-contingent values summed slot by slot within each year of age (any assumption),
+    vectorised over the (item, year) pairs and looping over the slots of each frequency.
+
+    Each payment's age is found as the general path finds it (f + t, t = u + (j + arr)/m,
+    the same floating-point steps): under a constant force or Balducci's assumption a year
+    with q = 1 keeps the life only at its very start, so rounding decides a payment there.
+    """
+    frac, u, n0, big = pay
+    size = chain.size
+    out = np.zeros(size)
+    width = q.shape[1]
+    for m in np.unique(ctx.m[live]).tolist():
+        group = np.flatnonzero(live & (ctx.m == m))
+        for part in _pair_chunks((kb[group] - ka[group] + 1) * max(1, m // 4)):
+            sel = group[part]
+            own, k = _expand(sel, ka[sel], kb[sel] + 1)
+            lo = np.where(k == ka[own], ia[own], 0)
+            hi = np.where(k == kb[own], ib[own] + 1, m)
+            ch = chain[own]
+            base = ctx.kappa[own]
+            dm, rho = ctx.dm[own], ctx.rho[own]
+            f_, u_ = frac[own], u[own]
+            j0 = k * m - big[own] - n0[own]  # j + arr of slot 0 of year k (n0 here: U)
+            acc = np.zeros(own.size)
+            for i in range(m):
+                active = (i >= lo) & (i < hi)
+                if not active.any():
+                    continue
+                s = f_ + (u_ + (j0 + i) / m)
+                kk = np.floor(s + _SNAP)
+                r = np.clip(s - kk, 0.0, 1.0)
+                kk = np.clip(kk, 0, width).astype(np.intp)
+                surv = cum[ch, kk] * fraction_survival(q[ch, np.minimum(kk, width - 1)], r,
+                                                       assumption)
+                c = base * math.exp(-ctx.delta * i / m) * np.where(i < dm, rho, 1.0)
+                acc += np.where(active, c * surv, 0.0)
+            out += np.bincount(own, weights=np.exp(k * lw[own]) * acc, minlength=size)
+    return out
