@@ -53,7 +53,8 @@ openapi: install
 check-tables: install
 	$(BIN)/annuity-service check-tables tables
 
-# Every benchmark side by side (a few minutes); writes bench/results/latest.md and latest.json.
+# Every benchmark side by side (about eight minutes); writes bench/results/latest.md, latest.json
+# and the floors plots (PNG; matplotlib comes with requirements.lock).
 bench: install
 	$(BIN)/python -m bench.run
 

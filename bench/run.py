@@ -2,7 +2,7 @@
 
     make bench                                    # everything, a few minutes
     .venv/bin/python -m bench.run --only curves   # one suite (curves, risk, costly,
-                                                  # capabilities, mortality, http),
+                                                  # capabilities, mortality, floors, http),
                                                   # printed, results left as they were
 
 Shared, noisy machines: read the ratios, not the seconds. See bench/README.md.
@@ -18,10 +18,10 @@ from pathlib import Path
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from bench import capabilities, costly, curves, http_path, mortality, risk  # noqa: E402
+from bench import capabilities, costly, curves, floors, http_path, mortality, risk  # noqa: E402
 from bench.common import ROOT, environment  # noqa: E402
 
-SUITES = ("curves", "risk", "costly", "capabilities", "mortality", "http")
+SUITES = ("curves", "risk", "costly", "capabilities", "mortality", "floors", "http")
 
 
 def main() -> int:
@@ -35,6 +35,8 @@ def main() -> int:
     parser.add_argument("--costly-repeats", type=int, default=3,
                         help="repeats of each costly request (median)")
     parser.add_argument("--kinds", help="costly kinds to run, separated by ';' (default all)")
+    parser.add_argument("--large", type=int, default=floors.LARGE,
+                        help="items in the floors suite's large batch (figure 2)")
     parser.add_argument("--out", type=Path, default=ROOT / "bench" / "results")
     args = parser.parse_args()
     chosen = args.only.split(",") if args.only else list(SUITES)
@@ -58,6 +60,10 @@ def main() -> int:
             sections.append(costly.run(args.costly_repeats, kinds))
         elif name == "mortality":
             sections.append(mortality.run(args.items, args.repeats))
+        elif name == "floors":
+            # The PNG plots go with the results: only when they are written.
+            sections.append(floors.run(args.repeats, None if args.only else args.out,
+                                       args.large))
         elif name == "http":
             sections.append(http_path.run(args.repeats))
         else:
