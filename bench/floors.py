@@ -348,13 +348,14 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
     ages = rng.uniform(55, 85, BATCH)
     sexes = rng.integers(0, 2, BATCH)
     annual = engine.prepare(simple_columns(ages, sexes, "advance", 1))
-    continuous = engine.prepare(simple_columns(ages, sexes, "continuous", 1))
+    # Columns hold discrete timings only: continuous payments go as items.
+    continuous = to_items(simple_columns(ages, sexes, "continuous", 1))
     partner = np.clip(ages + rng.uniform(-5, 5, BATCH), 40, 110)
     pairs = [Item((Life(float(a), int(s)), Life(float(b), 1 - int(s))), Payments("advance", 1))
              for a, b, s in zip(ages, partner, sexes, strict=True)]
     tasks6 = {"annual": lambda: engine.value(annual),
               "two lives": lambda: value_annuities(tables, pairs, valuation),
-              "continuous": lambda: engine.value(continuous)}
+              "continuous": lambda: value_annuities(tables, continuous, valuation).value}
     items_annual = None
     if engine.api != "value_annuities":
         items_annual = to_items(simple_columns(ages, sexes, "advance", 1))
