@@ -78,7 +78,7 @@ def _rates_only(table):
     """The same rates without the law, as a table read from a file would be."""
     from service.engine.tables import MortalityTable
 
-    return MortalityTable(table.first_age, table.q)
+    return MortalityTable.of(table.first_age, table.q)
 
 
 class TestLivesForce:
