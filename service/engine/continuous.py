@@ -8,6 +8,7 @@ import numpy as np
 from service.engine import integrals
 from service.engine.batch import _Batch, _chunks, _expand, _on_time, _window_end, _work
 from service.engine.curves import Curve
+from service.engine.survival import by_assumption
 
 #: No discounting: for undiscounted expected amounts.
 _UNDISCOUNTED = Curve.flat(0.0)
@@ -108,22 +109,33 @@ def _weight_in(batch, cut: _Cut, piece, t):
     return np.where(cut.certain[piece], batch.certain_weight[own], batch.life_weight(own, t))
 
 
+def _decay_shape(decay, pole, q, alive):
+    return decay + np.where(alive, -np.log1p(-np.where(alive, q, 0.0)), 0.0), pole
+
+
+def _pole_shape(decay, pole, q, r, alive):
+    with np.errstate(divide="ignore"):
+        far = np.where(alive & (q > 0), (1 - q + q * r) / np.where(q > 0, q, 1.0), np.inf)
+    return decay, np.minimum(pole, far)
+
+
+#: How one life's rates within a piece shape its survival there, by assumption.
+_RULE_SHAPES = {"udd": lambda decay, pole, q, r, alive: (decay, pole),
+                "constant-force": lambda decay, pole, q, r, alive: _decay_shape(decay, pole, q,
+                                                                               alive),
+                "balducci": _pole_shape}
+
+
 def _rule_shape(assumption, rates):
     """(decay, pole) of the survival within each piece, for :meth:`Curve.gauss_rule`.
 
     Under a constant force survival decays at -ln p per life; Balducci's survival has a pole
     (p + q r) / q before the piece's start; UDD's is a polynomial.
     """
+    shape = by_assumption(_RULE_SHAPES, assumption)
     decay, pole = 0.0, np.inf
     for q, r in rates:
-        alive = q < 1
-        if assumption == "constant-force":
-            decay = decay + np.where(alive, -np.log1p(-np.where(alive, q, 0.0)), 0.0)
-        elif assumption == "balducci":
-            with np.errstate(divide="ignore"):
-                far = np.where(alive & (q > 0), (1 - q + q * r) / np.where(q > 0, q, 1.0),
-                               np.inf)
-            pole = np.minimum(pole, far)
+        decay, pole = shape(decay, pole, q, r, q < 1)
     return decay, pole
 
 
@@ -178,20 +190,21 @@ def _segment_integral(batch, cut: _Cut, curve: Curve, pc=None):
     return value
 
 
+#: The closed-form integral over a piece for one life, and for two, by assumption.
+_SINGLE = {"udd": integrals.udd, "constant-force": integrals.constant_force,
+           "balducci": integrals.balducci}
+_PAIR = {"udd": integrals.udd_pair,
+         "constant-force": lambda q1, r1, q2, r2, delta, length: integrals.constant_force(
+             q1, r1, delta, length, q2, r2),
+         "balducci": integrals.balducci_pair}
+
+
 def _single(assumption, q, r, delta, length):
-    if assumption == "udd":
-        return integrals.udd(q, r, delta, length)
-    if assumption == "constant-force":
-        return integrals.constant_force(q, r, delta, length)
-    return integrals.balducci(q, r, delta, length)
+    return by_assumption(_SINGLE, assumption)(q, r, delta, length)
 
 
 def _pair(assumption, q1, r1, q2, r2, delta, length):
-    if assumption == "udd":
-        return integrals.udd_pair(q1, r1, q2, r2, delta, length)
-    if assumption == "constant-force":
-        return integrals.constant_force(q1, r1, delta, length, q2, r2)
-    return integrals.balducci_pair(q1, r1, q2, r2, delta, length)
+    return by_assumption(_PAIR, assumption)(q1, r1, q2, r2, delta, length)
 
 
 def _continuous_values(batch: _Batch, which: np.ndarray, curve: Curve,
