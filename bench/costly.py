@@ -2,7 +2,7 @@
 
 For each kind of item, the largest batch the service accepts is built: one item repeated, at
 most MAX_ITEMS (10,000) items and at most MAX_EVALUATION_POINTS (20,000,000) work units, sized
-with the engine's own pricing (``service.engine.annuity._work``, which ``value_annuities``
+with the engine's own pricing (``service.engine.batch._work``, which ``value_annuities``
 checks with ``max_work`` before valuing anything). Then ``value_annuities`` (with every
 measure in the same call for items with measures, as the API asks) is timed, the median of
 a few repeats, and its peak memory is measured once with tracemalloc (numpy's buffers
@@ -45,16 +45,13 @@ from bench.common import (  # noqa: E402
 from bench.curves import SPOT_30  # noqa: E402
 from service import create_app  # noqa: E402
 from service.engine.annuity import (  # noqa: E402
-    _SEGMENT_COST,
     Item,
     Life,
     Payments,
     Valuation,
-    _measure_work,
-    _prepare,
-    _work,
     value_annuities,
 )
+from service.engine.batch import _SEGMENT_COST, _measure_work, _prepare, _work  # noqa: E402
 from service.engine.curves import Curve  # noqa: E402
 
 #: Production: deploy/k8s/deployment.yaml (WEB_CONCURRENCY 4, ANNUITY_VALUATIONS_PER_WORKER 3,

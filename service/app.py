@@ -20,7 +20,7 @@ def create_app(config: dict | None = None) -> Flask:
         TABLES_DIR=str(DEFAULT_TABLES),
         MAX_ITEMS=10_000,
         # Work units one request may need (about one per payment date or continuous segment,
-        # weighted by cost: engine/annuity.py _work). The slowest accepted request of each
+        # weighted by cost: engine/batch.py _work). The slowest accepted request of each
         # kind takes a few seconds of one core alone (bench/); with every worker busy it may
         # take several times that, so the deadline below stops it before gunicorn would.
         MAX_EVALUATION_POINTS=20_000_000,

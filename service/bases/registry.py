@@ -133,9 +133,8 @@ class Basis:
     names: tuple[str, ...] = ()
 
     def __post_init__(self):
-        if not self.names:
-            object.__setattr__(self, "names",
-                               self.sexes + tuple(b.name for b in self.blends))
+        if self.names != self.sexes + tuple(b.name for b in self.blends):
+            raise ValueError("a Basis names its tables: its sexes, then its blends")
 
     @property
     def ref(self) -> str:
@@ -769,7 +768,7 @@ def _csv_table(folder: Path, root: Path, rel: str, name: str, section: str, dige
                                   f"({ages[-1]})", "the table must close with q = 1")
     first_age = int(ages[0])
     if not select_cols:
-        return MortalityTable(first_age, q)
+        return MortalityTable.of(first_age, q)
     filled = np.array([all(frame[c].iloc[r].strip() for c in select_cols)
                        for r in range(len(frame))])
     n_sel = int(np.argmin(filled)) if not filled.all() else len(frame)
@@ -783,7 +782,7 @@ def _csv_table(folder: Path, root: Path, rel: str, name: str, section: str, dige
     select = np.column_stack([_rates(frame[c].iloc[:n_sel], lines, ages, at, c)
                               for c in select_cols])
     try:
-        return MortalityTable(first_age, q, first_age, select)
+        return MortalityTable.of(first_age, q, first_age, select)
     except TableError as exc:
         raise at.error(None, str(exc), "the select rates do not make a valid table") from exc
 
@@ -837,7 +836,7 @@ def _load_improvement(folder: Path, root: Path, spec: ImprovementSpec, name: str
                            f"the scale does not cover ages {' and '.join(missing)} of the "
                            f"{sex} table")
     try:
-        scale = Scale(ages, rates[:, 0] if years is None else rates, spec.base_year,
+        scale = Scale.of(ages, rates[:, 0] if years is None else rates, spec.base_year,
                       years=years, long_term_rate=spec.long_term_rate,
                       long_term_from=spec.long_term_from)
     except TableError as exc:

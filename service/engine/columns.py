@@ -60,7 +60,13 @@ from dataclasses import dataclass
 import numpy as np
 
 from service.engine import annuity
-from service.engine.annuity import (
+from service.engine.annuity import Values
+from service.engine.batch import _on_time, _prepare
+from service.engine.checks import _check_item
+from service.engine.errors import ItemError, WorkLimitError
+from service.engine.integrals import phi
+from service.engine.interest import annuity_certain
+from service.engine.items import (
     EXACT_SUM,
     MAX_FREQUENCY,
     START_REQUIREMENTS,
@@ -68,12 +74,8 @@ from service.engine.annuity import (
     Life,
     Payments,
     Valuation,
-    Values,
     methods,
 )
-from service.engine.errors import ItemError, WorkLimitError
-from service.engine.integrals import phi
-from service.engine.interest import annuity_certain
 from service.engine.survival import build_lives, fraction_survival
 
 #: Timing codes of :attr:`Columns.timing`; any other code is an invalid timing.
@@ -295,7 +297,7 @@ def problems(tables, cols: Columns, assumption: str) -> dict[str, list[str]]:
     problems under the tables; each stage only when the ones before found nothing."""
     errors: dict[str, list[str]] = {}
     for n in np.flatnonzero(_field_suspects(cols)).tolist():
-        for path, msgs in annuity._check_item(_row_item(cols, n)).items():
+        for path, msgs in _check_item(_row_item(cols, n)).items():
             errors.setdefault(f"{n}.{path}", []).extend(msgs)
     if errors:
         return errors
@@ -476,7 +478,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         return None
     cols = _from_rows(rows)
     if problems(tables, cols, valuation.fractional_age):
-        annuity._prepare(tables, items, valuation)  # raises the general path's ItemError
+        _prepare(tables, items, valuation)  # raises the general path's ItemError
         return None  # (not reached unless the checks disagree: then the general path)
     which = np.array(which, dtype=np.intp)
     fast_work = int(_work(tables, cols, valuation.fractional_age).sum())
@@ -490,7 +492,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
             got = annuity.value_annuities(tables, [items[n] for n in rest.tolist()], valuation,
                                           max_work=left, deadline=deadline, fast=False)
         except ItemError:
-            annuity._prepare(tables, items, valuation)  # the same problems, placed in the batch
+            _prepare(tables, items, valuation)  # the same problems, placed in the batch
             raise
         except WorkLimitError as exc:
             raise WorkLimitError(exc.work + fast_work, max_work) from None
@@ -535,7 +537,7 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     ms = np.unique(m_all).tolist()
     slots = _slot_tables(ms, delta)
     for start in range(0, n, _CHUNK_ITEMS):
-        annuity._on_time(deadline)
+        _on_time(deadline)
         idx = order[start:start + _CHUNK_ITEMS]
         values[idx] = _value_chunk(tables, cols, idx, ages[idx], anchor[idx], dkey[idx],
                                    growth[idx], m_all[idx], delta, valuation.fractional_age,
@@ -566,7 +568,7 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
     frac = np.maximum(ages - anchor, 0.0)
     start = fraction_survival(q[chain, 0], frac, assumption)
 
-    # Payment windows (as annuity._payment_count and _discrete_values).
+    # Payment windows (as batch._payment_count and discrete._discrete_values).
     u = cols.deferral[idx]
     mf = m.astype(float)
     arr = (cols.timing[idx] == 1).astype(np.int64)

@@ -45,7 +45,7 @@ with present values PV_j at times t_j, V = sum PV_j and
 
 computed from the expected payments, never by revaluing (:meth:`Curve.moments`).
 
-How the engine uses this module (annuity.py)
+How the engine uses this module (discrete.py, continuous.py)
 --------------------------------------------------------------------------------------
 ``Valuation.interest`` becomes a :class:`Curve` (``Curve.flat(rate)`` for a plain rate); the
 audit block takes ``curve.describe()`` plus ``"digest": curve.digest()`` and the source.

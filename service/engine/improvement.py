@@ -17,7 +17,7 @@ The factors are tabulated once per scale over the calendar years
 raises ValueError.
 """
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -59,7 +59,11 @@ def _consecutive(values, what: str) -> np.ndarray:
 
 @dataclass(frozen=True, eq=False)
 class Scale:
-    """An improvement scale by age (1-D) or by age and calendar year (2-D)."""
+    """An improvement scale by age (1-D) or by age and calendar year (2-D).
+
+    Build it with :meth:`of`, which validates the rates and tabulates the factors; the
+    constructor takes the finished read-only arrays (as :meth:`of` makes them).
+    """
 
     ages: np.ndarray
     rates: np.ndarray
@@ -67,36 +71,41 @@ class Scale:
     years: np.ndarray | None = None
     long_term_rate: float = 0.0
     long_term_from: int | None = None
+    #: F(a, y) for every scale age and every year of the factor window.
+    factors: np.ndarray = field(default=None, repr=False)
 
-    def __post_init__(self):
-        ages = _consecutive(self.ages, "scale ages")
+    @classmethod
+    def of(cls, ages, rates, base_year: int, years=None, long_term_rate: float = 0.0,
+           long_term_from: int | None = None) -> "Scale":
+        """Validate a scale given as sequences and build it with its factors tabulated."""
+        ages = _consecutive(ages, "scale ages")
         try:
-            rates = np.array(self.rates, dtype=float)
+            rates = np.array(rates, dtype=float)
         except (TypeError, ValueError):
             raise TableError("improvement rates must be numbers") from None
-        if not isinstance(self.base_year, (int, np.integer)) or isinstance(self.base_year, bool):
+        if not isinstance(base_year, (int, np.integer)) or isinstance(base_year, bool):
             raise TableError("base_year must be an integer calendar year")
-        long_term_rate = float(self.long_term_rate)
+        long_term_rate = float(long_term_rate)
         if rates.ndim == 1:
-            if self.years is not None:
+            if years is not None:
                 raise TableError("years are only for a scale by age and year (2-D rates)")
             if rates.shape != ages.shape:
                 raise TableError(f"{rates.size} rates for {ages.size} ages")
-            years = None
-            if self.long_term_from is not None and (
-                    not isinstance(self.long_term_from, (int, np.integer))
-                    or isinstance(self.long_term_from, bool)):
+            years_axis = None
+            if long_term_from is not None and (
+                    not isinstance(long_term_from, (int, np.integer))
+                    or isinstance(long_term_from, bool)):
                 raise TableError("long_term_from must be an integer calendar year")
         elif rates.ndim == 2:
-            if self.long_term_from is not None:
+            if long_term_from is not None:
                 raise TableError("long_term_from is only for a scale by age (1-D rates); "
                                  "a 2-D scale uses long_term_rate after its last year")
-            if self.years is None:
+            if years is None:
                 raise TableError("a scale by age and year needs the calendar years of its columns")
-            years = _consecutive(self.years, "scale years")
-            if rates.shape != (ages.size, years.size):
+            years_axis = _consecutive(years, "scale years")
+            if rates.shape != (ages.size, years_axis.size):
                 raise TableError(f"rates have shape {rates.shape}, expected "
-                                 f"({ages.size}, {years.size}) for the ages and years given")
+                                 f"({ages.size}, {years_axis.size}) for the ages and years given")
         else:
             raise TableError("improvement rates must be 1-D (by age) or 2-D (by age and year)")
         for value, what in ((rates, "improvement rates"), (np.array(long_term_rate),
@@ -105,14 +114,23 @@ class Scale:
                 raise TableError(f"{what} must be finite")
             if (value >= 1).any():
                 raise TableError(f"{what} must be below 1 (1 - r must stay positive)")
-        object.__setattr__(self, "ages", _frozen(ages))
-        object.__setattr__(self, "rates", _frozen(rates))
-        object.__setattr__(self, "base_year", int(self.base_year))
-        object.__setattr__(self, "years", None if years is None else _frozen(years))
-        object.__setattr__(self, "long_term_rate", long_term_rate)
-        if self.long_term_from is not None:
-            object.__setattr__(self, "long_term_from", int(self.long_term_from))
-        object.__setattr__(self, "_factors", _frozen(self._tabulate()))
+        ages, rates = _frozen(ages), _frozen(rates)
+        base_year = int(base_year)
+        years_axis = None if years_axis is None else _frozen(years_axis)
+        if long_term_from is not None:
+            long_term_from = int(long_term_from)
+        factors = _tabulate(ages, rates, base_year, years_axis, long_term_rate, long_term_from)
+        return cls(ages, rates, base_year, years_axis, long_term_rate, long_term_from,
+                   _frozen(factors))
+
+    def __post_init__(self):
+        window = (self.ages.size, YEARS_BEFORE + YEARS_AFTER + 1)
+        arrays = [self.ages, self.rates, self.factors] + (
+            [] if self.years is None else [self.years])
+        if not (all(isinstance(a, np.ndarray) and not a.flags.writeable for a in arrays)
+                and type(self.base_year) is int and self.factors.shape == window):
+            raise TypeError("a Scale holds read-only arrays and its tabulated factors: build "
+                            "it with Scale.of")
 
     @property
     def first_year(self) -> int:
@@ -138,30 +156,7 @@ class Scale:
         i = self._age_index(ages)
         years = _integers(years, "years")
         i, years = np.broadcast_arrays(i, years)
-        if self.rates.ndim == 1:
-            r = self.rates[i]
-            if self.long_term_from is not None:
-                r = np.where(years >= self.long_term_from, self.long_term_rate, r)
-            return r
-        col = years - self.years[0]
-        inside = self.rates[i, np.clip(col, 0, self.years.size - 1)]
-        return np.where(col >= self.years.size, self.long_term_rate, inside)
-
-    def _tabulate(self) -> np.ndarray:
-        """F(a, y) for every scale age and every year of the window, shape (ages, years)."""
-        before = np.arange(self.first_year, self.base_year)
-        after = np.arange(self.base_year, self.last_year)
-        ages = self.ages[:, None]
-        factors = np.empty((self.ages.size, YEARS_BEFORE + YEARS_AFTER + 1))
-        with np.errstate(over="ignore", under="ignore"):
-            # Backwards: F(a, y) = 1 / prod_{t=y}^{base-1} (1 - r(a, t)).
-            back = np.cumprod((1.0 - self.rate(ages, before[None, :]))[:, ::-1], axis=1)
-            factors[:, :YEARS_BEFORE] = (1.0 / back)[:, ::-1]
-            factors[:, YEARS_BEFORE] = 1.0
-            # Forwards: F(a, y) = prod_{t=base}^{y-1} (1 - r(a, t)).
-            factors[:, YEARS_BEFORE + 1:] = np.cumprod(1.0 - self.rate(ages, after[None, :]),
-                                                       axis=1)
-        return factors
+        return _rate(self.rates, self.years, self.long_term_rate, self.long_term_from, i, years)
 
     def factor(self, ages, years) -> np.ndarray:
         """Return the cumulative factor F(age, year), broadcasting integer arrays."""
@@ -170,7 +165,41 @@ class Scale:
         if years.size and (years.min() < self.first_year or years.max() > self.last_year):
             raise ValueError(f"calendar years must lie in {self.first_year} to {self.last_year} "
                              f"for a scale with base year {self.base_year}")
-        return self._factors[i, years - self.first_year]
+        return self.factors[i, years - self.first_year]
+
+
+def _rate(rates, years_axis, long_term_rate, long_term_from, i, years) -> np.ndarray:
+    """r at scale-age indices ``i`` in calendar ``years`` (broadcast integer arrays)."""
+    if rates.ndim == 1:
+        r = rates[i]
+        if long_term_from is not None:
+            r = np.where(years >= long_term_from, long_term_rate, r)
+        return r
+    col = years - years_axis[0]
+    inside = rates[i, np.clip(col, 0, years_axis.size - 1)]
+    return np.where(col >= years_axis.size, long_term_rate, inside)
+
+
+def _tabulate(ages, rates, base_year, years_axis, long_term_rate, long_term_from
+              ) -> np.ndarray:
+    """F(a, y) for every scale age and every year of the window, shape (ages, years)."""
+    before = np.arange(base_year - YEARS_BEFORE, base_year)
+    after = np.arange(base_year, base_year + YEARS_AFTER)
+    i = np.arange(ages.size, dtype=np.int64)[:, None]
+
+    def rate(years):
+        return _rate(rates, years_axis, long_term_rate, long_term_from,
+                     *np.broadcast_arrays(i, years))
+
+    factors = np.empty((ages.size, YEARS_BEFORE + YEARS_AFTER + 1))
+    with np.errstate(over="ignore", under="ignore"):
+        # Backwards: F(a, y) = 1 / prod_{t=y}^{base-1} (1 - r(a, t)).
+        back = np.cumprod((1.0 - rate(before[None, :]))[:, ::-1], axis=1)
+        factors[:, :YEARS_BEFORE] = (1.0 / back)[:, ::-1]
+        factors[:, YEARS_BEFORE] = 1.0
+        # Forwards: F(a, y) = prod_{t=base}^{y-1} (1 - r(a, t)).
+        factors[:, YEARS_BEFORE + 1:] = np.cumprod(1.0 - rate(after[None, :]), axis=1)
+    return factors
 
 
 def _scaled(q: np.ndarray, factors: np.ndarray) -> np.ndarray:
@@ -219,5 +248,5 @@ def project_table(table: MortalityTable, scale: Scale, *, cohort: int | None = N
         f_select[before_end] = factors_at(attained[before_end])
         select_q = np.where(before_end, _scaled(select_q, f_select), select_q)
         unchanged = unchanged and bool((f_select == 1.0).all())
-    return MortalityTable(table.first_age, q, table.select_first_age, select_q,
+    return MortalityTable.of(table.first_age, q, table.select_first_age, select_q,
                           law=table.law if unchanged else None)

@@ -29,10 +29,11 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.engine import annuity as _a
 from service.engine import integrals
-from service.engine.annuity import Item, Life, Payments, Valuation
+from service.engine.batch import _chunks, _expand, _on_time, _payment_count, _prepare, _work
+from service.engine.continuous import _cut, _cut_rule, _life_part, _segment_integral
 from service.engine.errors import ItemError, WorkLimitError
+from service.engine.items import LAST_SURVIVOR, Item, Life, Payments, Valuation
 
 COVERS = ("whole-life", "term", "endowment", "pure-endowment")
 BENEFIT_TIMINGS = ("end-of-year", "end-of-period", "moment-of-death")
@@ -95,7 +96,7 @@ def _annuity_item(item: Assurance) -> Item:
     m = 1 if c.benefit_timing == "end-of-year" or continuous else c.frequency
     payments = Payments("continuous" if continuous else "arrears", m, c.term, c.deferral, 0.0,
                         c.escalation)
-    amounts = _STATUS_AMOUNTS[c.on] if len(item.lives) == 2 else _a.LAST_SURVIVOR
+    amounts = _STATUS_AMOUNTS[c.on] if len(item.lives) == 2 else LAST_SURVIVOR
     return Item(item.lives, payments, amounts)
 
 
@@ -107,12 +108,12 @@ _POWERS = (1, 2)
 def _death_discrete(batch, which, curves, deadline):
     """sum_j b_j D(t_j+1) [W(t_j) - W(t_j+1)] over the periods of the window, for each
     moment, with W evaluated once at every period boundary."""
-    count = _a._payment_count(batch)[which]  # periods that can hold a death
+    count = _payment_count(batch)[which]  # periods that can hold a death
     values = [np.zeros(which.size) for _ in curves]
     local = np.arange(which.size)
-    for part in _a._chunks(count + 1):
-        _a._on_time(deadline)
-        o, j = _a._expand(local[part], np.zeros(part.size, dtype=np.int64), count[part] + 1)
+    for part in _chunks(count + 1):
+        _on_time(deadline)
+        o, j = _expand(local[part], np.zeros(part.size, dtype=np.int64), count[part] + 1)
         own = which[o]
         mo = batch.m[own]
         t = batch.deferral[own] + j / mo
@@ -134,9 +135,9 @@ def _death_continuous(batch, which, curves, deadline):
     segment boundary.
     """
     values = [np.zeros(which.size) for _ in curves]
-    for part in _a._chunks(_a._work(batch, curves[0])[which] * len(curves)):
-        _a._on_time(deadline)
-        cut = _a._cut(batch, which[part], curves[0])
+    for part in _chunks(_work(batch, curves[0])[which] * len(curves)):
+        _on_time(deadline)
+        cut = _cut(batch, which[part], curves[0])
         a, b = cut.t1, cut.t1 + cut.length
         density = _udd_density(batch, cut) if batch.lives.assumption == "udd" else None
         wa = wb = None
@@ -163,12 +164,12 @@ def _death_continuous(batch, which, curves, deadline):
             ends = pc.factor * (wa - np.exp(-pc.force * cut.length) * wb)
             if curve.curved:
                 # The forward force varies within a piece: integrate F D W by the rule.
-                rule = _a._cut_rule(batch, cut, curve)
+                rule = _cut_rule(batch, cut, curve)
                 g = curve.forward_force(rule.time) * batch.life_weight(cut.own[rule.piece],
                                                                        rule.time)
                 carried = np.bincount(rule.piece, weights=rule.weight * g, minlength=a.size)
             else:
-                carried = pc.force * _a._segment_integral(batch, cut, curve, pc)
+                carried = pc.force * _segment_integral(batch, cut, curve, pc)
             value[part] += np.bincount(cut.owner, weights=cut.growth**power * (ends - carried),
                                        minlength=part.size)
     return values
@@ -181,12 +182,12 @@ def _udd_density(batch, cut):
     of its year of age, r: where the segment starts in it); W is the survivorship-weighted sum
     of S1, S2 and S1 S2 (the start requirement is always 'any' here).
     """
-    q1, r1, s1 = _a._life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
+    q1, r1, s1 = _life_part(batch, batch.first[cut.own], cut.t1, cut.mid)
     c0 = s1 * q1
     c1 = np.zeros_like(c0)
     has2 = batch.second[cut.own] >= 0
     if has2.any():
-        q2, r2, s2 = _a._life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1,
+        q2, r2, s2 = _life_part(batch, np.maximum(batch.second[cut.own], 0), cut.t1,
                                    cut.mid)
         q2, s2 = np.where(has2, q2, 0.0), np.where(has2, s2, 0.0)
         a = batch.amounts[cut.own]
@@ -239,9 +240,9 @@ def insurance_values(tables, items, valuation: Valuation, *, max_work: int | Non
     if errors:
         raise ItemError(errors)
     curves = (valuation.curve, valuation.curve.doubled())
-    batch = _a._prepare(tables, [_annuity_item(i) for i in items], valuation)
+    batch = _prepare(tables, [_annuity_item(i) for i in items], valuation)
     if max_work is not None:
-        work = int(_a._work(batch, curves[0]).sum()) * len(curves)
+        work = int(_work(batch, curves[0]).sum()) * len(curves)
         if work > max_work:
             raise WorkLimitError(work, max_work)
     death = np.array([i.cover.cover != "pure-endowment" for i in items])

@@ -13,9 +13,19 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.engine import annuity as _a
-from service.engine.annuity import Valuation
+from service.engine.batch import (
+    _chunks,
+    _expand,
+    _on_time,
+    _payment_count,
+    _prepare,
+    _window_end,
+    _work,
+)
+from service.engine.continuous import _UNDISCOUNTED, _cut, _segment_integral
+from service.engine.discrete import _points
 from service.engine.errors import ItemError, WorkLimitError
+from service.engine.items import Valuation
 
 BUCKETS = {"monthly": 12, "annual": 1, "exact": 0}
 #: Times this close are one payment time (dates are sums of j/m).
@@ -35,9 +45,9 @@ class Projection:
 
 def projection_work(batch, curve, per_year: int) -> np.ndarray:
     """Work units: the payment dates, or continuous segments with a cut every period."""
-    work = _a._work(batch, curve)
-    count = _a._payment_count(batch)
-    span = np.maximum(_a._window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
+    work = _work(batch, curve)
+    count = _payment_count(batch)
+    span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
     cuts = np.ceil(span * per_year).astype(np.int64) if per_year else 0
     return np.where(batch.continuous, work + cuts * 2, count)
 
@@ -56,7 +66,7 @@ def project(tables, items, amounts, valuation: Valuation, buckets: str = "monthl
                for n, item in enumerate(items) if item.payments.timing == "continuous"}
         if bad:
             raise ItemError(bad)
-    batch = _a._prepare(tables, items, valuation)
+    batch = _prepare(tables, items, valuation)
     curve = valuation.curve
     if max_work is not None:
         work = int(projection_work(batch, curve, per_year).sum())
@@ -65,23 +75,23 @@ def project(tables, items, amounts, valuation: Valuation, buckets: str = "monthl
     amounts = np.asarray(amounts, dtype=float)
     keys, paid, pv = [], [], []
     discrete = np.flatnonzero(~batch.continuous)
-    count = _a._payment_count(batch)
-    for part in _a._chunks(count[discrete]):
-        _a._on_time(deadline)
+    count = _payment_count(batch)
+    for part in _chunks(count[discrete]):
+        _on_time(deadline)
         which = discrete[part]
-        own, j = _a._expand(which, np.zeros(which.size, dtype=np.int64), count[which])
-        pts = _a._points(batch, own, j, curve)
+        own, j = _expand(which, np.zeros(which.size, dtype=np.int64), count[which])
+        pts = _points(batch, own, j, curve)
         keys.append(_key(pts.time, per_year))
         paid.append(amounts[own] * pts.amount * pts.probability)
         pv.append(amounts[own] * pts.present_value)
     cont = np.flatnonzero(batch.continuous)
-    for part in _a._chunks(projection_work(batch, curve, per_year)[cont]):
-        _a._on_time(deadline)
-        cut = _a._cut(batch, cont[part], curve, per_year=per_year)
+    for part in _chunks(projection_work(batch, curve, per_year)[cont]):
+        _on_time(deadline)
+        cut = _cut(batch, cont[part], curve, per_year=per_year)
         scale = amounts[cut.own] * cut.growth
         keys.append(_key(cut.t1 + cut.length / 2, per_year))
-        paid.append(scale * _a._segment_integral(batch, cut, _a._UNDISCOUNTED))
-        pv.append(scale * _a._segment_integral(batch, cut, curve))
+        paid.append(scale * _segment_integral(batch, cut, _UNDISCOUNTED))
+        pv.append(scale * _segment_integral(batch, cut, curve))
     if not keys:
         empty = np.zeros(0)
         return Projection(empty, empty, empty, empty)

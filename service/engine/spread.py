@@ -33,10 +33,10 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.engine import annuity as _a
 from service.engine import integrals
-from service.engine.annuity import Valuation
+from service.engine.batch import _on_time, _payment_count, _prepare, _window_end
 from service.engine.errors import WorkLimitError
+from service.engine.items import Valuation
 
 #: Cumulative probabilities are compared with p/100 less this, so that rounding in the sums
 #: does not push a percentile one value up.
@@ -57,9 +57,9 @@ class Spread:
 def spread_work(batch) -> np.ndarray:
     """Outcomes enumerated per item: the payment dates (or blocks) for one life, their square
     for two."""
-    span = np.maximum(_a._window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
+    span = np.maximum(_window_end(batch, np.arange(batch.m.size)) - batch.deferral, 0)
     blocks = np.ceil(span * BLOCKS_PER_YEAR).astype(np.int64) + 2
-    count = np.where(batch.continuous, blocks, _a._payment_count(batch)) + 2
+    count = np.where(batch.continuous, blocks, _payment_count(batch)) + 2
     return np.where(batch.second >= 0, count * count, count)
 
 
@@ -71,17 +71,17 @@ def annuity_spread(tables, items, valuation: Valuation, levels, *,
     Raises ItemError for items impossible under the tables, WorkLimitError when the outcomes
     to enumerate exceed ``max_work``, DeadlineError past ``deadline``.
     """
-    batch = _a._prepare(tables, items, valuation)
+    batch = _prepare(tables, items, valuation)
     work = spread_work(batch)
     if max_work is not None and int(work.sum()) > max_work:
         raise WorkLimitError(int(work.sum()), max_work)
-    count = _a._payment_count(batch)
+    count = _payment_count(batch)
     curve = valuation.curve
     mean = np.zeros(len(items))
     sd = np.zeros(len(items))
     pct = []
     for n in range(len(items)):
-        _a._on_time(deadline)
+        _on_time(deadline)
         if batch.continuous[n]:
             values, probs = _continuous_outcomes(batch, n, curve, items[n].start_requires)
         else:
@@ -158,7 +158,7 @@ def _two_lives(first, second, certain, life, amounts, requires):
 def _blocks(batch, n: int, curve):
     """The blocks of item ``n``'s continuous window: (start, end, value if paid in full)."""
     u = batch.deferral[n]
-    end = float(_a._window_end(batch, np.array([n]))[0])
+    end = float(_window_end(batch, np.array([n]))[0])
     if end <= u:
         return np.array([u]), np.array([u]), np.zeros(1)
     years = np.arange(np.floor(u), np.ceil(end) + 1)

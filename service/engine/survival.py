@@ -24,20 +24,58 @@ ASSUMPTIONS = ("udd", "constant-force", "balducci")
 _SNAP = 1e-9
 
 
+def by_assumption(table: dict, assumption: str):
+    """Return ``table[assumption]``; raise ValueError naming the known assumptions for any
+    other name (every dispatch on the fractional-age assumption goes through here)."""
+    try:
+        return table[assumption]
+    except (KeyError, TypeError):
+        raise ValueError(f"unknown fractional-age assumption {assumption!r}; known: "
+                         f"{', '.join(ASSUMPTIONS)}") from None
+
+
+def _udd_survival(q, r, p):
+    return 1.0 - r * q
+
+
+def _constant_force_survival(q, r, p):
+    with np.errstate(divide="ignore"):
+        return np.where(r == 0, 1.0, np.power(p, np.where(r == 0, 1.0, r)))
+
+
+def _balducci_survival(q, r, p):
+    denom = p + r * q
+    return np.where(denom > 0, p / np.where(denom > 0, denom, 1.0), 1.0)
+
+
+_SURVIVAL = {"udd": _udd_survival, "constant-force": _constant_force_survival,
+             "balducci": _balducci_survival}
+
+
 def fraction_survival(q, r, assumption: str):
     """Return r p_y, the probability of surviving r (0 <= r <= 1) years from integer age y."""
+    survival = by_assumption(_SURVIVAL, assumption)
     q = np.asarray(q, dtype=float)
     r = np.asarray(r, dtype=float)
-    p = 1.0 - q
-    if assumption == "udd":
-        return 1.0 - r * q
-    if assumption == "constant-force":
-        with np.errstate(divide="ignore"):
-            return np.where(r == 0, 1.0, np.power(p, np.where(r == 0, 1.0, r)))
-    if assumption == "balducci":
-        denom = p + r * q
-        return np.where(denom > 0, p / np.where(denom > 0, denom, 1.0), 1.0)
-    raise ValueError(f"unknown fractional-age assumption {assumption!r}")
+    return survival(q, r, 1.0 - q)
+
+
+def _udd_force(q, r, p):
+    denom = 1.0 - r * q
+    return np.where(denom > 0, q / np.where(denom > 0, denom, 1.0), np.inf)
+
+
+def _constant_force_force(q, r, p):
+    return -np.log(p)
+
+
+def _balducci_force(q, r, p):
+    denom = p + r * q
+    return np.where(denom > 0, q / np.where(denom > 0, denom, 1.0), np.inf)
+
+
+_FORCE = {"udd": _udd_force, "constant-force": _constant_force_force,
+          "balducci": _balducci_force}
 
 
 def fraction_force(q, r, assumption: str):
@@ -45,19 +83,11 @@ def fraction_force(q, r, assumption: str):
 
     Where the force is infinite (q = 1 at the end of the year) this returns ``inf``.
     """
+    force = by_assumption(_FORCE, assumption)
     q = np.asarray(q, dtype=float)
     r = np.asarray(r, dtype=float)
-    p = 1.0 - q
     with np.errstate(divide="ignore", invalid="ignore"):
-        if assumption == "udd":
-            denom = 1.0 - r * q
-            return np.where(denom > 0, q / np.where(denom > 0, denom, 1.0), np.inf)
-        if assumption == "constant-force":
-            return -np.log(p)
-        if assumption == "balducci":
-            denom = p + r * q
-            return np.where(denom > 0, q / np.where(denom > 0, denom, 1.0), np.inf)
-    raise ValueError(f"unknown fractional-age assumption {assumption!r}")
+        return force(q, r, 1.0 - q)
 
 
 @dataclass(frozen=True, eq=False)

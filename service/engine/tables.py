@@ -23,9 +23,17 @@ def _frozen(a) -> np.ndarray:
     return arr
 
 
+def _is_frozen_floats(a) -> bool:
+    return isinstance(a, np.ndarray) and a.dtype == np.float64 and not a.flags.writeable
+
+
 @dataclass(frozen=True, eq=False)
 class MortalityTable:
-    """Annual mortality rates, ultimate and (optionally) select."""
+    """Annual mortality rates, ultimate and (optionally) select.
+
+    Build it with :meth:`of`, which takes any sequences of rates; the constructor itself
+    takes read-only float arrays (as :meth:`of` makes them) and only validates.
+    """
 
     first_age: int
     q: np.ndarray
@@ -35,12 +43,20 @@ class MortalityTable:
     #: (Gompertz: A = 0); the law then also gives the force of mortality at any age.
     law: tuple[float, float, float] | None = None
 
+    @classmethod
+    def of(cls, first_age: int, q, select_first_age: int = 0, select_q=None, *,
+           law: tuple[float, float, float] | None = None) -> "MortalityTable":
+        """Build a table from sequences of rates (copied into read-only float arrays)."""
+        select = np.array(np.empty((0, 0)) if select_q is None else select_q, dtype=float)
+        if select.ndim != 2:
+            select = select.reshape(0, 0)
+        return cls(first_age, _frozen(q), select_first_age, _frozen(select), law=law)
+
     def __post_init__(self):
-        object.__setattr__(self, "q", _frozen(self.q))
-        select_q = np.array(self.select_q, dtype=float)
-        if select_q.ndim != 2:
-            select_q = select_q.reshape(0, 0)
-        object.__setattr__(self, "select_q", _frozen(select_q))
+        if not (_is_frozen_floats(self.q) and _is_frozen_floats(self.select_q)
+                and self.q.ndim == 1 and self.select_q.ndim == 2):
+            raise TypeError("the rates of a MortalityTable are read-only float arrays: build "
+                            "it with MortalityTable.of")
         _check_rates(self.q, self.first_age, "q")
         if self.q[-1] != 1.0:
             raise TableError(f"the table must close with q = 1 at its last age {self.last_age}")
@@ -102,7 +118,7 @@ def table_from_law(law: str, params: dict, first_age: int, *, last_age: int = LA
         raise TableError(f"unknown law {law!r}; known: makeham, gompertz")
     q[-1] = 1.0
     a = 0.0 if law == "gompertz" else float(params["A"])
-    table = MortalityTable(first_age, q, law=(a, float(params["B"]), float(params["c"])))
+    table = MortalityTable.of(first_age, q, law=(a, float(params["B"]), float(params["c"])))
     return with_select_factors(table, select_factors)
 
 
@@ -118,7 +134,7 @@ def with_select_factors(table: MortalityTable, factors) -> MortalityTable:
     idx = np.arange(len(table.q))[:, None] + np.arange(period)[None, :]
     ultimate = np.where(idx < len(table.q), table.q[np.minimum(idx, len(table.q) - 1)], 1.0)
     select_q = np.where(idx < len(table.q) - 1, np.minimum(ultimate * factors[None, :], 1.0), 1.0)
-    return MortalityTable(table.first_age, table.q, table.first_age, select_q, law=table.law)
+    return MortalityTable.of(table.first_age, table.q, table.first_age, select_q, law=table.law)
 
 
 #: What ``blend_tables`` can blend: the rates themselves, or the survivor functions.
@@ -174,12 +190,12 @@ def blend_tables(tables: Sequence[MortalityTable], weights: Sequence[float],
         blended[positive] = dying[positive] / alive[positive]
         blended = np.clip(blended, 0.0, 1.0)
         blended[-1] = 1.0
-        return MortalityTable(first, blended)
+        return MortalityTable.of(first, blended)
     # Where every table has q = 1 the blend keeps exactly 1 (weights sum to 1 only within 1e-12).
     blended = np.where((q == 1.0).all(axis=0), 1.0, np.minimum(w @ q, 1.0))
     blended[-1] = 1.0
     if not any(select):
-        return MortalityTable(first, blended)
+        return MortalityTable.of(first, blended)
     shape, start = tables[0].select_q.shape, tables[0].select_first_age
     if not all(select) or any(t.select_q.shape != shape or t.select_first_age != start
                               for t in tables):
@@ -188,4 +204,4 @@ def blend_tables(tables: Sequence[MortalityTable], weights: Sequence[float],
     stacked = np.stack([t.select_q for t in tables])
     select_q = np.where((stacked == 1.0).all(axis=0), 1.0,
                         np.minimum(np.tensordot(w, stacked, axes=1), 1.0))
-    return MortalityTable(first, blended, start, select_q)
+    return MortalityTable.of(first, blended, start, select_q)

@@ -120,7 +120,8 @@ class TestWorkLimit:
     def test_work_is_priced_by_what_it_costs(self):
         # A continuous segment costs what integrating it costs: two lives under Balducci
         # split their pieces near both poles.
-        from service.engine.annuity import Item, Life, Payments, Valuation, _prepare, _work
+        from service.engine.annuity import Item, Life, Payments, Valuation
+        from service.engine.batch import _prepare, _work
         from tests.reference import models
 
         two = Item((Life(30.0), Life(28.0)), Payments("continuous"), (1, 1, 1))

@@ -15,9 +15,9 @@ from numpy.testing import assert_allclose
 from service.engine.errors import TableError
 from service.engine.tables import MortalityTable, blend_tables, table_from_law
 
-A = MortalityTable(70, [0.02, 0.05, 0.10, 0.30, 1.0])
-B = MortalityTable(70, [0.01, 0.03, 0.07, 0.20, 1.0])
-C = MortalityTable(70, [0.015, 0.04, 0.12, 0.25, 1.0])
+A = MortalityTable.of(70, [0.02, 0.05, 0.10, 0.30, 1.0])
+B = MortalityTable.of(70, [0.01, 0.03, 0.07, 0.20, 1.0])
+C = MortalityTable.of(70, [0.015, 0.04, 0.12, 0.25, 1.0])
 
 
 def loop_lives(q):
@@ -64,8 +64,8 @@ class TestOnQ:
         assert got.q[-1] == 1.0
 
     def test_select_rates_are_blended_elementwise(self):
-        sa = MortalityTable(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
-        sb = MortalityTable(70, B.q, 71, [[0.02, 0.02], [0.03, 0.1], [0.05, 1.0]])
+        sa = MortalityTable.of(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
+        sb = MortalityTable.of(70, B.q, 71, [[0.02, 0.02], [0.03, 0.1], [0.05, 1.0]])
         got = blend_tables((sa, sb), (0.25, 0.75), "q")
         assert got.select_first_age == 71 and got.select_q.shape == (3, 2)
         expected = [[0.25 * sa.select_q[j, s] + 0.75 * sb.select_q[j, s] for s in range(2)]
@@ -75,12 +75,12 @@ class TestOnQ:
         assert_allclose(got.q, loop_blend_q((sa, sb), (0.25, 0.75)), rtol=1e-14)
 
     @pytest.mark.parametrize("other", (
-        MortalityTable(70, B.q, 70, [[0.02, 0.02], [0.03, 0.1], [0.05, 0.2]]),  # other start
-        MortalityTable(70, B.q, 71, [[0.02], [0.03], [0.05]]),                 # other period
+        MortalityTable.of(70, B.q, 70, [[0.02, 0.02], [0.03, 0.1], [0.05, 0.2]]),  # other start
+        MortalityTable.of(70, B.q, 71, [[0.02], [0.03], [0.05]]),                 # other period
         B,                                                                      # not select
     ))
     def test_different_select_structures_are_refused(self, other):
-        sa = MortalityTable(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
+        sa = MortalityTable.of(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
         with pytest.raises(TableError, match="same select structure"):
             blend_tables((sa, other), (0.5, 0.5), "q")
 
@@ -123,14 +123,14 @@ class TestOnSurvival:
 
     def test_no_survivors_gives_rate_one(self):
         # Both tables close early at 71: l(72) = 0 and q = 1 from there on, by definition.
-        d = MortalityTable(70, [0.1, 1.0, 0.5, 0.5, 1.0])
-        e = MortalityTable(70, [0.2, 1.0, 0.3, 0.4, 1.0])
+        d = MortalityTable.of(70, [0.1, 1.0, 0.5, 0.5, 1.0])
+        e = MortalityTable.of(70, [0.2, 1.0, 0.3, 0.4, 1.0])
         got = blend_tables((d, e), (0.4, 0.6), "survival")
         assert_allclose(got.q, loop_blend_survival((d, e), (0.4, 0.6)), rtol=1e-14)
         assert list(got.q[1:]) == [1.0, 1.0, 1.0, 1.0]
 
     def test_select_tables_are_refused(self):
-        sa = MortalityTable(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
+        sa = MortalityTable.of(70, A.q, 71, [[0.01, 0.04], [0.05, 0.2], [0.1, 1.0]])
         with pytest.raises(TableError, match="survival"):
             blend_tables((sa, B), (0.5, 0.5), "survival")
 
@@ -154,8 +154,8 @@ class TestRefusals:
         assert got.q[-1] == 1.0
 
     @pytest.mark.parametrize("other", (
-        MortalityTable(71, [0.03, 0.07, 0.20, 1.0]),          # other first age
-        MortalityTable(70, [0.01, 0.03, 0.07, 0.20, 0.5, 1.0]),  # other last age
+        MortalityTable.of(71, [0.03, 0.07, 0.20, 1.0]),          # other first age
+        MortalityTable.of(70, [0.01, 0.03, 0.07, 0.20, 0.5, 1.0]),  # other last age
     ))
     @pytest.mark.parametrize("on", ("q", "survival"))
     def test_mismatched_ages(self, other, on):

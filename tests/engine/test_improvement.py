@@ -17,7 +17,7 @@ from service.engine.tables import MortalityTable, table_from_law, with_select_fa
 
 ALL_AGES = np.arange(0, 131)
 #: An invented small table, ages 60 to 65.
-SMALL = MortalityTable(60, [0.010, 0.012, 0.020, 0.045, 0.300, 1.0])
+SMALL = MortalityTable.of(60, [0.010, 0.012, 0.020, 0.045, 0.300, 1.0])
 
 
 def loop_factor(rate, age, year, base):
@@ -48,7 +48,7 @@ def loop_projection(table, rate, base, *, cohort=None, year=None):
 
 
 def constant(rate, base=2020):
-    return Scale(ALL_AGES, np.full(ALL_AGES.size, rate), base)
+    return Scale.of(ALL_AGES, np.full(ALL_AGES.size, rate), base)
 
 
 class TestZeroAndConstant:
@@ -95,7 +95,7 @@ class TestTwoDimensional:
     LONG = 0.012
 
     def scale(self):
-        return Scale(self.AGES, self.RATES, 2018, years=self.YEARS, long_term_rate=self.LONG)
+        return Scale.of(self.AGES, self.RATES, 2018, years=self.YEARS, long_term_rate=self.LONG)
 
     def rate(self, age, t):
         """r(a, t) read off the grid by hand: the first column before 2015, the long-term
@@ -147,7 +147,7 @@ class TestOneDimensionalLongTerm:
         (2015, 2020, 2030),
     ))
     def test_against_the_loop(self, long_term_from, base, year):
-        scale = Scale(np.arange(60, 66), self.AGE_RATES, base, long_term_rate=0.005,
+        scale = Scale.of(np.arange(60, 66), self.AGE_RATES, base, long_term_rate=0.005,
                       long_term_from=long_term_from)
 
         def rate(age, t):
@@ -159,12 +159,12 @@ class TestOneDimensionalLongTerm:
     def test_hand_worked_factor(self):
         # Hand-worked: age 60, base 2020, switch in 2022, static year 2024:
         # F = (1 - 0.02)^2 (1 - 0.005)^2 = 0.9604 * 0.990025 = 0.95082001.
-        scale = Scale(np.arange(60, 66), self.AGE_RATES, 2020, long_term_rate=0.005,
+        scale = Scale.of(np.arange(60, 66), self.AGE_RATES, 2020, long_term_rate=0.005,
                       long_term_from=2022)
         assert_allclose(scale.factor(60, 2024), 0.95082001, rtol=1e-13)
 
     def test_without_long_term_from_the_age_rates_apply_every_year(self):
-        scale = Scale(np.arange(60, 66), self.AGE_RATES, 2020, long_term_rate=0.5)
+        scale = Scale.of(np.arange(60, 66), self.AGE_RATES, 2020, long_term_rate=0.5)
         assert_allclose(scale.factor(61, 2120), (1 - 0.018) ** 100, rtol=1e-12)
 
 
@@ -185,9 +185,9 @@ class TestCapsAndSelect:
                     [0.005, 0.012, 0.030],
                     [0.009, 0.020, 0.200],
                     [0.015, 0.150, 1.0]]    # attained ages 63 to 65; 65 is the last age
-        table = MortalityTable(60, SMALL.q, 60, select_q)
+        table = MortalityTable.of(60, SMALL.q, 60, select_q)
         age_rates = np.linspace(0.03, 0.005, 6)
-        scale = Scale(np.arange(60, 66), age_rates, 2020)
+        scale = Scale.of(np.arange(60, 66), age_rates, 2020)
 
         def rate(age, t):
             return age_rates[age - 60]
@@ -207,7 +207,7 @@ class TestCapsAndSelect:
 
     @pytest.mark.parametrize("ages", (np.arange(61, 131), np.arange(0, 65)))
     def test_a_scale_not_covering_the_table_is_refused(self, ages):
-        scale = Scale(ages, np.full(ages.size, 0.01), 2020)
+        scale = Scale.of(ages, np.full(ages.size, 0.01), 2020)
         with pytest.raises(TableError, match="covers ages"):
             project_table(SMALL, scale, cohort=1960)
 
@@ -243,10 +243,10 @@ class TestValidation:
     ))
     def test_bad_scales_are_refused(self, kwargs, message):
         with pytest.raises(TableError, match=message):
-            Scale(base_year=2020, **kwargs)
+            Scale.of(base_year=2020, **kwargs)
 
     def test_negative_rates_are_allowed(self):
-        scale = Scale([60, 61], [-0.02, -0.5], 2020)
+        scale = Scale.of([60, 61], [-0.02, -0.5], 2020)
         assert_allclose(scale.factor(61, 2022), 1.5**2, rtol=1e-14)
 
     def test_years_outside_the_window_raise_value_error(self):
@@ -265,7 +265,7 @@ class TestValidation:
             project_table(SMALL, constant(0.01), cohort=1960, year=2020)
 
     def test_arrays_are_frozen(self):
-        scale = Scale([60, 61], [[0.01, 0.02]] * 2, 2020, years=[2020, 2021])
+        scale = Scale.of([60, 61], [[0.01, 0.02]] * 2, 2020, years=[2020, 2021])
         for arr in (scale.ages, scale.rates, scale.years):
             with pytest.raises(ValueError):
                 arr[0] = 0

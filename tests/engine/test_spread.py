@@ -137,7 +137,7 @@ class TestContinuous:
         # A constant force mu to a very high age: the future lifetime is exponential.
         q = np.full(801, -math.expm1(-self.MU))
         q[-1] = 1.0
-        return MortalityTable(0, q)
+        return MortalityTable.of(0, q)
 
     def test_against_the_exponential_lifetime(self):
         # T exponential(mu): Y = (1 - e^(-delta T))/delta, so A-bar = mu/(mu + delta),

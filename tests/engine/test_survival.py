@@ -78,7 +78,7 @@ def _rates_only(table):
     """The same rates without the law, as a table read from a file would be."""
     from service.engine.tables import MortalityTable
 
-    return MortalityTable(table.first_age, table.q)
+    return MortalityTable.of(table.first_age, table.q)
 
 
 class TestLivesForce:
@@ -158,3 +158,11 @@ class TestAgesNearAWholeAge:
         nudged = annuity_values([table], [Item((Life(64.02, duration=0,
                                                     age_adjustment=-0.02),))], val)
         assert abs(nudged[0] / exact[0] - 1) < 1e-12
+
+
+@pytest.mark.parametrize("function", [fraction_survival, fraction_force])
+def test_an_unknown_assumption_is_refused_by_name(function):
+    # The three assumptions the service offers (common practice: UDD, constant force,
+    # Balducci); any other name is refused, and the message lists the known ones.
+    with pytest.raises(ValueError, match="'hyperbolic'.*udd, constant-force, balducci"):
+        function(0.1, 0.5, "hyperbolic")

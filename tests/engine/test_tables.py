@@ -44,7 +44,7 @@ class TestTableFromLaw:
                             rtol=1e-15, atol=0)
 
     def test_select_rates_are_capped_at_one(self):
-        table = with_select_factors(MortalityTable(50, [0.2, 0.6, 1.0]), (1.5, 2.0))
+        table = with_select_factors(MortalityTable.of(50, [0.2, 0.6, 1.0]), (1.5, 2.0))
         # Every age is a selection age; the closing rate stays 1 (common practice).
         assert_allclose(table.select_q, [[0.3, 1.0], [0.9, 1.0], [1.0, 1.0]], rtol=1e-15, atol=0)
 
@@ -70,14 +70,14 @@ class TestMakehamQ:
 class TestMortalityTable:
     def test_must_close_with_one(self):
         with pytest.raises(TableError):
-            MortalityTable(60, [0.1, 0.2, 0.9])
+            MortalityTable.of(60, [0.1, 0.2, 0.9])
 
     @pytest.mark.parametrize("bad", (-0.1, 1.2, math.nan, math.inf))
     def test_rates_must_be_probabilities(self, bad):
         with pytest.raises(TableError):
-            MortalityTable(60, [0.1, bad, 1.0])
+            MortalityTable.of(60, [0.1, bad, 1.0])
 
     def test_rates_are_read_only(self):
-        table = MortalityTable(60, [0.1, 0.2, 1.0])
+        table = MortalityTable.of(60, [0.1, 0.2, 1.0])
         with pytest.raises(ValueError):
             table.q[0] = 0.5

@@ -38,7 +38,7 @@ ASSUMPTIONS = ("udd", "constant-force", "balducci")
 def _tables():
     law = models.susm()
     # The same rates as a table read from a file: no law, so the force is estimated.
-    return {"law": law, "file": MortalityTable(law.first_age, law.q),
+    return {"law": law, "file": MortalityTable.of(law.first_age, law.q),
             "short": models.susm_short()}
 
 

@@ -193,7 +193,7 @@ class TestWoolhouse:
 def constant_force_table(mu, last_age):
     q = np.full(last_age + 1, -math.expm1(-mu))
     q[-1] = 1.0
-    return MortalityTable(0, q)
+    return MortalityTable.of(0, q)
 
 
 class TestConstantForceClosedForms:

@@ -1,0 +1,81 @@
+"""Validation of items: what the engine refuses before any array is built."""
+
+import math
+
+from service.engine.items import _EPS, MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS, Item
+
+
+def _multiple_of(value: float, m: int) -> bool:
+    scaled = value * m
+    return abs(scaled - round(scaled)) <= _EPS * max(1.0, abs(scaled))
+
+
+_PERIODS = {1: ("year", "years"), 2: ("half-year", "half-years"), 4: ("quarter", "quarters"),
+            12: ("month", "months"), 26: ("fortnight", "fortnights"), 52: ("week", "weeks"),
+            365: ("day", "days")}
+
+
+def whole_periods_problem(value: float, m: int, *, least: int = 0) -> str | None:
+    """Say why ``value`` years is not a whole number of 1/m-year periods, naming the nearest
+    valid value (at least ``least`` periods); None when it is."""
+    return None if _multiple_of(value, m) else _not_whole_periods(value, m, least=least)
+
+
+def _not_whole_periods(value: float, m: int, *, least: int = 0) -> str:
+    """Say that ``value`` years is not a whole number of 1/m-year periods, and name the nearest
+    valid value (at least ``least`` periods)."""
+    one, many = _PERIODS.get(m, (f"period of 1/{m} year", f"periods of 1/{m} year"))
+    n = max(least, math.floor(value * m + 0.5))
+    how = "" if m in _PERIODS else f" (payments {m} times a year)"
+    return (f"{value:.6g} is not a whole number of {many}{how}; "
+            f"nearest: {n / m!r} ({n} {one if n == 1 else many})")
+
+
+def _check_item(item: Item) -> dict[str, list[str]]:
+    errors: dict[str, list[str]] = {}
+
+    def add(path, message):
+        errors.setdefault(path, []).append(message)
+
+    p = item.payments
+    if not 1 <= len(item.lives) <= 2:
+        add("lives", "an item has one or two lives")
+    if p.timing not in TIMINGS:
+        add("timing", f"must be one of {', '.join(TIMINGS)}")
+    discrete = p.timing != "continuous"
+    if discrete and not (isinstance(p.frequency, int) and 1 <= p.frequency <= MAX_FREQUENCY):
+        add("frequency", f"must be a whole number from 1 to {MAX_FREQUENCY}")
+    for name in ("deferral", "guarantee"):
+        v = getattr(p, name)
+        if not (math.isfinite(v) and v >= 0):
+            add(name, "must be a finite number of years, zero or more")
+    if p.term is not None and not (math.isfinite(p.term) and p.term > 0):
+        add("term", "must be a positive number of years, or null for life")
+    if not (math.isfinite(p.escalation) and p.escalation > -1):
+        add("escalation", "must be a finite rate above -1")
+    if ("term" not in errors and p.term is not None and math.isfinite(p.guarantee)
+            and p.guarantee > p.term * (1 + 1e-12)):
+        add("guarantee", f"a guarantee of {p.guarantee:g} years is longer than the term "
+                         f"of {p.term:g} years")
+    if discrete and "frequency" not in errors:
+        for name in ("term", "deferral", "guarantee"):
+            v = getattr(p, name)
+            if v is not None and name not in errors and not _multiple_of(v, p.frequency):
+                add(name, _not_whole_periods(v, p.frequency, least=int(name == "term")))
+    if item.start_requires not in START_REQUIREMENTS:
+        add("start_requires", f"must be one of {', '.join(START_REQUIREMENTS)}")
+    for k, amount in enumerate(item.survivorship):
+        if not (math.isfinite(amount) and 0 <= amount <= 1):
+            add(f"survivorship.{k}", "amounts must lie between 0 and 1")
+    for n, life in enumerate(item.lives):
+        if not math.isfinite(life.age + life.age_adjustment):
+            add(f"lives.{n}.age", "must be a finite age")
+        m = life.mortality_multiplier
+        if not (math.isfinite(m) and m >= 0):
+            add(f"lives.{n}.mortality_multiplier", "must be a finite number, zero or more")
+        if not (math.isfinite(life.flat_extra) and 0 <= life.flat_extra <= 1):
+            add(f"lives.{n}.flat_extra", "must be a number from 0 to 1")
+        if life.duration is not None and not (isinstance(life.duration, int)
+                                              and life.duration >= 0):
+            add(f"lives.{n}.duration", "must be a whole number of years, zero or more")
+    return errors
