@@ -24,7 +24,7 @@ from service.api.body import flatten_errors, json_body, load, validate_capped
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
-from service.api.fastload import load_items
+from service.api.fastload import load_batch, load_items
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
@@ -535,7 +535,7 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     if per_item:
         data = load(_top_schema(schema), body)
         raw = data["items"]
-        data["items"], places, errors = load_items(item_schema, raw)
+        data["items"], places, errors = load_batch(item_schema, raw)
         refused = {n: flatten_errors(messages) for n, messages in errors.items()}
     else:
         data = _load_whole(schema, item_schema, body, build)
@@ -571,7 +571,7 @@ def _load_whole(schema, item_schema, body, build) -> dict:
     if isinstance(body, dict):
         top, _, _, _ = validate_capped(_top_schema(schema), body)
         if top is not None:
-            items, _, errors = load_items(item_schema, top["items"], stop_at_first=True)
+            items, _, errors = load_batch(item_schema, top["items"], stop_at_first=True)
             if not errors:
                 top["items"] = items
                 return top

@@ -263,6 +263,94 @@ def test_generated_items_load_alike(item):
 _SCHEMA = ItemSchema()
 
 
+# ---- whole batches checked as columns -------------------------------------------------------
+
+
+def _batch_agrees(schema, items):
+    """``load_batch`` gives what marshmallow gives item by item (the loaded items, their
+    places and the refusals' messages) and leaves the items as they were; return the mask
+    of the items it vouched for as columns."""
+    before = copy.deepcopy(items)
+    loaded, places, errors = fastload.load_batch(schema, items)
+    assert items == before
+    expected, messages = [], {}
+    for n, item in enumerate(before):
+        try:
+            expected.append((n, schema.load(copy.deepcopy(item))))
+        except ValidationError as exc:
+            messages[n] = exc.messages
+    assert places == [n for n, _ in expected]
+    assert all(_same(out, slow) for out, (_, slow) in zip(loaded, expected, strict=True))
+    assert errors == messages
+    plan = fastload.fields_plan(schema)
+    dicts = [copy.deepcopy(item) for item in before if type(item) is dict]
+    return plan.load(dicts)[1] if plan is not None and dicts else None
+
+
+@pytest.mark.parametrize("schema_class, corpus", [
+    (ItemSchema, GOOD + BAD), (ItemSchema, BAD + GOOD), (InsuranceItemSchema, INSURANCE),
+    (ProjectionItemSchema, PROJECTION), (ProjectionItemSchema, PROJECTION[::-1])])
+def test_the_batch_loader_gives_marshmallows_answers(schema_class, corpus):
+    _batch_agrees(schema_class(), copy.deepcopy(corpus))
+
+
+def test_the_batch_loader_checks_plain_items_as_columns():
+    """Without this the comparisons could pass with a batch loader that vouches for none:
+    the plain items (one life, scalar fields) of the good corpus are vouched for as columns,
+    and every bad item is sent one by one."""
+    plain = [item for item in GOOD if len(item["lives"]) == 1 and not {
+        "measures", "spread", "term_months", "deferral_months", "guarantee_months"} & set(
+        item) and "date_of_birth" not in item["lives"][0]]
+    assert len(plain) >= 10
+    bad = _batch_agrees(ItemSchema(), copy.deepcopy(plain))
+    assert not bad.any()
+    dicts = [item for item in BAD if type(item) is dict]
+    assert _batch_agrees(ItemSchema(), copy.deepcopy(dicts)).all()
+    assert fastload.fields_plan(ProjectionItemSchema()) is not None
+    # A schema-level rule without a batch form keeps its schema out of the column path.
+    assert fastload.fields_plan(InsuranceItemSchema()) is None
+
+
+def test_the_batch_loader_stops_at_the_first_refusal_as_before():
+    items = [*GOOD[:3], BAD[13], *GOOD[:2], BAD[2]]
+    fast = fastload.load_batch(_SCHEMA, copy.deepcopy(items), stop_at_first=True)
+    slow = fastload.load_items(_SCHEMA, copy.deepcopy(items), stop_at_first=True)
+    assert fast[1] == slow[1] == [0, 1, 2] and fast[2] == slow[2]
+    assert all(_same(a, b) for a, b in zip(fast[0], slow[0], strict=True))
+
+
+_PERIODS = st.one_of(_NUMBERS, st.sampled_from(
+    [1 / 12, 5 / 12, 10.5, 0.25, 10 + 1e-10, 10 + 5e-9, 10 + 2e-8, 200.0, 1e-300, -0.0]))
+_PLAIN_LIFE = st.fixed_dictionaries({"age": _NUMBERS}, optional={
+    "sex": st.sampled_from(["female", "male", "", "X", None, 3, "blend-60.40"]),
+    "duration": _NUMBERS, "age_adjustment": _NUMBERS, "mortality_multiplier": _NUMBERS,
+    "flat_extra": st.sampled_from([0, 0.005, 1, 1.5, -0.1, None, True]),
+    "date_of_birth": st.sampled_from([None, "1958-03-14"])})
+_PLAIN_ITEM = st.fixed_dictionaries(
+    {"lives": st.lists(_PLAIN_LIFE, min_size=1, max_size=1),
+     "timing": st.sampled_from(["advance", "arrears", "continuous", "never"])},
+    optional={"id": st.one_of(st.text(max_size=66), st.none()),
+              "frequency": st.sampled_from([1, 2, 4, 12, 365, 0, 366, 12.0, True, None]),
+              "term": st.one_of(_PERIODS, st.none()), "deferral": _PERIODS,
+              "guarantee": _PERIODS, "term_months": st.sampled_from([1, 12, 7, 0]),
+              "escalation": st.sampled_from([0, 0.02, -0.5, 1, 1.01, True, None]),
+              "start_requires": st.sampled_from(["any", "first", "all"]),
+              "survivorship": st.just("joint-life"), "measures": st.just([])})
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.one_of(_PLAIN_ITEM, _PLAIN_ITEM, _ITEM), min_size=2, max_size=12))
+def test_generated_batches_load_alike(items):
+    _batch_agrees(_SCHEMA, items)
+
+
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(_PLAIN_ITEM, min_size=2, max_size=12),
+       st.one_of(_NUMBERS, st.just(1000.0), st.just(12)))
+def test_generated_projection_batches_load_alike(items, amount):
+    _batch_agrees(ProjectionItemSchema(), [item | {"amount": amount} for item in items])
+
+
 # ---- whole requests: the fast path against marshmallow alone --------------------------------
 
 
@@ -288,6 +376,7 @@ def _both_ways(client, monkeypatch, path, body):
     fast = client.post(path, json=copy.deepcopy(body))
     with monkeypatch.context() as m:
         m.setattr(fastload, "fast_loader", lambda schema: None)
+        m.setattr(fastload, "fields_plan", lambda schema: None)
         m.setattr(views, "_load_whole", _old_load_whole)
         slow = client.post(path, json=copy.deepcopy(body))
     return fast, slow
