@@ -60,6 +60,7 @@ from service.engine.annuity import (
     cash_flow_schedule,
     value_annuities,
 )
+from service.engine.columns import TIMING_CODES, Columns, ItemBatch
 from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.insurance import Assurance, Cover, insurance_values
@@ -289,6 +290,54 @@ def _wants_csv() -> bool:
     return best == "text/csv"
 
 
+def _column_items(basis, items, valuation_date):
+    """As :func:`_engine_items` for annuity items, with the plain ones (one life given by
+    age, discrete payments, start_requires 'any', no measures or spread, a table the basis
+    has for the life and an age inside it, no cohort tables) held as engine columns rather
+    than objects; the others go through :func:`_engine_items` (which words any problem)."""
+    tables = RequestTables(basis, valuation_date)
+    if tables.generational or len(items) < 2:
+        return None
+    plain, rest = [], []
+    table_of: dict = {}
+    for n, item in enumerate(items):
+        lives = item["lives"]
+        if len(lives) == 1 and lives[0]["date_of_birth"] is None \
+                and item["timing"] in TIMING_CODES and item["start_requires"] == "any" \
+                and not item["measures"] and "spread" not in item \
+                and "survivorship" not in item:
+            sex = lives[0]["sex"]
+            if sex not in table_of:
+                table_of[sex] = _table_of(basis, sex)
+            if table_of[sex] is not None:
+                plain.append(n)
+                continue
+        rest.append(n)
+    if not plain:
+        return None
+    lives = [items[n]["lives"][0] for n in plain]
+    cols = {name: [life[name] for life in lives] for name in
+            ("age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra")}
+    chosen = [items[n] for n in plain]
+    cols |= {name: [item[name] for item in chosen] for name in
+             ("timing", "frequency", "term", "deferral", "guarantee", "escalation")}
+    cols["table"] = [table_of[life["sex"]] for life in lives]
+    columns = Columns.from_dict(cols)
+    rated = columns.age + columns.age_adjustment
+    first = np.array([t.first_age for t in tables.tables], dtype=float)[columns.table]
+    last = np.array([t.last_age for t in tables.tables], dtype=float)[columns.table]
+    outside = ~((first - _SNAP <= rated) & (rated <= last + _SNAP))
+    if outside.any():  # worded item by item
+        keep = ~outside
+        rest = sorted(rest + np.asarray(plain)[outside].tolist())
+        plain = np.asarray(plain)[keep].tolist()
+        columns = columns.take(keep)
+    others, refused, _ = _engine_items(basis, [items[n] for n in rest], valuation_date)
+    batch = ItemBatch(len(items), np.asarray(plain, dtype=np.intp), columns,
+                      dict(zip(rest, others, strict=True)))
+    return batch, {rest[k]: problems for k, problems in refused.items()}, tables.tables
+
+
 def _engine_items(basis, items, valuation_date, build=None):
     """Turn loaded items into engine items; return them, ``{n: {path: messages}}`` for the
     items a basis cannot value as given (paths within the item), and the request's tables.
@@ -506,20 +555,21 @@ def _results_json(body: dict) -> Response:
     return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
 
 
-def _batch(schema, item_schema, build=None) -> _Request:
+def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
     others, else refuse the whole batch at the first problem found (all of them listed)."""
     limit = current_app.config["MAX_ITEMS"]
     from_csv = request.mimetype == "text/csv"
     try:
-        return _read_batch(schema, item_schema, build, limit, from_csv)
+        return _read_batch(schema, item_schema, build, limit, from_csv, columns)
     except ProblemError as exc:
         if from_csv and exc.errors:
             exc.errors = {row_path(path): msgs for path, msgs in exc.errors.items()}
         raise
 
 
-def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Request":
+def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
+                columns: bool) -> "_Request":
     if request.args and not from_csv:
         raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
             name: ["Not read with a JSON body: give it in the body."]
@@ -545,7 +595,9 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
     _dates_needed(basis, data, data["items"])
-    engine, unknown, tables = _engine_items(basis, data["items"], data["valuation_date"], build)
+    held = _column_items(basis, data["items"], data["valuation_date"]) if columns else None
+    engine, unknown, tables = held or _engine_items(basis, data["items"],
+                                                    data["valuation_date"], build)
     if unknown and not per_item:
         raise ProblemError(422, "The request has invalid fields.", errors={
             f"items.{places[n]}.{path}": msgs for n, item in unknown.items()
@@ -676,7 +728,7 @@ def _placed(exc: ItemError, req: _Request) -> ItemError:
 def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
-    req = _batch(_factor_request, _item_schema)
+    req = _batch(_factor_request, _item_schema, columns=True)
     valuation = req.valuation
     asked = [item["measures"] for item in req.items]
     key_rates = sum("key_rate_durations" in measures for measures in asked)
