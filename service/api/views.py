@@ -9,7 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from flask import Blueprint, Response, current_app, jsonify, request
-from marshmallow import Schema, fields, validate
+from marshmallow import Schema, validate
 
 from service.api import examples as ex
 from service.api.audit import (
@@ -20,7 +20,7 @@ from service.api.audit import (
     use_basis,
     use_valuation_date,
 )
-from service.api.body import flatten_errors, json_body, load, validate_capped
+from service.api.body import RawItems, flatten_errors, json_body, load, validate_capped
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
@@ -530,19 +530,25 @@ def _results_json(body: dict) -> Response:
         return jsonify(body)  # indented: the blocks would need the indentation of their place
     token = secrets.token_hex(8)
     blocks: dict[tuple, list] = {}  # a method block's items -> [placeholder, the dict, uses]
+    same: dict[int, tuple] = {}  # id of a block met -> (the block, its entry)
     swapped = []
     for result in body["results"]:
         method = result.get("method") if result is not None else None
         if method is None:
             swapped.append(result)
             continue
-        try:
-            key = tuple(method.items())  # equal blocks, not only the same dict
-            entry = blocks.get(key)
-        except TypeError:  # a block holding a list or object: encoded plainly
-            return jsonify(body)
-        if entry is None:
-            entry = blocks[key] = [f"\x00{token}.{len(blocks)}", method, 0]
+        met = same.get(id(method))
+        if met is not None and met[0] is method:
+            entry = met[1]
+        else:
+            try:
+                key = tuple(method.items())  # equal blocks, not only the same dict
+                entry = blocks.get(key)
+            except TypeError:  # a block holding a list or object: encoded plainly
+                return jsonify(body)
+            if entry is None:
+                entry = blocks[key] = [f"\x00{token}.{len(blocks)}", method, 0]
+            same[id(method)] = (method, entry)
         entry[2] += 1
         swapped.append(result | {"method": entry[0]})
     compact = (",", ":")  # as jsonify encodes when not indenting
@@ -678,8 +684,8 @@ def _top_schema(schema: Schema) -> Schema:
     """The request schema with its items left unchecked (each is loaded on its own)."""
     cls = type(schema)
     if cls not in _TOP_SCHEMAS:
-        _TOP_SCHEMAS[cls] = cls.from_dict({"items": fields.List(
-            fields.Raw(), required=True, validate=validate.Length(min=1))})()
+        _TOP_SCHEMAS[cls] = cls.from_dict({"items": RawItems(
+            required=True, validate=validate.Length(min=1))})()
     return _TOP_SCHEMAS[cls]
 
 

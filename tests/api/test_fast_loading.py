@@ -421,6 +421,9 @@ def test_a_batch_with_many_bad_items_lists_the_same_first_paths(client, monkeypa
     _batch(GOOD[:3] + BAD[:3], interest_rate=2.0),
     {"items": GOOD[:3]},
     [GOOD[0]],
+    _batch([GOOD[0], None, GOOD[1]]),
+    _batch([GOOD[0], None], on_error="per-item"),
+    _batch({"0": GOOD[0]}, on_error="per-item"),
 ])
 def test_request_level_problems_answer_the_same(client, monkeypatch, body):
     fast, slow = _both_ways(client, monkeypatch, "/v1/annuity-factors", body)
@@ -536,3 +539,29 @@ def test_plain_items_are_held_as_columns(app):
     assert sorted(refused) == [8, 9, 10]  # ages outside the table, no such table
     # Each place gives the engine item the object path builds.
     assert list(batch) == objects and batch[-1] == objects[-1]
+
+
+@pytest.mark.parametrize("items", [[], [1], [None], [{}, None, 3], {"a": 1}, "x", None,
+                                   [GOOD[0]] * 3, [[None]], (1, 2)])
+@pytest.mark.parametrize("capped", [True, False])
+def test_the_request_with_its_items_raw_loads_as_a_list_of_raw_fields(items, capped):
+    """The request's own fields are loaded with the items left raw (RawItems); the answer is
+    that of the plain ``fields.List(fields.Raw())`` it stands for."""
+    from marshmallow import fields, validate
+
+    from service.api.body import validate_capped
+    from service.api.schemas import FactorRequestSchema
+
+    plain = FactorRequestSchema.from_dict({"items": fields.List(
+        fields.Raw(), required=True, validate=validate.Length(min=1))})()
+    body = {"basis": "standard-ultimate", "items": items}
+
+    def answer(schema):
+        if capped:
+            return validate_capped(schema, copy.deepcopy(body))
+        try:
+            return schema.load(copy.deepcopy(body))
+        except ValidationError as exc:
+            return exc.messages
+
+    assert answer(views._top_schema(views._factor_request)) == answer(plain)
