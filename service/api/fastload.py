@@ -389,6 +389,11 @@ class _Column:
         elif kind is fields.String:
             self.kind, self.types = "str", (str, _MISSING)
             self.convert = _converter(field, key)[0]
+            # Lengths only (an id): checked on the array of lengths, not value by value.
+            self.lengths = [(v.min or 0, math.inf if v.max is None else v.max)
+                            for v in field.validators] if field.validators and all(
+                type(v) is validate.Length and v.equal is None
+                for v in field.validators) else None
         else:
             raise _Unsupported(f"{key}: not a column")
 
@@ -424,6 +429,11 @@ class _Column:
                     bad[n] = True
                     values[n] = None
             kinds = (kinds & ok_types) | {type(None)}
+        if self.kind == "str" and self.lengths is not None and kinds <= {str}:
+            sizes = np.fromiter(map(len, values), dtype=np.int64, count=size)
+            for lo, hi in self.lengths:
+                bad |= (sizes < lo) | (sizes > hi)
+            return values, bad
         if self.kind == "str":
             verdict = {v: self.convert(v) is not _NO for v in set(values) if type(v) is str}
             if not all(verdict.values()):
@@ -529,17 +539,33 @@ class _BatchPlan:
                 loaded[attr] = [default] * size
         for suspects in self.hooks:
             bad |= np.asarray(suspects(loaded, size), dtype=bool)
-        names = [attr for _, attr in self.order if attr in loaded]
+        names = tuple(attr for _, attr in self.order if attr in loaded)
         gaps = [attr for attr in names if _MISSING in set(map(type, loaded[attr]))]
-        rows = zip(*[loaded[attr] for attr in names], strict=True)
         if not gaps:
-            out = [None if b else dict(zip(names, row, strict=True))
-                   for row, b in zip(rows, bad.tolist(), strict=True)]
+            out = list(map(_builder(names), *[loaded[attr] for attr in names]))
+            for n in np.flatnonzero(bad).tolist():
+                out[n] = None
         else:
+            rows = zip(*[loaded[attr] for attr in names], strict=True)
             out = [None if b else {k: v for k, v in zip(names, row, strict=True)
                                    if v is not missing}
                    for row, b in zip(rows, bad.tolist(), strict=True)]
         return out, bad
+
+
+_BUILDERS: dict[tuple, Callable] = {}
+
+
+def _builder(names: tuple) -> Callable:
+    """``f(*values)``: the dict of ``names`` to ``values`` (compiled once per key set)."""
+    found = _BUILDERS.get(names)
+    if found is None:
+        args = ", ".join(f"v{n}" for n in range(len(names)))
+        body = ", ".join(f"{name!r}: v{n}" for n, name in enumerate(names))
+        found = eval(f"lambda {args}: {{{body}}}")  # noqa: S307 (names: the schema's fields)
+        if len(_BUILDERS) < 64:
+            _BUILDERS[names] = found
+    return found
 
 
 _PLANS: "weakref.WeakKeyDictionary[Schema, _BatchPlan | None]" = weakref.WeakKeyDictionary()
