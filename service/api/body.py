@@ -178,6 +178,20 @@ class _CappedList(fields.List):
         return result
 
 
+class RawItems(_CappedList):
+    """A list of raw elements (``fields.List(fields.Raw())``, capped likewise), taken whole
+    when it is a list without nulls: then every element passes ``fields.Raw``, which refuses
+    only a null (the field has no validators)."""
+
+    def __init__(self, **kwargs):
+        super().__init__(fields.Raw(), **kwargs)
+
+    def _deserialize(self, value, attr, data, **kwargs):
+        if type(value) is list and not any(each is None for each in value):
+            return list(value)
+        return super()._deserialize(value, attr, data, **kwargs)
+
+
 _TWINS: dict[type, type] = {}
 
 

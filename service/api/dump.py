@@ -13,6 +13,7 @@ more than valuing them. The contract tests (schemathesis) check the values' type
 
 import logging
 from collections.abc import Callable
+from contextvars import ContextVar
 
 from marshmallow import Schema, fields
 
@@ -22,6 +23,8 @@ log = logging.getLogger(__name__)
 STRICT = False
 
 _DUMPERS: dict[type, Callable[[dict], dict]] = {}
+#: At most this many key sets are remembered per schema (more are planned each time).
+_PLANS = 256
 _WARNED: set[str] = set()
 
 
@@ -39,8 +42,18 @@ def dumper(schema: type[Schema] | Schema) -> Callable[[dict], dict]:
 
 
 def dump(schema: type[Schema] | Schema, body: dict) -> dict:
-    """``body`` as ``schema`` declares it."""
-    return dumper(schema)(body)
+    """``body`` as ``schema`` declares it. Within one call a nested object met again (the
+    same object, as the method block most results share) is dumped once and its dump
+    shared."""
+    token = _SEEN.set({})
+    try:
+        return dumper(schema)(body)
+    finally:
+        _SEEN.reset(token)
+
+
+#: The nested objects dumped so far in the current ``dump`` call: id -> (object, its dump).
+_SEEN: ContextVar[dict | None] = ContextVar("dump_seen", default=None)
 
 
 def _nested(field: fields.Field):
@@ -60,7 +73,13 @@ def _lazy(field: fields.Nested) -> Callable[[dict], dict]:
         if not compiled:
             compiled.append(dumper(field.nested if isinstance(field.nested, type)
                                    else type(field.schema)))
-        return compiled[0](value)
+        seen = _SEEN.get()
+        if seen is None:
+            return compiled[0](value)
+        found = seen.get(id(value))
+        if found is None or found[0] is not value or found[1] is not compiled[0]:
+            found = seen[id(value)] = (value, compiled[0], compiled[0](value))
+        return found[2]
 
     return run
 
@@ -82,18 +101,32 @@ def _compile(cls: type[Schema]) -> Callable[[dict], dict]:
     nested_keys = {key: (fn, many) for key, fn, many in nested}
     name = cls.__name__
 
+    plans: dict[tuple, tuple] = {}  # a body's keys -> (its keys in order, nested, undeclared)
+
+    def plan_of(shape: tuple) -> tuple:
+        present = set(shape)
+        keys = tuple(key for key in order if key in present)
+        inner = tuple((key, *nested_keys[key]) for key in keys if key in nested_keys)
+        found = (keys, keys == shape, inner, present - known)
+        if len(plans) < _PLANS:
+            plans[shape] = found
+        return found
+
     def run(body: dict) -> dict:
-        out = {}
-        for key in order:
-            if key in body:
-                value = body[key]
-                entry = nested_keys.get(key)
-                if entry is not None and value is not None:
-                    fn, many = entry
-                    value = [fn(v) for v in value] if many else fn(value)
-                out[key] = value
-        if len(out) != len(body):
-            _undeclared(name, set(body) - known)
+        # The keys of a body are put in the schema's order by a plan made once per set of
+        # keys met (results of one kind share one).
+        shape = tuple(body)
+        plan = plans.get(shape)
+        keys, in_order, inner, undeclared = plan if plan is not None else plan_of(shape)
+        if undeclared:
+            out = {key: body[key] for key in keys}
+            _undeclared(name, undeclared)
+        else:
+            out = dict(body) if in_order else {key: body[key] for key in keys}
+        for key, fn, many in inner:
+            value = out[key]
+            if value is not None:
+                out[key] = [fn(v) for v in value] if many else fn(value)
         return out
 
     return run

@@ -19,9 +19,11 @@ validators by name, ``attribute``, partial loading, ``unknown`` other than RAISE
 pre/post-load functions) is not compiled at all and every item goes through marshmallow.
 """
 
+import math
 import weakref
 from collections.abc import Callable
 
+import numpy as np
 from marshmallow import RAISE, Schema, ValidationError, fields, missing, validate
 from marshmallow.decorators import POST_LOAD, PRE_LOAD, VALIDATES, VALIDATES_SCHEMA
 
@@ -346,4 +348,263 @@ def load_items(schema: Schema, items: list, *, stop_at_first: bool = False):
                 continue
         loaded.append(out)
         places.append(n)
+    return loaded, places, errors
+
+
+# ---------------------------------------------------------------------------------------------
+# Whole batches: fields checked as columns
+#
+# A batch's items mostly share one plain shape: scalar fields (numbers, strings) and a list of
+# one nested object of scalar fields. For such items each field is gathered across the batch
+# once and checked as a column: numbers by type and by their fields' Range validators on a
+# numpy array, strings by checking each distinct value once with the field's own converter
+# (the per-item loader's). The schema-level validators and post-load hooks take part only if
+# each declares ``batch_suspects(columns, size)``: a boolean mask that is a superset of the
+# items it could refuse or change. Any item out of the plain shape, failing a check, or a
+# suspect of a hook is loaded one by one as before (the per-item fast loader, else
+# marshmallow), which keeps every error path and message.
+
+_NUMBER_TYPES = frozenset((float, int))
+
+
+class _Column:
+    """One scalar field checked across a batch."""
+
+    def __init__(self, key: str, attr: str, field: fields.Field):
+        self.key, self.attr = key, attr
+        self.required, self.default = field.required, field.load_default
+        self.call = callable(self.default)
+        self.allow_none = field.allow_none
+        kind = type(field)
+        ranges = []
+        for v in field.validators:
+            if type(v) is not validate.Range or v.min is None or v.max is None:
+                ranges = None
+                break
+            ranges.append(v)
+        if kind is StrictFloat and ranges is not None:
+            self.kind, self.ranges, self.types = "float", ranges, (float, int, _MISSING)
+        elif kind is fields.Integer and field.strict and ranges is not None:
+            self.kind, self.ranges, self.types = "int", ranges, (int, _MISSING)
+        elif kind is fields.String:
+            self.kind, self.types = "str", (str, _MISSING)
+            self.convert = _converter(field, key)[0]
+            # Lengths only (an id): checked on the array of lengths, not value by value.
+            self.lengths = [(v.min or 0, math.inf if v.max is None else v.max)
+                            for v in field.validators] if field.validators and all(
+                type(v) is validate.Length and v.equal is None
+                for v in field.validators) else None
+        else:
+            raise _Unsupported(f"{key}: not a column")
+
+    def check(self, items: list) -> tuple[list | None, np.ndarray]:
+        """The loaded values of the items' field (``missing`` where absent with no default;
+        None where refused), or None when no item gives it and it has no default; and the
+        mask of the items whose value is not vouched for."""
+        size = len(items)
+        bad = np.zeros(size, dtype=bool)
+        key, default = self.key, self.default
+        plain_default = not self.call and default is not missing
+        # (a default is put in place before the checks: a valid default passes them, and an
+        # invalid one only sends its items one by one)
+        values = [item.get(key, default if plain_default else missing) for item in items]
+        kinds = set(map(type, values))
+        if kinds == {_MISSING}:
+            if self.required:
+                bad[:] = True
+            return None, bad
+        if _MISSING in kinds:
+            absent = [n for n, v in enumerate(values) if v is missing]
+            if self.required:
+                bad[absent] = True
+            elif self.call:
+                for n in absent:
+                    values[n] = default()
+        ok_types = set(self.types)
+        if self.allow_none:
+            ok_types.add(type(None))
+        if not kinds <= ok_types:
+            for n, v in enumerate(values):
+                if type(v) not in ok_types:
+                    bad[n] = True
+                    values[n] = None
+            kinds = (kinds & ok_types) | {type(None)}
+        if self.kind == "str" and self.lengths is not None and kinds <= {str}:
+            sizes = np.fromiter(map(len, values), dtype=np.int64, count=size)
+            for lo, hi in self.lengths:
+                bad |= (sizes < lo) | (sizes > hi)
+            return values, bad
+        if self.kind == "str":
+            verdict = {v: self.convert(v) is not _NO for v in set(values) if type(v) is str}
+            if not all(verdict.values()):
+                for n, v in enumerate(values):
+                    if type(v) is str and not verdict[v]:
+                        bad[n] = True
+            return values, bad
+        blank = _MISSING in kinds or type(None) in kinds
+        numbers = values if not blank else [
+            0 if v is None or v is missing else v for v in values]
+        try:
+            x = np.array(numbers, dtype=float)
+        except OverflowError:
+            x = np.array([float(v) if -2 ** 60 < v < 2 ** 60 else math.nan for v in numbers])
+        none = np.array([v is None or v is missing for v in values], dtype=bool) if blank \
+            else False
+        with np.errstate(invalid="ignore"):
+            fine = np.isfinite(x) | none
+            if self.kind == "int":
+                fine &= (np.abs(x) < 2.0 ** 53) | none
+            for r in self.ranges:
+                lo = x >= r.min if r.min_inclusive else x > r.min
+                hi = x <= r.max if r.max_inclusive else x < r.max
+                fine &= (lo & hi) | none
+        if not fine.all():  # (the hooks see None for a value refused)
+            bad |= ~fine
+            for n in np.flatnonzero(~fine).tolist():
+                values[n] = None
+        if self.kind == "float" and int in kinds:
+            values = [float(v) if type(v) is int else v for v in values]
+        return values, bad
+
+
+_MISSING = type(missing)
+
+
+class _BatchPlan:
+    """A schema's items loaded as columns (see above); built only where the schema allows."""
+
+    def __init__(self, schema: Schema, loader: FastLoader):
+        self.loader = loader
+        self.columns: list[_Column] = []
+        self.nested: tuple[str, str, _BatchPlan] | None = None
+        self.others: dict[str, object] = {}  # fields outside the plain shape: their defaults
+        order = []
+        for attr, field in schema.load_fields.items():
+            key = field.data_key if field.data_key is not None else attr
+            if type(field) is fields.List and type(field.inner) is fields.Nested \
+                    and isinstance(field.inner.schema, Schema) and self.nested is None \
+                    and field.required and not field.allow_none \
+                    and all(_check_of(v)([None]) for v in field.validators):
+                inner = fields_plan(field.inner.schema)
+                if inner is None:
+                    raise _Unsupported(f"{key}: nested schema")
+                self.nested = (key, attr, inner)
+                order.append(("nested", attr))
+                continue
+            try:
+                self.columns.append(_Column(key, attr, field))
+                order.append(("column", attr))
+            except _Unsupported:
+                if field.required:
+                    raise
+                self.others[attr] = field.load_default
+                order.append(("other", attr))
+        self.order = order
+        self.keys = frozenset(c.key for c in self.columns) | (
+            {self.nested[0]} if self.nested else set())
+        hooks = []
+        for method, _ in (*loader._validators, *loader._post_load):
+            suspects = getattr(method, "batch_suspects", None)
+            if suspects is None:
+                raise _Unsupported(f"{method.__name__}: no batch_suspects")
+            hooks.append(suspects)
+        self.hooks = tuple(hooks)
+
+    def load(self, items: list) -> tuple[list, np.ndarray]:
+        """Loaded items (None where not vouched for) and the mask of those not vouched for.
+        ``items`` are dicts."""
+        size = len(items)
+        keys = self.keys
+        bad = np.array([not keys.issuperset(item) for item in items], dtype=bool)
+        loaded: dict[str, list] = {}
+        for col in self.columns:
+            values, wrong = col.check(items)
+            bad |= wrong
+            if values is not None:
+                loaded[col.attr] = values
+        if self.nested is not None:
+            key, attr, inner = self.nested
+            outer = [item.get(key) for item in items]
+            shaped = [type(v) is list and len(v) == 1 and type(v[0]) is dict for v in outer]
+            if not all(shaped):
+                bad |= ~np.array(shaped, dtype=bool)
+                outer = [v if ok else [{}] for v, ok in zip(outer, shaped, strict=True)]
+            lives, wrong = inner.load([v[0] for v in outer])
+            bad |= wrong
+            loaded[attr] = [[life] for life in lives]
+        for attr, default in self.others.items():
+            if callable(default):
+                loaded[attr] = [default() for _ in range(size)]
+            elif default is not missing:
+                loaded[attr] = [default] * size
+        for suspects in self.hooks:
+            bad |= np.asarray(suspects(loaded, size), dtype=bool)
+        names = tuple(attr for _, attr in self.order if attr in loaded)
+        gaps = [attr for attr in names if _MISSING in set(map(type, loaded[attr]))]
+        if not gaps:
+            out = list(map(_builder(names), *[loaded[attr] for attr in names]))
+            for n in np.flatnonzero(bad).tolist():
+                out[n] = None
+        else:
+            rows = zip(*[loaded[attr] for attr in names], strict=True)
+            out = [None if b else {k: v for k, v in zip(names, row, strict=True)
+                                   if v is not missing}
+                   for row, b in zip(rows, bad.tolist(), strict=True)]
+        return out, bad
+
+
+_BUILDERS: dict[tuple, Callable] = {}
+
+
+def _builder(names: tuple) -> Callable:
+    """``f(*values)``: the dict of ``names`` to ``values`` (compiled once per key set)."""
+    found = _BUILDERS.get(names)
+    if found is None:
+        args = ", ".join(f"v{n}" for n in range(len(names)))
+        body = ", ".join(f"{name!r}: v{n}" for n, name in enumerate(names))
+        found = eval(f"lambda {args}: {{{body}}}")  # noqa: S307 (names: the schema's fields)
+        if len(_BUILDERS) < 64:
+            _BUILDERS[names] = found
+    return found
+
+
+_PLANS: "weakref.WeakKeyDictionary[Schema, _BatchPlan | None]" = weakref.WeakKeyDictionary()
+
+
+def fields_plan(schema: Schema) -> "_BatchPlan | None":
+    """The schema's batch plan, or None where it cannot have one."""
+    plan = _PLANS.get(schema, missing)
+    if plan is missing:
+        loader = fast_loader(schema)
+        try:
+            plan = None if loader is None else _BatchPlan(schema, loader)
+        except _Unsupported:
+            plan = None
+        _PLANS[schema] = plan
+    return plan
+
+
+def load_batch(schema: Schema, items: list, *, stop_at_first: bool = False):
+    """As :func:`load_items` (the same answer), with the items of the plain shape checked as
+    columns and the others loaded one by one."""
+    plan = fields_plan(schema)
+    if plan is None or len(items) < 2:
+        return load_items(schema, items, stop_at_first=stop_at_first)
+    dicts = [n for n, item in enumerate(items) if type(item) is dict]
+    quick, _ = plan.load([items[n] for n in dicts])
+    done = dict(zip(dicts, quick, strict=True))
+    loaded, places, errors = [], [], {}
+    rest = [n for n in range(len(items)) if done.get(n) is None]
+    if rest:
+        more, kept, errors = load_items(schema, [items[n] for n in rest],
+                                        stop_at_first=stop_at_first)
+        for k, out in zip(kept, more, strict=True):
+            done[rest[k]] = out
+        errors = {rest[k]: msgs for k, msgs in errors.items()}
+    stop = min(errors) if errors and stop_at_first else len(items)
+    for n in range(stop):
+        out = done.get(n)
+        if out is not None:
+            loaded.append(out)
+            places.append(n)
     return loaded, places, errors

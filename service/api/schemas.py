@@ -3,11 +3,13 @@
 import datetime
 import math
 
+import numpy as np
 from marshmallow import (
     RAISE,
     Schema,
     ValidationError,
     fields,
+    missing,
     post_load,
     validate,
     validates_schema,
@@ -139,6 +141,15 @@ class LifeSchema(_Strict):
                                   "valuation_date.", "age")
         if age is not None and born is not None:
             raise ValidationError("Give age or date_of_birth, not both.", "date_of_birth")
+
+    @staticmethod
+    def _age_or_date_suspects(columns: dict, size: int):
+        """For a batch loaded as columns: the lives ``_age_or_date`` could refuse."""
+        ages = columns.get("age", [None] * size)
+        born = columns.get("date_of_birth", [None] * size)
+        return [a is None or b is not None for a, b in zip(ages, born, strict=True)]
+
+    _age_or_date.batch_suspects = _age_or_date_suspects
 
 
 class SurvivorshipAmountsSchema(_Strict):
@@ -282,9 +293,51 @@ class ItemSchema(_ItemBase):
         if errors:
             raise ValidationError(errors)
 
+    @staticmethod
+    def _consistent_suspects(columns: dict, size: int):
+        """For a batch loaded as columns: a superset of the items ``_consistent`` could
+        refuse (periods in months, a guarantee longer than the term, lives and survivorship
+        not matching, or a period within twice the rounding tolerance of not being whole)."""
+        suspect = _months_given(columns, size)
+        blank = [None] * size
+        lives = columns.get("lives", blank)
+        survivorship = columns.get("survivorship", blank)
+        suspect |= np.array([type(v) is not list or len(v) != 1 or s not in (None, missing)
+                             for v, s in zip(lives, survivorship, strict=True)], dtype=bool)
+        discrete = np.array([t in ("advance", "arrears") for t in columns.get("timing", blank)],
+                            dtype=bool)
+        m = np.array([f if type(f) is int else 1 for f in columns.get("frequency", blank)],
+                     dtype=float)
+        years = {name: np.array([v if type(v) is float else np.nan
+                                 for v in columns.get(name, blank)], dtype=float)
+                 for name in _MONTHS}
+        with np.errstate(invalid="ignore"):
+            for value in years.values():
+                scaled = value * m
+                whole = np.abs(scaled - np.round(scaled)) <= 0.5e-9 * np.maximum(
+                    1.0, np.abs(scaled))
+                suspect |= discrete & ~np.isnan(value) & ~whole
+            guarantee = np.nan_to_num(years["guarantee"], nan=0.0)
+            suspect |= ~np.isnan(years["term"]) & (guarantee > years["term"])
+        return suspect
+
+    _consistent.batch_suspects = _consistent_suspects
+
     @post_load
     def _years(self, data, **kwargs):
         return _months_to_years(data, _MONTHS)
+
+    _years.batch_suspects = lambda columns, size: _months_given(columns, size)
+
+
+def _months_given(columns: dict, size: int):
+    """The items of a batch loaded as columns that give some period in months."""
+    given = np.zeros(size, dtype=bool)
+    for name in _MONTHS:
+        values = columns.get(f"{name}_months")
+        if values is not None:
+            given |= np.array([v is not missing for v in values], dtype=bool)
+    return given
 
 
 #: Request rates (a flat interest_rate or each rate of an interest structure) lie here.

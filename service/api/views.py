@@ -9,7 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from flask import Blueprint, Response, current_app, jsonify, request
-from marshmallow import Schema, fields, validate
+from marshmallow import Schema, validate
 
 from service.api import examples as ex
 from service.api.audit import (
@@ -20,11 +20,11 @@ from service.api.audit import (
     use_basis,
     use_valuation_date,
 )
-from service.api.body import flatten_errors, json_body, load, validate_capped
+from service.api.body import RawItems, flatten_errors, json_body, load, validate_capped
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
-from service.api.fastload import load_items
+from service.api.fastload import load_batch, load_items
 from service.api.metrics import FACTORS
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
@@ -60,6 +60,7 @@ from service.engine.annuity import (
     cash_flow_schedule,
     value_annuities,
 )
+from service.engine.columns import TIMING_CODES, Columns, ItemBatch
 from service.engine.curves import Curve
 from service.engine.errors import FieldError, ItemError, WorkLimitError
 from service.engine.insurance import Assurance, Cover, insurance_values
@@ -289,6 +290,54 @@ def _wants_csv() -> bool:
     return best == "text/csv"
 
 
+def _column_items(basis, items, valuation_date):
+    """As :func:`_engine_items` for annuity items, with the plain ones (one life given by
+    age, discrete payments, start_requires 'any', no measures or spread, a table the basis
+    has for the life and an age inside it, no cohort tables) held as engine columns rather
+    than objects; the others go through :func:`_engine_items` (which words any problem)."""
+    tables = RequestTables(basis, valuation_date)
+    if tables.generational or len(items) < 2:
+        return None
+    plain, rest = [], []
+    table_of: dict = {}
+    for n, item in enumerate(items):
+        lives = item["lives"]
+        if len(lives) == 1 and lives[0]["date_of_birth"] is None \
+                and item["timing"] in TIMING_CODES and item["start_requires"] == "any" \
+                and not item["measures"] and "spread" not in item \
+                and "survivorship" not in item:
+            sex = lives[0]["sex"]
+            if sex not in table_of:
+                table_of[sex] = _table_of(basis, sex)
+            if table_of[sex] is not None:
+                plain.append(n)
+                continue
+        rest.append(n)
+    if not plain:
+        return None
+    lives = [items[n]["lives"][0] for n in plain]
+    cols = {name: [life[name] for life in lives] for name in
+            ("age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra")}
+    chosen = [items[n] for n in plain]
+    cols |= {name: [item[name] for item in chosen] for name in
+             ("timing", "frequency", "term", "deferral", "guarantee", "escalation")}
+    cols["table"] = [table_of[life["sex"]] for life in lives]
+    columns = Columns.from_dict(cols)
+    rated = columns.age + columns.age_adjustment
+    first = np.array([t.first_age for t in tables.tables], dtype=float)[columns.table]
+    last = np.array([t.last_age for t in tables.tables], dtype=float)[columns.table]
+    outside = ~((first - _SNAP <= rated) & (rated <= last + _SNAP))
+    if outside.any():  # worded item by item
+        keep = ~outside
+        rest = sorted(rest + np.asarray(plain)[outside].tolist())
+        plain = np.asarray(plain)[keep].tolist()
+        columns = columns.take(keep)
+    others, refused, _ = _engine_items(basis, [items[n] for n in rest], valuation_date)
+    batch = ItemBatch(len(items), np.asarray(plain, dtype=np.intp), columns,
+                      dict(zip(rest, others, strict=True)))
+    return batch, {rest[k]: problems for k, problems in refused.items()}, tables.tables
+
+
 def _engine_items(basis, items, valuation_date, build=None):
     """Turn loaded items into engine items; return them, ``{n: {path: messages}}`` for the
     items a basis cannot value as given (paths within the item), and the request's tables.
@@ -481,19 +530,25 @@ def _results_json(body: dict) -> Response:
         return jsonify(body)  # indented: the blocks would need the indentation of their place
     token = secrets.token_hex(8)
     blocks: dict[tuple, list] = {}  # a method block's items -> [placeholder, the dict, uses]
+    same: dict[int, tuple] = {}  # id of a block met -> (the block, its entry)
     swapped = []
     for result in body["results"]:
         method = result.get("method") if result is not None else None
         if method is None:
             swapped.append(result)
             continue
-        try:
-            key = tuple(method.items())  # equal blocks, not only the same dict
-            entry = blocks.get(key)
-        except TypeError:  # a block holding a list or object: encoded plainly
-            return jsonify(body)
-        if entry is None:
-            entry = blocks[key] = [f"\x00{token}.{len(blocks)}", method, 0]
+        met = same.get(id(method))
+        if met is not None and met[0] is method:
+            entry = met[1]
+        else:
+            try:
+                key = tuple(method.items())  # equal blocks, not only the same dict
+                entry = blocks.get(key)
+            except TypeError:  # a block holding a list or object: encoded plainly
+                return jsonify(body)
+            if entry is None:
+                entry = blocks[key] = [f"\x00{token}.{len(blocks)}", method, 0]
+            same[id(method)] = (method, entry)
         entry[2] += 1
         swapped.append(result | {"method": entry[0]})
     compact = (",", ":")  # as jsonify encodes when not indenting
@@ -506,20 +561,21 @@ def _results_json(body: dict) -> Response:
     return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
 
 
-def _batch(schema, item_schema, build=None) -> _Request:
+def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
     others, else refuse the whole batch at the first problem found (all of them listed)."""
     limit = current_app.config["MAX_ITEMS"]
     from_csv = request.mimetype == "text/csv"
     try:
-        return _read_batch(schema, item_schema, build, limit, from_csv)
+        return _read_batch(schema, item_schema, build, limit, from_csv, columns)
     except ProblemError as exc:
         if from_csv and exc.errors:
             exc.errors = {row_path(path): msgs for path, msgs in exc.errors.items()}
         raise
 
 
-def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Request":
+def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
+                columns: bool) -> "_Request":
     if request.args and not from_csv:
         raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
             name: ["Not read with a JSON body: give it in the body."]
@@ -535,7 +591,7 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     if per_item:
         data = load(_top_schema(schema), body)
         raw = data["items"]
-        data["items"], places, errors = load_items(item_schema, raw)
+        data["items"], places, errors = load_batch(item_schema, raw)
         refused = {n: flatten_errors(messages) for n, messages in errors.items()}
     else:
         data = _load_whole(schema, item_schema, body, build)
@@ -545,7 +601,9 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool) -> "_Req
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
     _dates_needed(basis, data, data["items"])
-    engine, unknown, tables = _engine_items(basis, data["items"], data["valuation_date"], build)
+    held = _column_items(basis, data["items"], data["valuation_date"]) if columns else None
+    engine, unknown, tables = held or _engine_items(basis, data["items"],
+                                                    data["valuation_date"], build)
     if unknown and not per_item:
         raise ProblemError(422, "The request has invalid fields.", errors={
             f"items.{places[n]}.{path}": msgs for n, item in unknown.items()
@@ -571,7 +629,7 @@ def _load_whole(schema, item_schema, body, build) -> dict:
     if isinstance(body, dict):
         top, _, _, _ = validate_capped(_top_schema(schema), body)
         if top is not None:
-            items, _, errors = load_items(item_schema, top["items"], stop_at_first=True)
+            items, _, errors = load_batch(item_schema, top["items"], stop_at_first=True)
             if not errors:
                 top["items"] = items
                 return top
@@ -626,8 +684,8 @@ def _top_schema(schema: Schema) -> Schema:
     """The request schema with its items left unchecked (each is loaded on its own)."""
     cls = type(schema)
     if cls not in _TOP_SCHEMAS:
-        _TOP_SCHEMAS[cls] = cls.from_dict({"items": fields.List(
-            fields.Raw(), required=True, validate=validate.Length(min=1))})()
+        _TOP_SCHEMAS[cls] = cls.from_dict({"items": RawItems(
+            required=True, validate=validate.Length(min=1))})()
     return _TOP_SCHEMAS[cls]
 
 
@@ -676,7 +734,7 @@ def _placed(exc: ItemError, req: _Request) -> ItemError:
 def annuity_factors():
     """One or many annuity factors under one basis."""
     wants_csv = _wants_csv()
-    req = _batch(_factor_request, _item_schema)
+    req = _batch(_factor_request, _item_schema, columns=True)
     valuation = req.valuation
     asked = [item["measures"] for item in req.items]
     key_rates = sum("key_rate_durations" in measures for measures in asked)

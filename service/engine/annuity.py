@@ -128,6 +128,8 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
                                 deadline=deadline, measure=measure, key_rates=key_rates)
         if done is not None:
             return done
+    if not isinstance(items, list | tuple):
+        items = list(items)  # (a batch held as columns: its items, built)
     batch = _prepare(tables, items, valuation)
     curve = valuation.curve
     size = len(items)

@@ -54,7 +54,7 @@ sensitivities are wanted.
 """
 
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -190,6 +190,37 @@ class Columns:
     def to_items(self) -> list[Item]:
         """The items as engine objects (for the general path)."""
         return [_row_item(self, n) for n in range(len(self))]
+
+
+class ItemBatch(Sequence):
+    """A batch of engine items held partly as columns: the items at ``rows`` (ascending
+    places) are single-life discrete items with start_requires 'any' and the usual
+    survivorship, given by ``columns``; the others are :class:`Item` objects in ``others``
+    (by place). Indexing gives each place's :class:`Item` (built on demand), so it serves
+    wherever a list of items does; :func:`dispatch` values the column rows without one."""
+
+    def __init__(self, size: int, rows: np.ndarray, columns: Columns,
+                 others: Mapping[int, Item]):
+        if len(rows) != len(columns) or len(rows) + len(others) != size:
+            raise ValueError("the rows and the other items must fill the batch")
+        self.size, self.rows, self.columns = size, np.asarray(rows, dtype=np.intp), columns
+        self.others = dict(others)
+        self._row_of = dict(zip(self.rows.tolist(), range(len(self.rows)), strict=True))
+
+    def __len__(self) -> int:
+        return self.size
+
+    def __getitem__(self, n):
+        if isinstance(n, slice):
+            return [self[k] for k in range(*n.indices(self.size))]
+        if n < 0:
+            n += self.size
+        row = self._row_of.get(n)
+        if row is None:
+            if n not in self.others:
+                raise IndexError(n)
+            return self.others[n]
+        return _row_item(self.columns, row)
 
 
 def _timing_codes(value) -> np.ndarray:
@@ -464,7 +495,13 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         return None  # sensitivities come from the general path's payments
     exact = valuation.approximation == "exact"
     rows, which = [], []
-    for n, item in enumerate(items):
+    given = None
+    if isinstance(items, ItemBatch):
+        given = items
+        listed = sorted(items.others.items())
+    else:
+        listed = enumerate(items)
+    for n, item in listed:
         p = item.payments
         if (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
                 and (exact or p.frequency == 1)
@@ -474,9 +511,23 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
                 and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)):
             rows.append(_item_row(item))
             which.append(n)
+    if given is not None:
+        take = given.rows if exact else given.rows[given.columns.frequency == 1]
+        part = given.columns if exact else given.columns.take(given.columns.frequency == 1)
+        if rows:
+            places = np.concatenate([take, np.array(which, dtype=np.intp)])
+            order = np.argsort(places, kind="stable")
+            both = _from_rows(rows)
+            cols = Columns(**{name: np.concatenate([getattr(part, name),
+                                                    getattr(both, name)])[order]
+                              for name in FIELDS})
+            which = places[order].tolist()
+        else:
+            cols, which = part, take.tolist()
     if not which:
         return None
-    cols = _from_rows(rows)
+    if given is None:
+        cols = _from_rows(rows)
     if problems(tables, cols, valuation.fractional_age):
         _prepare(tables, items, valuation)  # raises the general path's ItemError
         return None  # (not reached unless the checks disagree: then the general path)

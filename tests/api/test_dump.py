@@ -47,3 +47,58 @@ def test_the_real_factor_response_dumps_as_it_is(client):
              "measures": ["duration"]},
             {"lives": [{"age": 300}], "timing": "advance"}], "on_error": "per-item"}).get_json()
     assert dump(FactorResponseSchema, body) == body
+
+
+def _by_hand(cls, body):
+    """The dump as the module's rule states it, walked field by field from the schema: the
+    declared keys present, in declaration order, nested schemas followed."""
+    out = {}
+    for name, field in cls._declared_fields.items():
+        key = field.data_key or name
+        if key not in body:
+            continue
+        value = body[key]
+        if value is not None and isinstance(field, fields.Nested):
+            value = _by_hand(field.nested, value)
+        elif value is not None and isinstance(field, fields.List) \
+                and isinstance(field.inner, fields.Nested):
+            value = [_by_hand(field.inner.nested, v) for v in value]
+        out[key] = value
+    return out
+
+
+def test_bodies_of_many_shapes_and_shared_nested_objects_dump_as_walked_by_hand(monkeypatch):
+    """Each set of keys is planned once and a nested object met again is dumped once: the
+    dumps are still those of the rule, key order included, and the input is left alone."""
+    shared = {"bee": "s", "a": 2.0}
+    shapes = [{"z": 1, "inner": shared}, {"inner": shared, "z": 2},
+              {"many": [shared, shared, {"a": 0.5}], "inner": shared},
+              {"plain": {"k": 1}}, {}, {"inner": None, "many": []}]
+    monkeypatch.setattr(dump_module, "STRICT", False)  # undeclared keys dropped
+    monkeypatch.setattr(dump_module, "_DUMPERS", {})
+    for n in range(700):  # more key sets than are remembered are planned each time
+        body = shapes[n % len(shapes)] | ({f"x{n}": 1} if n % 2 else {})
+        before = repr(body)
+        if any(k.startswith("x") for k in body):
+            assert dump(Outer, body) == _by_hand(Outer, body)
+        else:
+            out = dump(Outer, body)
+            assert out == _by_hand(Outer, body)
+            assert repr(out) == repr(_by_hand(Outer, body))  # the same order at every depth
+        assert repr(body) == before
+
+
+def test_a_shared_block_is_dumped_once_per_call(monkeypatch):
+    calls = []
+    inner = dump_module.dumper(Inner)
+    monkeypatch.setitem(dump_module._DUMPERS, Inner, lambda body: calls.append(1) or
+                        inner(body))
+    dump_module._DUMPERS.pop(Outer, None)  # recompiled against the counting dumper
+    try:
+        shared = {"a": 1.0}
+        out = dump(Outer, {"many": [shared] * 5 + [{"a": 1.0}], "inner": shared})
+        assert len(calls) == 2 and out["many"][0] == shared
+        dump(Outer, {"inner": shared})
+        assert len(calls) == 3  # not remembered across calls
+    finally:
+        dump_module._DUMPERS.pop(Outer, None)

@@ -9,6 +9,8 @@ mode. Request ids and timestamps are the only parts that may differ.
 """
 
 import copy
+import datetime
+import json
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -263,6 +265,94 @@ def test_generated_items_load_alike(item):
 _SCHEMA = ItemSchema()
 
 
+# ---- whole batches checked as columns -------------------------------------------------------
+
+
+def _batch_agrees(schema, items):
+    """``load_batch`` gives what marshmallow gives item by item (the loaded items, their
+    places and the refusals' messages) and leaves the items as they were; return the mask
+    of the items it vouched for as columns."""
+    before = copy.deepcopy(items)
+    loaded, places, errors = fastload.load_batch(schema, items)
+    assert items == before
+    expected, messages = [], {}
+    for n, item in enumerate(before):
+        try:
+            expected.append((n, schema.load(copy.deepcopy(item))))
+        except ValidationError as exc:
+            messages[n] = exc.messages
+    assert places == [n for n, _ in expected]
+    assert all(_same(out, slow) for out, (_, slow) in zip(loaded, expected, strict=True))
+    assert errors == messages
+    plan = fastload.fields_plan(schema)
+    dicts = [copy.deepcopy(item) for item in before if type(item) is dict]
+    return plan.load(dicts)[1] if plan is not None and dicts else None
+
+
+@pytest.mark.parametrize("schema_class, corpus", [
+    (ItemSchema, GOOD + BAD), (ItemSchema, BAD + GOOD), (InsuranceItemSchema, INSURANCE),
+    (ProjectionItemSchema, PROJECTION), (ProjectionItemSchema, PROJECTION[::-1])])
+def test_the_batch_loader_gives_marshmallows_answers(schema_class, corpus):
+    _batch_agrees(schema_class(), copy.deepcopy(corpus))
+
+
+def test_the_batch_loader_checks_plain_items_as_columns():
+    """Without this the comparisons could pass with a batch loader that vouches for none:
+    the plain items (one life, scalar fields) of the good corpus are vouched for as columns,
+    and every bad item is sent one by one."""
+    plain = [item for item in GOOD if len(item["lives"]) == 1 and not {
+        "measures", "spread", "term_months", "deferral_months", "guarantee_months"} & set(
+        item) and "date_of_birth" not in item["lives"][0]]
+    assert len(plain) >= 10
+    bad = _batch_agrees(ItemSchema(), copy.deepcopy(plain))
+    assert not bad.any()
+    dicts = [item for item in BAD if type(item) is dict]
+    assert _batch_agrees(ItemSchema(), copy.deepcopy(dicts)).all()
+    assert fastload.fields_plan(ProjectionItemSchema()) is not None
+    # A schema-level rule without a batch form keeps its schema out of the column path.
+    assert fastload.fields_plan(InsuranceItemSchema()) is None
+
+
+def test_the_batch_loader_stops_at_the_first_refusal_as_before():
+    items = [*GOOD[:3], BAD[13], *GOOD[:2], BAD[2]]
+    fast = fastload.load_batch(_SCHEMA, copy.deepcopy(items), stop_at_first=True)
+    slow = fastload.load_items(_SCHEMA, copy.deepcopy(items), stop_at_first=True)
+    assert fast[1] == slow[1] == [0, 1, 2] and fast[2] == slow[2]
+    assert all(_same(a, b) for a, b in zip(fast[0], slow[0], strict=True))
+
+
+_PERIODS = st.one_of(_NUMBERS, st.sampled_from(
+    [1 / 12, 5 / 12, 10.5, 0.25, 10 + 1e-10, 10 + 5e-9, 10 + 2e-8, 200.0, 1e-300, -0.0]))
+_PLAIN_LIFE = st.fixed_dictionaries({"age": _NUMBERS}, optional={
+    "sex": st.sampled_from(["female", "male", "", "X", None, 3, "blend-60.40"]),
+    "duration": _NUMBERS, "age_adjustment": _NUMBERS, "mortality_multiplier": _NUMBERS,
+    "flat_extra": st.sampled_from([0, 0.005, 1, 1.5, -0.1, None, True]),
+    "date_of_birth": st.sampled_from([None, "1958-03-14"])})
+_PLAIN_ITEM = st.fixed_dictionaries(
+    {"lives": st.lists(_PLAIN_LIFE, min_size=1, max_size=1),
+     "timing": st.sampled_from(["advance", "arrears", "continuous", "never"])},
+    optional={"id": st.one_of(st.text(max_size=66), st.none()),
+              "frequency": st.sampled_from([1, 2, 4, 12, 365, 0, 366, 12.0, True, None]),
+              "term": st.one_of(_PERIODS, st.none()), "deferral": _PERIODS,
+              "guarantee": _PERIODS, "term_months": st.sampled_from([1, 12, 7, 0]),
+              "escalation": st.sampled_from([0, 0.02, -0.5, 1, 1.01, True, None]),
+              "start_requires": st.sampled_from(["any", "first", "all"]),
+              "survivorship": st.just("joint-life"), "measures": st.just([])})
+
+
+@settings(max_examples=300, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(st.one_of(_PLAIN_ITEM, _PLAIN_ITEM, _ITEM), min_size=2, max_size=12))
+def test_generated_batches_load_alike(items):
+    _batch_agrees(_SCHEMA, items)
+
+
+@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@given(st.lists(_PLAIN_ITEM, min_size=2, max_size=12),
+       st.one_of(_NUMBERS, st.just(1000.0), st.just(12)))
+def test_generated_projection_batches_load_alike(items, amount):
+    _batch_agrees(ProjectionItemSchema(), [item | {"amount": amount} for item in items])
+
+
 # ---- whole requests: the fast path against marshmallow alone --------------------------------
 
 
@@ -288,6 +378,7 @@ def _both_ways(client, monkeypatch, path, body):
     fast = client.post(path, json=copy.deepcopy(body))
     with monkeypatch.context() as m:
         m.setattr(fastload, "fast_loader", lambda schema: None)
+        m.setattr(fastload, "fields_plan", lambda schema: None)
         m.setattr(views, "_load_whole", _old_load_whole)
         slow = client.post(path, json=copy.deepcopy(body))
     return fast, slow
@@ -330,6 +421,9 @@ def test_a_batch_with_many_bad_items_lists_the_same_first_paths(client, monkeypa
     _batch(GOOD[:3] + BAD[:3], interest_rate=2.0),
     {"items": GOOD[:3]},
     [GOOD[0]],
+    _batch([GOOD[0], None, GOOD[1]]),
+    _batch([GOOD[0], None], on_error="per-item"),
+    _batch({"0": GOOD[0]}, on_error="per-item"),
 ])
 def test_request_level_problems_answer_the_same(client, monkeypatch, body):
     fast, slow = _both_ways(client, monkeypatch, "/v1/annuity-factors", body)
@@ -376,3 +470,98 @@ def test_results_with_shared_method_blocks_encode_as_jsonify_does(app, monkeypat
         sly = [*results, {"id": "\x00" + "f" * 16 + ".0", "value": 1.0, "method": exact}]
         assert views._results_json(_answer_body(sly)).get_data() == \
             views.jsonify(_answer_body(sly)).get_data()
+
+
+# ---- engine items held as columns -----------------------------------------------------------
+
+
+def _both_item_forms(client, monkeypatch, body):
+    fast = client.post("/v1/annuity-factors", json=copy.deepcopy(body))
+    with monkeypatch.context() as m:
+        m.setattr(views, "_column_items", lambda *args: None)
+        slow = client.post("/v1/annuity-factors", json=copy.deepcopy(body))
+    return fast, slow
+
+
+_PLAIN_MIX = [
+    {"id": "a", "lives": [{"age": 65.5}], "timing": "advance", "frequency": 12,
+     "guarantee": 5.0},
+    {"lives": [{"age": 40.25, "sex": "male", "duration": 1, "mortality_multiplier": 1.5,
+                "flat_extra": 0.002, "age_adjustment": 2}], "timing": "arrears",
+     "frequency": 4, "term": 10, "deferral": 2.5, "escalation": 0.02},
+    {"lives": [{"age": 70}], "timing": "continuous", "term": 5},
+    {"lives": [{"age": 66}], "timing": "advance", "spread": {"percentiles": [50]}},
+    {"lives": [{"age": 66}], "timing": "advance", "start_requires": "first"},
+    {"lives": [{"age": 60}, {"age": 57}], "timing": "advance", "survivorship": "joint-life"},
+    {"lives": [{"date_of_birth": "1958-03-14"}], "timing": "advance", "frequency": 2},
+    {"lives": [{"age": 64}], "timing": "advance", "frequency": 12, "term_months": 18},
+    {"lives": [{"age": 140}], "timing": "advance"},  # outside the table: refused
+    {"lives": [{"age": 5, "age_adjustment": -10}], "timing": "arrears"},  # so is this
+    {"lives": [{"age": 80, "sex": "blend-60.40"}], "timing": "advance"},  # no such table
+    {"lives": [{"age": 45}], "timing": "arrears", "frequency": 365, "term": 1},
+]
+
+
+@pytest.mark.parametrize("on_error", ["reject", "per-item"])
+@pytest.mark.parametrize("basis", ["standard-ultimate", "fernhollow-annuitants"])
+@pytest.mark.parametrize("which", ["all", "plain", "good"])
+def test_items_held_as_columns_answer_byte_for_byte_as_objects(client, monkeypatch, on_error,
+                                                                basis, which):
+    """The answer (values, refusals, warnings, their order) does not depend on whether the
+    plain items reach the engine as columns or as objects."""
+    items = {"all": _PLAIN_MIX, "plain": [_PLAIN_MIX[n] for n in (0, 1, 11, 0, 1)],
+             "good": [x for n, x in enumerate(_PLAIN_MIX) if n not in (8, 9, 10)]}[which]
+    if basis != "standard-ultimate":  # sex-distinct: every life names its table
+        items = [item | {"lives": [{"sex": "female"} | life for life in item["lives"]]}
+                 for item in items]
+    body = _batch(items, on_error=on_error, basis=basis)
+    fast, slow = _both_item_forms(client, monkeypatch, body)
+    assert fast.status_code == slow.status_code
+    assert _without_ids(fast.get_json()) == _without_ids(slow.get_json())
+    strip = [_without_ids(r.get_json()) for r in (fast, slow)]
+    assert json.dumps(strip[0]) == json.dumps(strip[1])
+    if which != "all":
+        assert fast.status_code == 200, fast.get_json()
+
+
+def test_plain_items_are_held_as_columns(app):
+    """Without this the comparison above could pass with no item ever held as columns."""
+    from service.engine.columns import ItemBatch
+
+    items = [fastload.load_items(_SCHEMA, [copy.deepcopy(x)])[0][0] for x in _PLAIN_MIX]
+    with app.test_request_context():
+        basis = app.extensions["registry"].resolve("standard-ultimate")
+        dated = datetime.date(2026, 12, 31)
+        objects, _, _ = views._engine_items(basis, copy.deepcopy(items), dated)
+        batch, refused, _ = views._column_items(basis, items, dated)
+    assert isinstance(batch, ItemBatch)
+    assert batch.rows.tolist() == [0, 1, 7, 11]  # (7 gave its term in months)
+    assert sorted(refused) == [8, 9, 10]  # ages outside the table, no such table
+    # Each place gives the engine item the object path builds.
+    assert list(batch) == objects and batch[-1] == objects[-1]
+
+
+@pytest.mark.parametrize("items", [[], [1], [None], [{}, None, 3], {"a": 1}, "x", None,
+                                   [GOOD[0]] * 3, [[None]], (1, 2)])
+@pytest.mark.parametrize("capped", [True, False])
+def test_the_request_with_its_items_raw_loads_as_a_list_of_raw_fields(items, capped):
+    """The request's own fields are loaded with the items left raw (RawItems); the answer is
+    that of the plain ``fields.List(fields.Raw())`` it stands for."""
+    from marshmallow import fields, validate
+
+    from service.api.body import validate_capped
+    from service.api.schemas import FactorRequestSchema
+
+    plain = FactorRequestSchema.from_dict({"items": fields.List(
+        fields.Raw(), required=True, validate=validate.Length(min=1))})()
+    body = {"basis": "standard-ultimate", "items": items}
+
+    def answer(schema):
+        if capped:
+            return validate_capped(schema, copy.deepcopy(body))
+        try:
+            return schema.load(copy.deepcopy(body))
+        except ValidationError as exc:
+            return exc.messages
+
+    assert answer(views._top_schema(views._factor_request)) == answer(plain)

@@ -361,3 +361,30 @@ def test_items_off_the_column_path_are_valued_by_the_general_path():
         want = value_annuities(tables, cols.to_items(), valuation, fast=False)
         np.testing.assert_array_equal(got.method_code, want.method_code)
         np.testing.assert_allclose(got.value, want.value, rtol=RTOL)
+
+
+@pytest.mark.parametrize("approximation", ["exact", "woolhouse-2"])
+def test_a_batch_held_partly_as_columns_values_as_its_items(bases, approximation):
+    """An ItemBatch (some places as columns, the others as objects) is valued exactly as the
+    list of the items it stands for (the same code path on the same rows), and its places
+    give those items back."""
+    from service.engine.columns import ItemBatch
+
+    basis = next(b for b in bases if b.id == "standard-ultimate")
+    tables = basis.tables
+    items = _random_items(np.random.default_rng(11), tables, 60)
+    items[5] = Item((Life(age=60.0), Life(age=58.0)), Payments(frequency=12))
+    items[17] = Item((Life(age=70.5),), Payments(timing="continuous", term=10.0))
+    items[30] = Item((Life(age=66.0),), Payments(frequency=4), start_requires="first")
+    valuation = Valuation(_rate(basis), basis.fractional_age, approximation)
+    items = _valid(tables, items, valuation)
+    held = [n for n, item in enumerate(items) if n % 3 and len(item.lives) == 1
+            and item.payments.timing != "continuous" and item.start_requires == "any"]
+    assert 30 <= len(held) < len(items) - 3
+    batch = ItemBatch(len(items), np.array(held), Columns.from_items([items[n] for n in held]),
+                      {n: items[n] for n in range(len(items)) if n not in held})
+    assert list(batch) == items
+    got = value_annuities(tables, batch, valuation)
+    want = value_annuities(tables, items, valuation)
+    assert got.value.tolist() == want.value.tolist()
+    assert got.method_code.tolist() == want.method_code.tolist()
