@@ -614,16 +614,19 @@ ITEM_PROBLEM_DOC = {"description": "on_error 'per-item': why this item was refus
                                    "has no value)."}
 
 
+ROUNDED_DOC = {"description": (
+    "Where the basis prescribes rounding: the value rounded by its rule (decimal places, "
+    "half-up or half-even, applied to the shortest decimal form of value). Nothing inside "
+    "the calculation is rounded.")}
+AGES_DOC = {"description": "Where a life gave date_of_birth: the age used for each life (null "
+                           "for a life that gave its age)."}
+
+
 class FactorResultSchema(Schema):
     id = fields.String(metadata={"description": "The item's id, where it gave one."})
     value = fields.Float(metadata={"description": "Always, unless the item was refused."})
-    rounded = fields.Float(metadata={
-        "description": "Where the basis prescribes rounding: the value rounded by its rule "
-                       "(decimal places, half-up or half-even, applied to the shortest "
-                       "decimal form of value). Nothing inside the calculation is rounded."})
-    ages = fields.List(fields.Float(allow_none=True), metadata={
-        "description": "Where a life gave date_of_birth: the age used for each life (null "
-                       "for a life that gave its age)."})
+    rounded = fields.Float(metadata=ROUNDED_DOC)
+    ages = fields.List(fields.Float(allow_none=True), metadata=AGES_DOC)
     method = fields.Nested(MethodSchema)
     problem = fields.Nested(ItemProblemSchema, metadata=ITEM_PROBLEM_DOC)
     standard_deviation = fields.Float(metadata={
@@ -645,13 +648,8 @@ class InsuranceResultSchema(Schema):
     second_moment = fields.Float(metadata={
         "description": "E[Z^2]: the benefit squared at double the force of interest; the "
                        "variance of the present value is second_moment - value^2."})
-    rounded = fields.Float(metadata={
-        "description": "Where the basis prescribes rounding: the value rounded by its rule "
-                       "(decimal places, half-up or half-even, applied to the shortest "
-                       "decimal form of value). Nothing inside the calculation is rounded."})
-    ages = fields.List(fields.Float(allow_none=True), metadata={
-        "description": "Where a life gave date_of_birth: the age used for each life (null "
-                       "for a life that gave its age)."})
+    rounded = fields.Float(metadata=ROUNDED_DOC)
+    ages = fields.List(fields.Float(allow_none=True), metadata=AGES_DOC)
     method = fields.Nested(MethodSchema)
 
 

@@ -61,7 +61,7 @@ import numpy as np
 
 from service.engine import annuity
 from service.engine.annuity import Values
-from service.engine.batch import _on_time, _prepare
+from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.checks import _check_item
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.integrals import phi
@@ -772,12 +772,6 @@ def _whole_years(cum2, chain, lw, growth, delta, rep, ka, kb, af, bf, mid):
     return np.where(mid, value, 0.0)
 
 
-def _expand(owner, start, stop):
-    counts = np.maximum(stop - start, 0)
-    own = np.repeat(owner, counts)
-    firsts = np.cumsum(counts) - counts
-    j = np.arange(counts.sum()) - np.repeat(firsts, counts) + np.repeat(start, counts)
-    return own, j
 
 
 def _pair_chunks(cost):
