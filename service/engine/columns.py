@@ -493,6 +493,8 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         return None
     if measure is not None and np.any(measure):
         return None  # sensitivities come from the general path's payments
+    from service.engine import joint_columns  # (it builds on this module)
+
     exact = valuation.approximation == "exact"
     rows, which = [], []
     given = None
@@ -524,8 +526,9 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
             which = places[order].tolist()
         else:
             cols, which = part, take.tolist()
-    if not which:
-        return None
+    if not which:  # two lives, perhaps
+        return joint_columns.dispatch(tables, items, valuation, max_work=max_work,
+                                      deadline=deadline)
     if given is None:
         cols = _from_rows(rows)
     if problems(tables, cols, valuation.fractional_age):
@@ -540,8 +543,8 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     if rest.size:
         left = None if max_work is None else max_work - fast_work
         try:
-            got = annuity.value_annuities(tables, [items[n] for n in rest.tolist()], valuation,
-                                          max_work=left, deadline=deadline, fast=False)
+            got = joint_columns.value_general(tables, [items[n] for n in rest.tolist()],
+                                              valuation, max_work=left, deadline=deadline)
         except ItemError:
             _prepare(tables, items, valuation)  # the same problems, placed in the batch
             raise

@@ -1,0 +1,562 @@
+"""Two-life discrete annuities under one flat rate, on shared chains of survival.
+
+:func:`service.engine.columns.dispatch` sends here the two-life items with discrete payments
+(joint life, last survivor, reversionary: any survivorship amounts, any start requirement,
+guarantee, deferral, term, escalation, m-thly in advance or in arrears) under a flat rate,
+exact sums or annual payments; the results are those of the general path to rounding, with
+its method code (exact sums).
+
+Derivation (flat force of interest delta; escalation growth g = ln(1 + r))
+---------------------------------------------------------------------------
+Each life follows a chain of rates from its integer age a (select rates first, multiplier
+and flat extra applied, q = 1 from the table's last age), shared, as in
+:mod:`service.engine.columns`, by the lives with the same (table, select duration,
+multiplier, flat extra, integer age): C_k = prod_(j<k) (1 - q_j), and the life aged a + f
+survives t years with probability p(t) = C_K r_p(a+K) / f_p(a) where f + t = K + r.
+
+With p1, p2 the two lives' survival to a payment date t at or after the deferral u, the
+states (both alive, only the first, only the second; the start requirement met) have the
+probabilities p1 p2, R1 p1 - p1 p2 and R2 p2 - p1 p2 (R1 the probability that the second
+life meets what the requirement asks of it at u, R2 the same of the first; 1 where nothing
+is asked), so with the survivorship amounts (ab, a1, a2) the expected fraction payable is
+
+    W(t) = a1 R1 p1 + a2 R2 p2 + (ab - a1 - a2) p1 p2.
+
+The life-contingent payments (j from the first unguaranteed period to the last one either
+life can reach) are worth sum_j (1 + r)^floor(j/m) / m v^t W(t), t = u + (j + arr)/m: one
+pass over the (item, payment) pairs, vectorised across items and chunked to bound memory;
+each life's survival there is a gather from its chain (no second life is invented, no
+state is built that the sum does not need). Under UDD a life's survival at payment j is
+linear in its chain's columns: (1 - s) C_K + s C_(K+1) with (K, slot) = divmod(n + G, m),
+n = U + arr + j and s = (phi + slot) / m (G, phi from f m as in columns), which needs no
+floor per payment; under a constant force or Balducci's assumption each payment's age is
+found as the general path finds it (the same floating-point steps: in a year with q = 1
+rounding decides whether a life is alive at its very start).
+
+The guarantee (g m payments certain once the requirement is met at u) is ab P(start) v^u
+times sum_k ((1 + r) v)^k a(1) over its whole years plus its part year, in closed form, and
+is computed only for items that have one.
+"""
+
+import itertools
+import math
+
+import numpy as np
+
+from service.engine import annuity
+from service.engine.annuity import Values
+from service.engine.batch import _expand, _on_time, _prepare
+from service.engine.columns import (
+    TIMING_CODES,
+    Columns,
+    _field_suspects,
+    _life_suspects,
+    _pair_chunks,
+    _select_key,
+    _year_rates,
+)
+from service.engine.errors import ItemError, WorkLimitError
+from service.engine.integrals import phi
+from service.engine.interest import annuity_certain
+from service.engine.items import EXACT_SUM, START_REQUIREMENTS, methods
+from service.engine.survival import fraction_survival
+
+_SNAP = 1e-9  # as service.engine.survival
+_EPS = 1e-9  # as service.engine.items
+#: Items valued at once (their chains are built per chunk).
+_CHUNK_ITEMS = 16_384
+#: Cells of cumulative columns built at once.
+_CHUNK_CELLS = 400_000
+#: A difference of cumulative columns that subtracts more than this many times its value is
+#: summed payment by payment instead.
+_CANCELLATION = 64.0
+
+_LIFE = ("table", "age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra")
+_PAY = ("timing", "frequency", "term", "deferral", "guarantee", "escalation")
+_ROW = 22  # numbers per item: two lives, the payments, the amounts, the start requirement
+
+
+def _scan(items, exact: bool):
+    """(places, rows) of the two-life items covered here: discrete payments, whole-number
+    frequencies (annual unless ``exact``), whole tables and durations, a known start
+    requirement and survivorship amounts from 0 to 1. Anything else (errors included) is
+    the general path's."""
+    places, rows = [], []
+    for n, item in enumerate(items):
+        lives = item.lives
+        if len(lives) != 2:
+            continue
+        p = item.payments
+        a, b = lives
+        s = item.survivorship
+        if not (p.timing in TIMING_CODES and type(p.frequency) is int
+                and (exact or p.frequency == 1)
+                and type(a.table) is int and type(b.table) is int
+                and (a.duration is None or type(a.duration) is int)
+                and (b.duration is None or type(b.duration) is int)
+                and item.start_requires in START_REQUIREMENTS
+                and len(s) == 3 and 0 <= s[0] <= 1 and 0 <= s[1] <= 1 and 0 <= s[2] <= 1):
+            continue
+        places.append(n)
+        rows.append((
+            a.table, a.age, math.nan if a.duration is None else a.duration, a.age_adjustment,
+            a.mortality_multiplier, a.flat_extra,
+            b.table, b.age, math.nan if b.duration is None else b.duration, b.age_adjustment,
+            b.mortality_multiplier, b.flat_extra,
+            1 if p.timing == "arrears" else 0, p.frequency,
+            math.inf if p.term is None else p.term, p.deferral, p.guarantee, p.escalation,
+            s[0], s[1], s[2], START_REQUIREMENTS.index(item.start_requires)))
+    return places, rows
+
+
+class _Pairs:
+    """The covered two-life items as arrays: ``lives[0]`` and ``lives[1]`` are
+    :class:`~service.engine.columns.Columns` of each life with the item's payments;
+    ``amounts`` (n, 3); ``requires`` indexes START_REQUIREMENTS."""
+
+    def __init__(self, rows):
+        size = len(rows)
+        flat = np.fromiter(itertools.chain.from_iterable(rows), float, size * _ROW)
+        cols = flat.reshape(size, _ROW).T
+        pay = {name: np.ascontiguousarray(cols[12 + k]) for k, name in enumerate(_PAY)}
+        pay["timing"] = pay["timing"].astype(np.int8)
+        self.lives = []
+        for at in (0, 6):
+            life = {name: np.ascontiguousarray(cols[at + k]) for k, name in enumerate(_LIFE)}
+            life["table"] = life["table"].astype(np.intp)
+            self.lives.append(Columns(**life, **pay))
+        self.amounts = np.ascontiguousarray(cols[18:21].T)
+        self.requires = cols[21].astype(np.int8)
+
+    def __len__(self):
+        return self.requires.size
+
+
+def _suspect(tables, pairs: _Pairs, assumption: str) -> bool:
+    """Whether some item may fail the general path's checks (a superset: then the general
+    path's preparation decides, raising its own ItemError)."""
+    one, two = pairs.lives
+    if _field_suspects(one).any():  # the payments and the first life
+        return True
+    with np.errstate(invalid="ignore"):
+        d = two.duration
+        bad = (~np.isfinite(two.age + two.age_adjustment)
+               | ~(np.isfinite(two.mortality_multiplier) & (two.mortality_multiplier >= 0))
+               | ~((two.flat_extra >= 0) & (two.flat_extra <= 1))
+               | (~np.isnan(d) & ~((d == np.round(d)) & (d >= 0) & np.isfinite(d))))
+    if bad.any():
+        return True
+    for cols in pairs.lives:
+        if not np.all((cols.table >= 0) & (cols.table < len(tables))):
+            return True
+        if _life_suspects(tables, cols, assumption).any():
+            return True
+    return False
+
+
+def _payment_window(tables, pairs: _Pairs):
+    """(count, guaranteed): payment dates worth evaluating and guaranteed payments, as
+    batch._payment_count."""
+    cols = pairs.lives[0]
+    m = cols.frequency
+    horizon = None
+    for life in pairs.lives:
+        ages = life.age + life.age_adjustment
+        anchor = np.floor(ages + _SNAP)
+        x = anchor + np.maximum(ages - anchor, 0.0)
+        last = np.array([tb.last_age for tb in tables], dtype=float)[life.table]
+        h = last + 1.0 - x
+        horizon = h if horizon is None else np.maximum(horizon, h)
+    by_life = np.maximum(np.floor(np.maximum(horizon - cols.deferral, -1.0) * m + _EPS) + 1, 0)
+    guaranteed = np.rint(cols.guarantee * m).astype(np.int64)
+    count = np.minimum(np.maximum(by_life, guaranteed), np.rint(cols.term * m)).astype(np.int64)
+    return count, guaranteed
+
+
+def _work(count, guaranteed, m):
+    """Work units as the general path counts them (batch._work at a flat rate)."""
+    closed = np.minimum(guaranteed, count)
+    return count - closed + -(-closed // m)
+
+
+def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
+    """Value the covered two-life items of ``items`` here and the others by the general path;
+    None where none is covered (or the rate is not flat).
+
+    Errors are the general path's: on any suspected problem the whole list is prepared by
+    it, which raises the same ItemError.
+    """
+    if valuation.curve.kind != "flat" or len(items) == 0:
+        return None
+    places, rows = _scan(items, valuation.approximation == "exact")
+    if not places:
+        return None
+    pairs = _Pairs(rows)
+    assumption = valuation.fractional_age
+    if _suspect(tables, pairs, assumption):
+        _prepare(tables, items, valuation)  # raises the general path's ItemError, if any
+    count, guaranteed = _payment_window(tables, pairs)
+    m = pairs.lives[0].frequency.astype(np.int64)
+    fast_work = int(_work(count, guaranteed, m).sum())
+    size = len(items)
+    which = np.array(places, dtype=np.intp)
+    values = np.zeros(size)
+    code = np.full(size, EXACT_SUM, dtype=np.int8)
+    others = np.ones(size, dtype=bool)
+    others[which] = False
+    rest = np.flatnonzero(others)
+    if rest.size:
+        left = None if max_work is None else max_work - fast_work
+        try:
+            got = annuity.value_annuities(tables, [items[n] for n in rest.tolist()], valuation,
+                                          max_work=left, deadline=deadline, fast=False)
+        except ItemError:
+            _prepare(tables, items, valuation)  # the same problems, placed in the list
+            raise
+        except WorkLimitError as exc:
+            raise WorkLimitError(exc.work + fast_work, max_work) from None
+        values[rest] = got.value
+        code[rest] = got.method_code
+    elif max_work is not None and fast_work > max_work:
+        raise WorkLimitError(fast_work, max_work)
+    values[which] = _value(tables, pairs, count, guaranteed, valuation, deadline)
+    return Values(values, code, methods(valuation))
+
+
+def value_general(tables, items, valuation, *, max_work, deadline) -> Values:
+    """Value ``items`` as ``value_annuities(..., fast=False)`` would, the covered two-life
+    items here (for columns.dispatch, whose single-life items are already valued)."""
+    done = dispatch(tables, items, valuation, max_work=max_work, deadline=deadline)
+    if done is not None:
+        return done
+    return annuity.value_annuities(tables, items, valuation, max_work=max_work,
+                                   deadline=deadline, fast=False)
+
+
+# ---------------------------------------------------------------------------------------------
+# Valuation
+
+
+class _Chains:
+    """The chains of rates of a set of lives (shared by lives with the same key), flat:
+    q of chain c, year k at ``q[c * width + k]``; C_k at ``cum[c * (width + 1) + k]``."""
+
+    def __init__(self, tables, t, dkey, mult, extra, anchor):
+        code = np.zeros(t.size, dtype=np.int64)
+        for key in (t, dkey + 1, _ids(mult)[0], _ids(extra)[0], anchor - anchor.min()):
+            code = code * (int(key.max()) + 1) + key
+        _, chain = _codes(code)
+        rep = np.empty(int(chain.max()) + 1, dtype=np.intp)
+        rep[chain] = np.arange(t.size)
+        last = np.array([tb.last_age for tb in tables])
+        width = int((last[t[rep]] - anchor[rep]).max()) + 3
+        k = np.arange(width)[None, :]
+        q = _year_rates(tables, t[rep][:, None], anchor[rep][:, None], dkey[rep][:, None],
+                        mult[rep][:, None], extra[rep][:, None], k)
+        cum = np.ones((rep.size, width + 1))
+        cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
+        self.chain, self.width = chain, width
+        self.q, self.cum = q.ravel(), cum.ravel()
+        self.q0 = q[chain, 0]
+        self._cum2d = cum
+
+    def columns(self):
+        """C_0 .. C_(width + 1) of each chain (the last 0), as rows."""
+        return np.concatenate([self._cum2d, np.zeros((self._cum2d.shape[0], 1))], axis=1)
+
+    def survival(self, life, frac, t, assumption):
+        """S(f + t) / C_0 of lives ``life`` (the general path's steps; not over S(f))."""
+        s = frac + t
+        k = np.floor(s + _SNAP)
+        r = np.clip(s - k, 0.0, 1.0)
+        k = np.clip(k, 0, self.width).astype(np.intp)
+        c = self.chain[life]
+        qk = self.q[c * self.width + np.minimum(k, self.width - 1)]
+        return self.cum[c * (self.width + 1) + k] * fraction_survival(qk, r, assumption)
+
+
+def _value(tables, pairs: _Pairs, count, guaranteed, valuation, deadline) -> np.ndarray:
+    n = len(pairs)
+    values = np.zeros(n)
+    delta = valuation.curve.constant_force
+    for start in range(0, n, _CHUNK_ITEMS):
+        _on_time(deadline)
+        idx = np.arange(start, min(n, start + _CHUNK_ITEMS))
+        values[idx] = _value_chunk(tables, pairs, idx, count[idx], guaranteed[idx], delta,
+                                   valuation.fractional_age, deadline)
+    return values
+
+
+def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumption, deadline):
+    size = idx.size
+    one, two = (life.take(idx) for life in pairs.lives)
+    ages = [c.age + c.age_adjustment for c in (one, two)]
+    anchor = [np.floor(a + _SNAP).astype(np.int64) for a in ages]
+    frac = [np.maximum(a - k, 0.0) for a, k in zip(ages, anchor, strict=True)]
+    cat = np.concatenate
+    chains = _Chains(tables, cat([one.table, two.table]),
+                     cat([_select_key(tables, one.table, one.duration),
+                          _select_key(tables, two.table, two.duration)]),
+                     cat([one.mortality_multiplier, two.mortality_multiplier]),
+                     cat([one.flat_extra, two.flat_extra]), cat(anchor))
+    life1, life2 = np.arange(size), np.arange(size, 2 * size)
+    start1 = fraction_survival(chains.q0[:size], frac[0], assumption)
+    start2 = fraction_survival(chains.q0[size:], frac[1], assumption)
+    u = one.deferral
+    req = pairs.requires[idx]
+    needs_first = req >= 1
+    needs_second = req == 2
+    # Who must be alive at the deferral (as batch._prepare), where it matters: a start
+    # requirement or a guarantee after a deferral.
+    alive1, alive2 = np.ones(size), np.ones(size)
+    asked = np.flatnonzero((needs_first | (guaranteed > 0)) & (u > 0))
+    if asked.size:
+        alive1[asked] = (chains.survival(life1[asked], frac[0][asked], u[asked], assumption)
+                         / start1[asked])
+        alive2[asked] = (chains.survival(life2[asked], frac[1][asked], u[asked], assumption)
+                         / start2[asked])
+    reach1 = np.where(needs_second, alive2, 1.0)  # scales the first-only state
+    reach2 = np.where(needs_first, alive1, 1.0)  # scales the second-only state
+    amounts = pairs.amounts[idx]
+    m = one.frequency.astype(np.int64)
+    mf = one.frequency
+    arr = one.timing.astype(np.int64)
+    growth = np.log1p(one.escalation)
+    values = np.zeros(size)
+
+    has_g = guaranteed > 0
+    if has_g.any():
+        g = np.flatnonzero(has_g)
+        began = np.where(needs_first[g], alive1[g] * np.where(needs_second[g], alive2[g], 1.0),
+                         alive1[g] + alive2[g] - alive1[g] * alive2[g])
+        whole, part = np.divmod(guaranteed[g], m[g])
+        lam = delta - growth[g]
+        i = math.expm1(delta)
+        advance = arr[g] == 0
+        years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
+            i, 1.0, m=mf[g], advance=advance)
+        tail = np.where(part > 0, np.exp(-lam * whole)
+                        * annuity_certain(i, part / mf[g], m=mf[g], advance=advance), 0.0)
+        values[g] = amounts[g, 0] * began * np.exp(-delta * u[g]) * (years + tail)
+
+    first = np.minimum(guaranteed, count)
+    live = np.flatnonzero(count > first)
+    if not live.size:
+        return values
+    # W = c1 P1 + c2 P2 + cb P1 P2 with P the unnormalised survivals S(f + t) / C_0.
+    c1 = amounts[:, 1] * reach1 / start1
+    c2 = amounts[:, 2] * reach2 / start2
+    cb = (amounts[:, 0] - amounts[:, 1] - amounts[:, 2]) / (start1 * start2)
+    direct = live
+    if assumption == "udd":
+        annual = live[m[live] == 1]
+        if annual.size:
+            got, ok = _annual_udd(chains, annual, size, frac, u, arr, first, count, growth,
+                                  delta, c1, c2, cb)
+            values[annual[ok]] += got[ok]
+            direct = np.union1d(live[m[live] != 1], annual[~ok])
+    if direct.size:
+        values[direct] += _per_payment(chains, direct, size, frac, u, arr, m, mf, first, count,
+                                       growth, delta, c1, c2, cb, assumption, deadline)
+    return values
+
+
+def _per_payment(chains, live, size, frac, u, arr, m, mf, first, count, growth, delta, c1, c2,
+                 cb, assumption, deadline):
+    """The life-contingent payments of items ``live``, summed payment by payment (vectorised
+    over the (item, payment) pairs, in chunks)."""
+    out = np.zeros(size)
+    udd = assumption == "udd"
+    if udd:
+        lin = [_linear(chains, life, f, m, mf, u, arr)
+               for life, f in ((np.arange(size), frac[0]), (np.arange(size, 2 * size), frac[1]))]
+    for part in _pair_chunks(count[live] - first[live]):
+        _on_time(deadline)
+        sel = live[part]
+        own, j = _expand(sel, first[sel], count[sel])
+        mo = m[own]
+        if udd:
+            p1 = _linear_at(chains, lin[0], own, j)
+            p2 = _linear_at(chains, lin[1], own, j)
+        else:
+            t = u[own] + (j + arr[own]) / mo
+            p1 = chains.survival(own, frac[0][own], t, assumption)
+            p2 = chains.survival(own + size, frac[1][own], t, assumption)
+        w = c1[own] * p1 + c2[own] * p2 + cb[own] * (p1 * p2)
+        # v^t (1 + r)^floor(j/m) / m, t = u + (j + arr) / m
+        log = (j // mo) * growth[own] - delta * (u[own] + (j + arr[own]) / mo)
+        out += np.bincount(own, weights=np.exp(log) / mo * w, minlength=size)
+    return out[live]
+
+
+def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, c1, c2, cb):
+    """Annual payments under UDD from cumulative columns: return (value, ok) for ``items``.
+
+    Life i's survival at payment j (n = U + arr + j) is (1 - s_i) C_i[j + o_i] +
+    s_i C_i[j + o_i + 1] (o_i = n - j + G_i), so with w = v (1 + r) and k = j + o_1 the
+    payments j0 <= j < j1 are worth v^(U + arr) w^-o times sums over k of w^k C_i[k] for
+    each life, and for the joint term of w^k C_1[k] C_2[k + D] (D = o_2 - o_1), w^k C_1[k]
+    C_2[k + D + 1] and w^k C_1[k + 1] C_2[k + D], the fourth product being the first one
+    year on: differences of cumulative columns per chain, and per pair of chains and D.
+    ``ok`` is False where a difference cancels badly (the caller then sums the payments).
+    """
+    n0 = np.rint(u[items]).astype(np.int64) + arr[items]
+    lw = growth[items] - delta
+    lw_id, lw_values = _ids(lw)
+    j0, j1 = first[items], count[items]
+    parts = []
+    for life, f in ((items, frac[0][items]), (items + size, frac[1][items])):
+        big = np.floor(f).astype(np.int64)
+        phi_ = f - big
+        snap = phi_ >= 1.0 - _SNAP
+        big = np.where(snap, big + 1, big)
+        s = np.clip(np.where(snap, phi_ - 1.0, phi_), 0.0, 1.0)
+        parts.append((chains.chain[life], n0 + big, s))
+    cz = chains.columns()
+    (ch1, o1, s1), (ch2, o2, s2) = parts
+    # Each life on its own chain: one column, two windows a year apart.
+    singles = []
+    for coef, o, sv in ((c1[items], o1, s1), (c2[items], o2, s2)):
+        scale = coef * np.exp(-o * lw)
+        singles.append([(0, o + j0, o + j1, scale * (1.0 - sv)),
+                        (0, o + j0 + 1, o + j1 + 1, scale * sv * np.exp(-lw))])
+    one, ok1 = _window_sums(cz, lw_values, np.concatenate([ch1, ch2]), None, None,
+                            np.concatenate([lw_id, lw_id]),
+                            [(0, *(np.concatenate(z) for z in zip(a[1:], b[1:], strict=True)))
+                             for a, b in zip(*singles, strict=True)])
+    n = items.size
+    total = one[:n] + one[n:]
+    ok = ok1[:n] & ok1[n:]
+    if np.any(cb[items] != 0):
+        scale = cb[items] * np.exp(-o1 * lw)
+        lo, hi = o1 + j0, o1 + j1
+        windows = [(0, lo, hi, scale * (1 - s1) * (1 - s2)),
+                   (1, lo, hi, scale * (1 - s1) * s2),
+                   (2, lo, hi, scale * s1 * (1 - s2)),
+                   (0, lo + 1, hi + 1, scale * s1 * s2 * np.exp(-lw))]
+        joint, ok2 = _window_sums(cz, lw_values, ch1, ch2, o2 - o1, lw_id, windows)
+        total += joint
+        ok &= ok2
+    return np.exp(-delta * n0) * total, ok
+
+
+def _ids(values):
+    """(id of each value among the distinct values, the distinct values)."""
+    if values.size and np.all(values == values[0]):
+        return np.zeros(values.size, dtype=np.int64), values[:1]
+    distinct, inverse = np.unique(values, return_inverse=True)
+    return inverse.astype(np.int64), distinct
+
+
+def _codes(code):
+    """(distinct codes ascending, index of each code among them) for codes >= 0: by a
+    table of the codes' range where it is small, else by sorting."""
+    top = int(code.max()) + 1 if code.size else 0
+    if top > 4 * code.size + 65_536:
+        uniq, inv = np.unique(code, return_inverse=True)
+        return uniq, inv.reshape(-1)
+    present = np.zeros(top, dtype=bool)
+    present[code] = True
+    uniq = np.flatnonzero(present)
+    ids = np.cumsum(present) - 1
+    return uniq, ids[code]
+
+
+def _window_sums(cz, lw_values, ch_a, ch_b, d, lw_id, windows):
+    """Per term, sum over its windows (col, lo, hi, coef) of coef sum_(lo <= k < hi) of
+    column col of its key: e^(k lw) C_a[k] (one column) where ``ch_b`` is None, else
+    e^(k lw) times C_a[k] C_b[k + d], C_a[k] C_b[k + d + 1] and C_a[k + 1] C_b[k + d].
+
+    Columns are built once per distinct key (chains, d, lw), in groups to bound memory, and
+    each sum is a difference of suffix sums (nothing is subtracted for a window that runs to
+    the end of the chain); ok is False where what is subtracted exceeds _CANCELLATION times
+    the result."""
+    width = cz.shape[1]
+    kinds = lw_values.size
+    chains = cz.shape[0]
+    if ch_b is None:
+        code = ch_a * kinds + lw_id
+        spread = low = 0
+    else:
+        low = int(d.min())
+        spread = int(d.max()) - low + 1
+        code = ((ch_a * chains + ch_b) * spread + (d - low)) * kinds + lw_id
+    uniq, inv = _codes(code)
+    out = np.zeros(code.size)
+    taken = np.zeros(code.size)
+    ncols = 1 if ch_b is None else 3
+    group = max(1, _CHUNK_CELLS // (width * ncols))
+    if uniq.size > group:
+        order = np.argsort(inv, kind="stable")
+        bounds = np.searchsorted(inv[order], np.arange(0, uniq.size + group, group))
+    k = np.arange(width)
+    grow = np.exp(lw_values[:, None] * k[None, :])  # e^(k lw) for each distinct lw
+    if ch_b is not None:
+        # C_b[k + shift] and C_b[k + shift + 1] read from rows padded with zeros.
+        pad = max(-low, 0) + 1
+        padded = np.zeros((chains, width + pad + max(low + spread, 0) + 1))
+        padded[:, pad:pad + width] = cz
+    for g in range(0, uniq.size, group):
+        keys = uniq[g:g + group]
+        rest = keys // kinds
+        w = grow[keys % kinds]
+        if ch_b is None:
+            x = (cz[rest] * w)[:, None, :]
+        else:
+            shift = rest % spread + low
+            pair = rest // spread
+            first = cz[pair // chains] * w
+            at = (pad + shift)[:, None] + k[None, :]
+            second = (pair % chains)[:, None]
+            b0 = padded[second, at]
+            b1 = padded[second, at + 1]
+            x = np.empty((keys.size, 3, width))
+            np.multiply(first, b0, out=x[:, 0])
+            np.multiply(first, b1, out=x[:, 1])
+            x[:, 2, -1] = 0.0
+            # C_a[k + 1] C_b[k + shift] e^(k lw): the next year's C_a, discounted one year less
+            np.multiply(cz[pair // chains, 1:], b0[:, :-1], out=x[:, 2, :-1])
+            x[:, 2, :-1] *= w[:, :-1]
+        suffix = np.zeros(x.shape[:2] + (width + 1,))
+        suffix[:, :, :-1] = np.cumsum(x[:, :, ::-1], axis=2)[:, :, ::-1]
+        if uniq.size > group:
+            sel = order[bounds[g // group]:bounds[g // group + 1]]
+        else:
+            sel = slice(None)
+        row = inv[sel] - g
+        flat = suffix.ravel()
+        for col, lo, hi, coef in windows:
+            base = (row * ncols + col) * (width + 1)
+            a = np.clip(lo[sel], 0, width)
+            after = flat[base + np.clip(hi[sel], a, width)]
+            c = coef[sel]
+            out[sel] += c * (flat[base + a] - after)
+            taken[sel] += np.abs(c) * after
+    # (the windows of a term have coefficients of one sign)
+    return out, taken <= _CANCELLATION * np.abs(out)
+
+
+def _linear(chains: _Chains, life, frac, m, mf, u, arr):
+    """Per-life data for UDD survival at payment j: with n = U + arr + j and
+    (K, slot) = divmod(n + G, m), P = (1 - s) C_K + s C_(K+1), s = (phi + slot) / m clipped to
+    [0, 1] (G, phi as in columns: an age within 1e-9 of the next 1/m is taken as it)."""
+    fm = frac * mf
+    big = np.floor(fm).astype(np.int64)
+    phi_ = fm - big
+    snap = phi_ >= 1.0 - mf * _SNAP
+    big = np.where(snap, big + 1, big)
+    phi_ = np.where(snap, phi_ - 1.0, phi_)
+    offset = np.rint(u * mf).astype(np.int64) + arr + big  # n + G at j = 0
+    base = chains.chain[life] * (chains.width + 1)
+    return base, offset, phi_, m
+
+
+def _linear_at(chains: _Chains, lin, own, j):
+    base, offset, phi_, m = lin
+    mo = m[own]
+    k, slot = np.divmod(offset[own] + j, mo)
+    s = np.clip((phi_[own] + slot) / mo, 0.0, 1.0)
+    k = np.minimum(k, chains.width - 1)
+    at = base[own] + k
+    c0 = chains.cum[at]
+    return c0 + s * (chains.cum[at + 1] - c0)
