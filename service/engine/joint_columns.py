@@ -356,36 +356,35 @@ def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumptio
             values[annual[ok]] += got[ok]
             direct = np.union1d(live[m[live] != 1], annual[~ok])
     if direct.size:
-        values[direct] += _per_payment(chains, direct, size, frac, u, arr, m, mf, first, count,
-                                       growth, delta, c1, c2, cb, assumption, deadline)
+        values[direct] += _per_payment(chains, direct, size, frac, u, arr, m, first, count,
+                                       growth, delta, amounts, (reach1, reach2),
+                                       (start1, start2), assumption, deadline)
     return values
 
 
-def _per_payment(chains, live, size, frac, u, arr, m, mf, first, count, growth, delta, c1, c2,
-                 cb, assumption, deadline):
-    """The life-contingent payments of items ``live``, summed payment by payment (vectorised
-    over the (item, payment) pairs, in chunks)."""
+def _per_payment(chains, live, size, frac, u, arr, m, first, count, growth, delta, amounts,
+                 reach, start, assumption, deadline):
+    """The life-contingent payments of items ``live``, summed payment by payment with the
+    general path's steps (each life's survival, then the states: both alive, only the first,
+    only the second), vectorised over the (item, payment) pairs, in chunks."""
     out = np.zeros(size)
-    udd = assumption == "udd"
-    if udd:
-        lin = [_linear(chains, life, f, m, mf, u, arr)
-               for life, f in ((np.arange(size), frac[0]), (np.arange(size, 2 * size), frac[1]))]
+    start1, start2 = start
+    reach1, reach2 = reach
     for part in _pair_chunks(count[live] - first[live]):
         _on_time(deadline)
         sel = live[part]
         own, j = _expand(sel, first[sel], count[sel])
         mo = m[own]
-        if udd:
-            p1 = _linear_at(chains, lin[0], own, j)
-            p2 = _linear_at(chains, lin[1], own, j)
-        else:
-            t = u[own] + (j + arr[own]) / mo
-            p1 = chains.survival(own, frac[0][own], t, assumption)
-            p2 = chains.survival(own + size, frac[1][own], t, assumption)
-        w = c1[own] * p1 + c2[own] * p2 + cb[own] * (p1 * p2)
-        # v^t (1 + r)^floor(j/m) / m, t = u + (j + arr) / m
-        log = (j // mo) * growth[own] - delta * (u[own] + (j + arr[own]) / mo)
-        out += np.bincount(own, weights=np.exp(log) / mo * w, minlength=size)
+        t = u[own] + (j + arr[own]) / mo
+        p1 = chains.survival(own, frac[0][own], t, assumption) / start1[own]
+        p2 = chains.survival(own + size, frac[1][own], t, assumption) / start2[own]
+        both = p1 * p2
+        a = amounts[own]
+        w = (a[:, 0] * both + a[:, 1] * (reach1[own] * p1 - both)
+             + a[:, 2] * (reach2[own] * p2 - both))
+        # (1 + r)^floor(j/m) / m v^t
+        pv = np.exp((j // mo) * growth[own]) / mo * np.exp(-delta * t) * w
+        out += np.bincount(own, weights=pv, minlength=size)
     return out[live]
 
 
@@ -427,6 +426,7 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     n = items.size
     total = one[:n] + one[n:]
     ok = ok1[:n] & ok1[n:]
+    magnitude = np.abs(one[:n]) + np.abs(one[n:])
     if np.any(cb[items] != 0):
         scale = cb[items] * np.exp(-o1 * lw)
         lo, hi = o1 + j0, o1 + j1
@@ -436,7 +436,11 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
                    (0, lo + 1, hi + 1, scale * s1 * s2 * np.exp(-lw))]
         joint, ok2 = _window_sums(cz, lw_values, ch1, ch2, o2 - o1, lw_id, windows)
         total += joint
+        magnitude += np.abs(joint)
         ok &= ok2
+    # The terms (the lives alone, the joint one) cancel too much: the payments are summed
+    # by state as the general path sums them (a value it finds to be 0 stays 0).
+    ok &= magnitude <= _CANCELLATION * np.abs(total)
     return np.exp(-delta * n0) * total, ok
 
 
@@ -534,29 +538,3 @@ def _window_sums(cz, lw_values, ch_a, ch_b, d, lw_id, windows):
             taken[sel] += np.abs(c) * after
     # (the windows of a term have coefficients of one sign)
     return out, taken <= _CANCELLATION * np.abs(out)
-
-
-def _linear(chains: _Chains, life, frac, m, mf, u, arr):
-    """Per-life data for UDD survival at payment j: with n = U + arr + j and
-    (K, slot) = divmod(n + G, m), P = (1 - s) C_K + s C_(K+1), s = (phi + slot) / m clipped to
-    [0, 1] (G, phi as in columns: an age within 1e-9 of the next 1/m is taken as it)."""
-    fm = frac * mf
-    big = np.floor(fm).astype(np.int64)
-    phi_ = fm - big
-    snap = phi_ >= 1.0 - mf * _SNAP
-    big = np.where(snap, big + 1, big)
-    phi_ = np.where(snap, phi_ - 1.0, phi_)
-    offset = np.rint(u * mf).astype(np.int64) + arr + big  # n + G at j = 0
-    base = chains.chain[life] * (chains.width + 1)
-    return base, offset, phi_, m
-
-
-def _linear_at(chains: _Chains, lin, own, j):
-    base, offset, phi_, m = lin
-    mo = m[own]
-    k, slot = np.divmod(offset[own] + j, mo)
-    s = np.clip((phi_[own] + slot) / mo, 0.0, 1.0)
-    k = np.minimum(k, chains.width - 1)
-    at = base[own] + k
-    c0 = chains.cum[at]
-    return c0 + s * (chains.cum[at + 1] - c0)
