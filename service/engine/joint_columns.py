@@ -50,7 +50,6 @@ from service.engine.columns import (
     TIMING_CODES,
     Columns,
     _field_suspects,
-    _life_suspects,
     _pair_chunks,
     _select_key,
     _year_rates,
@@ -76,36 +75,40 @@ _PAY = ("timing", "frequency", "term", "deferral", "guarantee", "escalation")
 _ROW = 22  # numbers per item: two lives, the payments, the amounts, the start requirement
 
 
-def _scan(items, exact: bool):
-    """(places, rows) of the two-life items covered here: discrete payments, whole-number
-    frequencies (annual unless ``exact``), whole tables and durations, a known start
-    requirement and survivorship amounts from 0 to 1. Anything else (errors included) is
-    the general path's."""
+def _scan(items, exact: bool, _type=type, _int=int, _len=len):
+    """(places, rows) of the two-life items that may be covered here: discrete payments,
+    whole-number frequencies (annual unless ``exact``), whole tables and durations, a known
+    start requirement and three survivorship amounts (their range is checked on the
+    arrays). Anything else (errors included) is the general path's. (The builtins are
+    bound as defaults: this loop is most of the Python work of a batch.)"""
     places, rows = [], []
-    for n, item in enumerate(items):
+    add_place, add_row = places.append, rows.append
+    nan, inf = math.nan, math.inf
+    n = -1
+    for item in items:
+        n += 1
         lives = item.lives
-        if len(lives) != 2:
+        if _len(lives) != 2:
             continue
-        p = item.payments
         a, b = lives
+        p = item.payments
         s = item.survivorship
-        if not (p.timing in TIMING_CODES and type(p.frequency) is int
-                and (exact or p.frequency == 1)
-                and type(a.table) is int and type(b.table) is int
-                and (a.duration is None or type(a.duration) is int)
-                and (b.duration is None or type(b.duration) is int)
-                and item.start_requires in START_REQUIREMENTS
-                and len(s) == 3 and 0 <= s[0] <= 1 and 0 <= s[1] <= 1 and 0 <= s[2] <= 1):
-            continue
-        places.append(n)
-        rows.append((
-            a.table, a.age, math.nan if a.duration is None else a.duration, a.age_adjustment,
-            a.mortality_multiplier, a.flat_extra,
-            b.table, b.age, math.nan if b.duration is None else b.duration, b.age_adjustment,
-            b.mortality_multiplier, b.flat_extra,
-            1 if p.timing == "arrears" else 0, p.frequency,
-            math.inf if p.term is None else p.term, p.deferral, p.guarantee, p.escalation,
-            s[0], s[1], s[2], START_REQUIREMENTS.index(item.start_requires)))
+        m = p.frequency
+        ad, bd = a.duration, b.duration
+        timing = p.timing
+        req = item.start_requires
+        if (_type(m) is _int and timing in TIMING_CODES and (exact or m == 1)
+                and _type(a.table) is _int and _type(b.table) is _int
+                and (ad is None or _type(ad) is _int) and (bd is None or _type(bd) is _int)
+                and req in START_REQUIREMENTS and _len(s) == 3):
+            add_place(n)
+            term = p.term
+            add_row((a.table, a.age, nan if ad is None else ad, a.age_adjustment,
+                     a.mortality_multiplier, a.flat_extra,
+                     b.table, b.age, nan if bd is None else bd, b.age_adjustment,
+                     b.mortality_multiplier, b.flat_extra,
+                     timing == "arrears", m, inf if term is None else term, p.deferral,
+                     p.guarantee, p.escalation, *s, (req != "any") + (req == "both")))
     return places, rows
 
 
@@ -146,12 +149,29 @@ def _suspect(tables, pairs: _Pairs, assumption: str) -> bool:
                | (~np.isnan(d) & ~((d == np.round(d)) & (d >= 0) & np.isfinite(d))))
     if bad.any():
         return True
+    first_age = np.array([tb.first_age for tb in tables])
+    last_age = np.array([tb.last_age for tb in tables])
     for cols in pairs.lives:
-        if not np.all((cols.table >= 0) & (cols.table < len(tables))):
+        t = cols.table
+        if not np.all((t >= 0) & (t < len(tables))):
             return True
-        if _life_suspects(tables, cols, assumption).any():
+        # Outside the table's ages, or selected outside the select table (as
+        # columns._life_suspects; a life dead at its age is found while valuing).
+        ages = cols.age + cols.age_adjustment
+        if not np.all((ages >= first_age[t] - _SNAP) & (ages <= last_age[t] + _SNAP)):
             return True
+        dkey = _select_key(tables, t, cols.duration)
+        for ti, table in enumerate(tables):
+            rows = (t == ti) & (dkey >= 0)
+            if rows.any():
+                sel = np.floor(ages[rows] + _SNAP).astype(np.int64) - dkey[rows]
+                if np.any((sel < table.select_first_age) | (sel > table.select_last_age)):
+                    return True
     return False
+
+
+class _Refused(Exception):
+    """A life found dead at its age while valuing (the general path refuses the item)."""
 
 
 def _payment_window(tables, pairs: _Pairs):
@@ -192,6 +212,14 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
     if not places:
         return None
     pairs = _Pairs(rows)
+    with np.errstate(invalid="ignore"):
+        amiss = ~np.all((pairs.amounts >= 0) & (pairs.amounts <= 1), axis=1)
+    if amiss.any():  # amounts out of range (or NaN): the general path's errors
+        keep = np.flatnonzero(~amiss).tolist()
+        places = [places[k] for k in keep]
+        if not places:
+            return None
+        pairs = _Pairs([rows[k] for k in keep])
     assumption = valuation.fractional_age
     if _suspect(tables, pairs, assumption):
         _prepare(tables, items, valuation)  # raises the general path's ItemError, if any
@@ -219,7 +247,11 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
         code[rest] = got.method_code
     elif max_work is not None and fast_work > max_work:
         raise WorkLimitError(fast_work, max_work)
-    values[which] = _value(tables, pairs, count, guaranteed, valuation, deadline)
+    try:
+        values[which] = _value(tables, pairs, count, guaranteed, valuation, deadline)
+    except _Refused:
+        _prepare(tables, items, valuation)  # raises the general path's ItemError
+        return None  # (not reached unless the checks disagree: then the general path)
     return Values(values, code, methods(valuation))
 
 
@@ -281,14 +313,14 @@ def _value(tables, pairs: _Pairs, count, guaranteed, valuation, deadline) -> np.
     delta = valuation.curve.constant_force
     for start in range(0, n, _CHUNK_ITEMS):
         _on_time(deadline)
-        idx = np.arange(start, min(n, start + _CHUNK_ITEMS))
+        idx = slice(start, min(n, start + _CHUNK_ITEMS))  # (views, not copies)
         values[idx] = _value_chunk(tables, pairs, idx, count[idx], guaranteed[idx], delta,
                                    valuation.fractional_age, deadline)
     return values
 
 
 def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumption, deadline):
-    size = idx.size
+    size = count.size
     one, two = (life.take(idx) for life in pairs.lives)
     ages = [c.age + c.age_adjustment for c in (one, two)]
     anchor = [np.floor(a + _SNAP).astype(np.int64) for a in ages]
@@ -302,6 +334,8 @@ def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumptio
     life1, life2 = np.arange(size), np.arange(size, 2 * size)
     start1 = fraction_survival(chains.q0[:size], frac[0], assumption)
     start2 = fraction_survival(chains.q0[size:], frac[1], assumption)
+    if not (np.all(start1 > 0) and np.all(start2 > 0)):
+        raise _Refused  # a life dead at its age: the general path says so
     u = one.deferral
     req = pairs.requires[idx]
     needs_first = req >= 1
