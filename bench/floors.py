@@ -434,7 +434,9 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
         f"for one item; each timing is {ONE_CALLS} calls.",
         f"6. {BATCH:,} lives aged 55 to 85 (both sexes), whole life: annual in advance, "
         "continuous, and joint (last survivor) with a partner of the other sex within 5 "
-        "years, annual in advance (two lives always through `value_annuities`); the ratio is "
+        "years, annual in advance (two lives as Item objects through `value_annuities`, which "
+        "sends them to the two-life column path, service/engine/joint_columns.py; the time "
+        "includes reading the items); the ratio is "
         "the median of each round's ratio.",
         "",
         "Seconds of each repeat: " + "; ".join(
