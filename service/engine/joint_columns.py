@@ -23,15 +23,29 @@ is asked), so with the survivorship amounts (ab, a1, a2) the expected fraction p
     W(t) = a1 R1 p1 + a2 R2 p2 + (ab - a1 - a2) p1 p2.
 
 The life-contingent payments (j from the first unguaranteed period to the last one either
-life can reach) are worth sum_j (1 + r)^floor(j/m) / m v^t W(t), t = u + (j + arr)/m: one
-pass over the (item, payment) pairs, vectorised across items and chunked to bound memory;
-each life's survival there is a gather from its chain (no second life is invented, no
-state is built that the sum does not need). Under UDD a life's survival at payment j is
-linear in its chain's columns: (1 - s) C_K + s C_(K+1) with (K, slot) = divmod(n + G, m),
-n = U + arr + j and s = (phi + slot) / m (G, phi from f m as in columns), which needs no
-floor per payment; under a constant force or Balducci's assumption each payment's age is
-found as the general path finds it (the same floating-point steps: in a year with q = 1
-rounding decides whether a life is alive at its very start).
+life can reach) are worth sum_j (1 + r)^floor(j/m) / m v^t W(t), t = u + (j + arr)/m.
+
+Annual payments under UDD: life i's survival at payment j (n = U + arr + j) is
+((1 - s_i) C_i[j + o_i] + s_i C_i[j + o_i + 1]) / f_p, o_i = n - j + G_i, s_i its fraction
+of age (G_i = 1, s_i = 0 for an age within 1e-9 below a whole one, as the general path
+snaps it). With w = v (1 + r) the payments j0 <= j < j1 are then worth v^(U + arr) times
+sums of w^j C_i[j + o_i + e] (e = 0, 1) for each life, and for the joint term of
+w^j C_1[j + o_1 + e1] C_2[j + o_2 + e2]: with k = j + o_1 and D = o_2 - o_1 these are
+w^-(o_1) times windows [j0 + o_1, j1 + o_1) of the columns w^k C_1[k] C_2[k + D],
+w^k C_1[k] C_2[k + D + 1] and w^k C_1[k + 1] C_2[k + D] (the fourth product, both lives a
+year on, is the first column one year on). Each column is built once per distinct chain
+(singles) or pair of chains and D (joint) and escalation, in groups that bound memory, and
+a window is a difference of its suffix sums (nothing subtracted for a window that runs to
+the end of the chains). An item whose difference subtracts more than 64 times its result,
+or whose terms (each life alone, the joint one) cancel more than that, has its payments
+summed as below instead (so a value the general path finds to be 0 stays 0).
+
+Other items (m > 1, a constant force, Balducci's assumption) and those: one pass over the
+(item, payment) pairs, vectorised across items and chunked to bound memory, with the
+general path's steps (each life's survival from its chain, the same floating-point steps:
+in a year with q = 1 rounding decides whether a life is alive at its very start; then the
+three states); no second life is invented for a single life, and nothing is built that
+the sum does not need.
 
 The guarantee (g m payments certain once the requirement is met at u) is ab P(start) v^u
 times sum_k ((1 + r) v)^k a(1) over its whole years plus its part year, in closed form, and
@@ -555,16 +569,18 @@ def _window_sums(cz, lw_values, ch_a, ch_b, d, lw_id, windows):
             # C_a[k + 1] C_b[k + shift] e^(k lw): the next year's C_a, discounted one year less
             np.multiply(cz[pair // chains, 1:], b0[:, :-1], out=x[:, 2, :-1])
             x[:, 2, :-1] *= w[:, :-1]
-        suffix = np.zeros(x.shape[:2] + (width + 1,))
-        suffix[:, :, :-1] = np.cumsum(x[:, :, ::-1], axis=2)[:, :, ::-1]
+        suffix = np.empty(x.shape[:2] + (width + 1,))
+        suffix[:, :, -1] = 0.0
+        np.cumsum(x[:, :, ::-1], axis=2, out=suffix[:, :, -2::-1])
         if uniq.size > group:
             sel = order[bounds[g // group]:bounds[g // group + 1]]
         else:
             sel = slice(None)
         row = inv[sel] - g
         flat = suffix.ravel()
+        row_base = row * (ncols * (width + 1))
         for col, lo, hi, coef in windows:
-            base = (row * ncols + col) * (width + 1)
+            base = row_base + col * (width + 1) if col else row_base
             a = np.clip(lo[sel], 0, width)
             after = flat[base + np.clip(hi[sel], a, width)]
             c = coef[sel]
