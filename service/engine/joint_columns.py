@@ -234,6 +234,7 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
         if not places:
             return None
         pairs = _Pairs([rows[k] for k in keep])
+    del rows  # (the arrays hold them now: a Python tuple an item is not kept while valuing)
     assumption = valuation.fractional_age
     if _suspect(tables, pairs, assumption):
         _prepare(tables, items, valuation)  # raises the general path's ItemError, if any
