@@ -370,7 +370,8 @@ def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumptio
     m = one.frequency.astype(np.int64)
     mf = one.frequency
     arr = one.timing.astype(np.int64)
-    growth = np.log1p(one.escalation)
+    escalation_id, escalations = _ids(one.escalation)
+    growth = np.log1p(escalations)[escalation_id]
     values = np.zeros(size)
 
     has_g = guaranteed > 0
@@ -451,6 +452,11 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     n0 = np.rint(u[items]).astype(np.int64) + arr[items]
     lw = growth[items] - delta
     lw_id, lw_values = _ids(lw)
+    # w^-o and v^n0 for whole o, n0 from tables (an exponential per item costs more than
+    # the rest of its arithmetic): row lw_id, column o (o >= 0; o + 1 at most the largest
+    # offset plus two).
+    top = int(n0.max()) + 3
+    back = np.exp(-lw_values[:, None] * np.arange(top)[None, :]).ravel()
     j0, j1 = first[items], count[items]
     parts = []
     for life, f in ((items, frac[0][items]), (items + size, frac[1][items])):
@@ -464,10 +470,11 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     (ch1, o1, s1), (ch2, o2, s2) = parts
     # Each life on its own chain: one column, two windows a year apart.
     singles = []
+    row = lw_id * top
     for coef, o, sv in ((c1[items], o1, s1), (c2[items], o2, s2)):
-        scale = coef * np.exp(-o * lw)
+        scale = coef * back[row + o]
         singles.append([(0, o + j0, o + j1, scale * (1.0 - sv)),
-                        (0, o + j0 + 1, o + j1 + 1, scale * sv * np.exp(-lw))])
+                        (0, o + j0 + 1, o + j1 + 1, coef * sv * back[row + o + 1])])
     one, ok1 = _window_sums(cz, lw_values, np.concatenate([ch1, ch2]), None, None,
                             np.concatenate([lw_id, lw_id]),
                             [(0, *(np.concatenate(z) for z in zip(a[1:], b[1:], strict=True)))
@@ -477,12 +484,12 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     ok = ok1[:n] & ok1[n:]
     magnitude = np.abs(one[:n]) + np.abs(one[n:])
     if np.any(cb[items] != 0):
-        scale = cb[items] * np.exp(-o1 * lw)
+        scale = cb[items] * back[row + o1]
         lo, hi = o1 + j0, o1 + j1
         windows = [(0, lo, hi, scale * (1 - s1) * (1 - s2)),
                    (1, lo, hi, scale * (1 - s1) * s2),
                    (2, lo, hi, scale * s1 * (1 - s2)),
-                   (0, lo + 1, hi + 1, scale * s1 * s2 * np.exp(-lw))]
+                   (0, lo + 1, hi + 1, cb[items] * back[row + o1 + 1] * s1 * s2)]
         joint, ok2 = _window_sums(cz, lw_values, ch1, ch2, o2 - o1, lw_id, windows)
         total += joint
         magnitude += np.abs(joint)
@@ -490,7 +497,8 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     # The terms (the lives alone, the joint one) cancel too much: the payments are summed
     # by state as the general path sums them (a value it finds to be 0 stays 0).
     ok &= magnitude <= _CANCELLATION * np.abs(total)
-    return np.exp(-delta * n0) * total, ok
+    discount = np.exp(-delta * np.arange(top))
+    return discount[n0] * total, ok
 
 
 def _ids(values):
