@@ -401,7 +401,9 @@ def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumptio
     if assumption == "udd":
         annual = live[m[live] == 1]
         if annual.size:
-            got, ok = _annual_udd(chains, annual, size, frac, u, arr, first, count, growth,
+            # (every item: views rather than copies)
+            at = slice(None) if annual.size == size else annual
+            got, ok = _annual_udd(chains, at, size, frac, u, arr, first, count, growth,
                                   delta, c1, c2, cb)
             values[annual[ok]] += got[ok]
             direct = np.union1d(live[m[live] != 1], annual[~ok])
@@ -459,13 +461,14 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
     back = np.exp(-lw_values[:, None] * np.arange(top)[None, :]).ravel()
     j0, j1 = first[items], count[items]
     parts = []
-    for life, f in ((items, frac[0][items]), (items + size, frac[1][items])):
+    for life, f in ((chains.chain[:size][items], frac[0][items]),
+                    (chains.chain[size:][items], frac[1][items])):
         big = np.floor(f).astype(np.int64)
         phi_ = f - big
         snap = phi_ >= 1.0 - _SNAP
         big = np.where(snap, big + 1, big)
         s = np.clip(np.where(snap, phi_ - 1.0, phi_), 0.0, 1.0)
-        parts.append((chains.chain[life], n0 + big, s))
+        parts.append((life, n0 + big, s))
     cz = chains.columns()
     (ch1, o1, s1), (ch2, o2, s2) = parts
     # Each life on its own chain: one column, two windows a year apart.
@@ -479,17 +482,18 @@ def _annual_udd(chains, items, size, frac, u, arr, first, count, growth, delta, 
                             np.concatenate([lw_id, lw_id]),
                             [(0, *(np.concatenate(z) for z in zip(a[1:], b[1:], strict=True)))
                              for a, b in zip(*singles, strict=True)])
-    n = items.size
+    n = n0.size
     total = one[:n] + one[n:]
     ok = ok1[:n] & ok1[n:]
     magnitude = np.abs(one[:n]) + np.abs(one[n:])
-    if np.any(cb[items] != 0):
-        scale = cb[items] * back[row + o1]
+    cb = cb[items]
+    if np.any(cb != 0):
+        scale = cb * back[row + o1]
         lo, hi = o1 + j0, o1 + j1
         windows = [(0, lo, hi, scale * (1 - s1) * (1 - s2)),
                    (1, lo, hi, scale * (1 - s1) * s2),
                    (2, lo, hi, scale * s1 * (1 - s2)),
-                   (0, lo + 1, hi + 1, cb[items] * back[row + o1 + 1] * s1 * s2)]
+                   (0, lo + 1, hi + 1, cb * back[row + o1 + 1] * s1 * s2)]
         joint, ok2 = _window_sums(cz, lw_values, ch1, ch2, o2 - o1, lw_id, windows)
         total += joint
         magnitude += np.abs(joint)
