@@ -89,7 +89,10 @@ _PAY = ("timing", "frequency", "term", "deferral", "guarantee", "escalation")
 _ROW = 22  # numbers per item: two lives, the payments, the amounts, the start requirement
 
 
-def _scan(items, exact: bool, _type=type, _int=int, _len=len):
+_REQUIREMENT_CODE = {name: k for k, name in enumerate(START_REQUIREMENTS)}
+
+
+def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT_CODE):
     """(places, rows) of the two-life items that may be covered here: discrete payments,
     whole-number frequencies (annual unless ``exact``), whole tables and durations, a known
     start requirement and three survivorship amounts (their range is checked on the
@@ -122,7 +125,7 @@ def _scan(items, exact: bool, _type=type, _int=int, _len=len):
                      b.table, b.age, nan if bd is None else bd, b.age_adjustment,
                      b.mortality_multiplier, b.flat_extra,
                      timing == "arrears", m, inf if term is None else term, p.deferral,
-                     p.guarantee, p.escalation, *s, (req != "any") + (req == "both")))
+                     p.guarantee, p.escalation, *s, _code[req]))
     return places, rows
 
 
@@ -134,15 +137,15 @@ class _Pairs:
     def __init__(self, rows):
         size = len(rows)
         flat = np.fromiter(itertools.chain.from_iterable(rows), float, size * _ROW)
-        cols = flat.reshape(size, _ROW).T
-        pay = {name: np.ascontiguousarray(cols[12 + k]) for k, name in enumerate(_PAY)}
+        cols = np.ascontiguousarray(flat.reshape(size, _ROW).T)  # one row a field
+        pay = {name: cols[12 + k] for k, name in enumerate(_PAY)}
         pay["timing"] = pay["timing"].astype(np.int8)
         self.lives = []
         for at in (0, 6):
-            life = {name: np.ascontiguousarray(cols[at + k]) for k, name in enumerate(_LIFE)}
+            life = {name: cols[at + k] for k, name in enumerate(_LIFE)}
             life["table"] = life["table"].astype(np.intp)
             self.lives.append(Columns(**life, **pay))
-        self.amounts = np.ascontiguousarray(cols[18:21].T)
+        self.amounts = cols[18:21].T
         self.requires = cols[21].astype(np.int8)
 
     def __len__(self):
@@ -341,9 +344,8 @@ def _value_chunk(tables, pairs: _Pairs, idx, count, guaranteed, delta, assumptio
     anchor = [np.floor(a + _SNAP).astype(np.int64) for a in ages]
     frac = [np.maximum(a - k, 0.0) for a, k in zip(ages, anchor, strict=True)]
     cat = np.concatenate
-    chains = _Chains(tables, cat([one.table, two.table]),
-                     cat([_select_key(tables, one.table, one.duration),
-                          _select_key(tables, two.table, two.duration)]),
+    t = cat([one.table, two.table])
+    chains = _Chains(tables, t, _select_key(tables, t, cat([one.duration, two.duration])),
                      cat([one.mortality_multiplier, two.mortality_multiplier]),
                      cat([one.flat_extra, two.flat_extra]), cat(anchor))
     life1, life2 = np.arange(size), np.arange(size, 2 * size)
