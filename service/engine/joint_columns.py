@@ -594,12 +594,19 @@ def _window_sums(cz, lw_values, ch_a, ch_b, d, lw_id, windows):
         row = inv[sel] - g
         flat = suffix.ravel()
         row_base = row * (ncols * (width + 1))
+        places = {}  # (lo, hi) -> where their suffix sums are, for column 0
         for col, lo, hi, coef in windows:
-            base = row_base + col * (width + 1) if col else row_base
-            a = np.clip(lo[sel], 0, width)
-            after = flat[base + np.clip(hi[sel], a, width)]
+            key = (id(lo), id(hi))
+            if key not in places:
+                a = np.clip(lo[sel], 0, width)
+                places[key] = (row_base + a, row_base + np.clip(hi[sel], a, width))
+            at_a, at_b = places[key]
+            if col:
+                at_a, at_b = at_a + col * (width + 1), at_b + col * (width + 1)
+            after = flat[at_b]
             c = coef[sel]
-            out[sel] += c * (flat[base + a] - after)
-            taken[sel] += np.abs(c) * after
+            out[sel] += c * (flat[at_a] - after)
+            if after.any():
+                taken[sel] += np.abs(c) * after
     # (the windows of a term have coefficients of one sign)
     return out, taken <= _CANCELLATION * np.abs(out)
