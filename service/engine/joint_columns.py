@@ -52,7 +52,6 @@ times sum_k ((1 + r) v)^k a(1) over its whole years plus its part year, in close
 is computed only for items that have one.
 """
 
-import itertools
 import math
 
 import numpy as np
@@ -93,13 +92,14 @@ _REQUIREMENT_CODE = {name: k for k, name in enumerate(START_REQUIREMENTS)}
 
 
 def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT_CODE):
-    """(places, rows) of the two-life items that may be covered here: discrete payments,
+    """(places, numbers) of the two-life items that may be covered here (_ROW numbers an
+    item, one flat list): discrete payments,
     whole-number frequencies (annual unless ``exact``), whole tables and durations, a known
     start requirement and three survivorship amounts (their range is checked on the
     arrays). Anything else (errors included) is the general path's. (The builtins are
     bound as defaults: this loop is most of the Python work of a batch.)"""
-    places, rows = [], []
-    add_place, add_row = places.append, rows.append
+    places, flat = [], []
+    add_place, add_row = places.append, flat.extend
     nan, inf = math.nan, math.inf
     n = -1
     for item in items:
@@ -126,7 +126,7 @@ def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT
                      b.mortality_multiplier, b.flat_extra,
                      timing == "arrears", m, inf if term is None else term, p.deferral,
                      p.guarantee, p.escalation, *s, _code[req]))
-    return places, rows
+    return places, flat
 
 
 class _Pairs:
@@ -134,10 +134,8 @@ class _Pairs:
     :class:`~service.engine.columns.Columns` of each life with the item's payments;
     ``amounts`` (n, 3); ``requires`` indexes START_REQUIREMENTS."""
 
-    def __init__(self, rows):
-        size = len(rows)
-        flat = np.fromiter(itertools.chain.from_iterable(rows), float, size * _ROW)
-        cols = np.ascontiguousarray(flat.reshape(size, _ROW).T)  # one row a field
+    def __init__(self, table):
+        cols = np.ascontiguousarray(table.T)  # (an item a row of ``table``) one row a field
         pay = {name: cols[12 + k] for k, name in enumerate(_PAY)}
         pay["timing"] = pay["timing"].astype(np.int8)
         self.lives = []
@@ -225,19 +223,20 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
     """
     if valuation.curve.kind != "flat" or len(items) == 0:
         return None
-    places, rows = _scan(items, valuation.approximation == "exact")
+    places, flat = _scan(items, valuation.approximation == "exact")
     if not places:
         return None
-    pairs = _Pairs(rows)
-    with np.errstate(invalid="ignore"):
-        amiss = ~np.all((pairs.amounts >= 0) & (pairs.amounts <= 1), axis=1)
+    table = np.fromiter(flat, float, len(flat)).reshape(len(places), _ROW)
+    del flat  # (the Python list is not kept while valuing)
+    amounts = table[:, 18:21]
+    amiss = ~np.all((amounts >= 0) & (amounts <= 1), axis=1)
     if amiss.any():  # amounts out of range (or NaN): the general path's errors
-        keep = np.flatnonzero(~amiss).tolist()
-        places = [places[k] for k in keep]
+        keep = np.flatnonzero(~amiss)
+        places = [places[k] for k in keep.tolist()]
         if not places:
             return None
-        pairs = _Pairs([rows[k] for k in keep])
-    del rows  # (the arrays hold them now: a Python tuple an item is not kept while valuing)
+        table = table[keep]
+    pairs = _Pairs(table)
     assumption = valuation.fractional_age
     if _suspect(tables, pairs, assumption):
         _prepare(tables, items, valuation)  # raises the general path's ItemError, if any
@@ -245,12 +244,15 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
     m = pairs.lives[0].frequency.astype(np.int64)
     fast_work = int(_work(count, guaranteed, m).sum())
     size = len(items)
-    which = np.array(places, dtype=np.intp)
     values = np.zeros(size)
     code = np.full(size, EXACT_SUM, dtype=np.int8)
-    others = np.ones(size, dtype=bool)
-    others[which] = False
-    rest = np.flatnonzero(others)
+    if len(places) == size:  # every item (places ascend)
+        which, rest = slice(None), np.zeros(0, dtype=np.intp)
+    else:
+        which = np.array(places, dtype=np.intp)
+        others = np.ones(size, dtype=bool)
+        others[which] = False
+        rest = np.flatnonzero(others)
     if rest.size:
         left = None if max_work is None else max_work - fast_work
         try:
