@@ -60,7 +60,6 @@ from service.engine import annuity
 from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.columns import (
-    TIMING_CODES,
     Columns,
     _field_suspects,
     _pair_chunks,
@@ -89,6 +88,8 @@ _ROW = 22  # numbers per item: two lives, the payments, the amounts, the start r
 
 
 _REQUIREMENT_CODE = {name: k for k, name in enumerate(START_REQUIREMENTS)}
+#: The timings valued here (continuous payments are the general path's).
+_DISCRETE = ("advance", "arrears")
 
 
 def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT_CODE):
@@ -114,7 +115,7 @@ def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT
         ad, bd = a.duration, b.duration
         timing = p.timing
         req = item.start_requires
-        if (_type(m) is _int and timing in TIMING_CODES and (exact or m == 1)
+        if (_type(m) is _int and timing in _DISCRETE and (exact or m == 1)
                 and _type(a.table) is _int and _type(b.table) is _int
                 and (ad is None or _type(ad) is _int) and (bd is None or _type(bd) is _int)
                 and req in START_REQUIREMENTS and _len(s) == 3):
