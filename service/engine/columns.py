@@ -1,4 +1,4 @@
-"""Single-life discrete annuities valued from columns, on shared chains of survival.
+"""Single-life annuities valued from columns, on shared chains of survival.
 
 A batch given as columns (:class:`Columns`: one numpy array per field) is valued without a
 Python object per item, and :func:`service.engine.annuity.value_annuities` sends the items
@@ -48,8 +48,12 @@ P(alive at u) v^u times sum_k ((1 + r) v)^k a(1) over its whole years, a(1) the
 annuity-certain of one year paid m-thly, plus its part year; the geometric sum is taken in
 closed form.
 
-Not covered here (the general path values them): two lives, continuous payments, interest
-structures other than one flat rate, Woolhouse's approximation with m > 1, and items whose
+Continuous payments (timing code 2; their frequency is ignored, as by the general path) are
+valued by :mod:`service.engine.continuous_columns` on the same kind of chains, under every
+fractional-age assumption, with the general path's method code (INTEGRAL).
+
+Not covered here (the general path values them): two lives, interest structures other than
+one flat rate, Woolhouse's approximation with m > 1 (discrete payments), and items whose
 sensitivities are wanted.
 """
 
@@ -68,6 +72,7 @@ from service.engine.integrals import phi
 from service.engine.interest import annuity_certain
 from service.engine.items import (
     EXACT_SUM,
+    INTEGRAL,
     MAX_FREQUENCY,
     START_REQUIREMENTS,
     Item,
@@ -79,7 +84,9 @@ from service.engine.items import (
 from service.engine.survival import build_lives, fraction_survival
 
 #: Timing codes of :attr:`Columns.timing`; any other code is an invalid timing.
-TIMING_CODES = ("advance", "arrears")
+TIMING_CODES = ("advance", "arrears", "continuous")
+#: The code of continuous payments.
+CONTINUOUS = 2
 FIELDS = ("table", "age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra",
           "timing", "frequency", "term", "deferral", "guarantee", "escalation")
 _DEFAULTS = {"table": 0, "duration": math.nan, "age_adjustment": 0.0,
@@ -99,11 +106,12 @@ _CANCELLATION = 64.0
 
 @dataclass(frozen=True, eq=False)
 class Columns:
-    """Single-life discrete annuity items, one array per field (all the same length).
+    """Single-life annuity items, one array per field (all the same length).
 
     ``table`` indexes the tables; ``duration`` is NaN for ultimate; ``timing`` holds codes
-    (0 advance, 1 arrears, see ``TIMING_CODES``; -1 an unknown timing); ``frequency`` is
-    payments a year (whole numbers); ``term`` is inf for life. Amounts are per 1 p.a.
+    (0 advance, 1 arrears, 2 continuous, see ``TIMING_CODES``; -1 an unknown timing);
+    ``frequency`` is payments a year (whole numbers; ignored for continuous payments);
+    ``term`` is inf for life. Amounts are per 1 p.a.
     Build with :meth:`from_dict`, :meth:`from_frame` or :meth:`from_items`.
     """
 
@@ -174,12 +182,12 @@ class Columns:
     @classmethod
     def from_items(cls, items) -> "Columns":
         """Build from engine :class:`~service.engine.annuity.Item` objects, each with one life
-        and discrete payments (ValueError otherwise)."""
+        (ValueError otherwise)."""
         rows = []
         for n, item in enumerate(items):
             row = _item_row(item)
             if row is None:
-                raise ValueError(f"item {n} is not a single-life item with discrete payments")
+                raise ValueError(f"item {n} is not a single-life item")
             rows.append(row)
         return _from_rows(rows)
 
@@ -194,7 +202,7 @@ class Columns:
 
 class ItemBatch(Sequence):
     """A batch of engine items held partly as columns: the items at ``rows`` (ascending
-    places) are single-life discrete items with start_requires 'any' and the usual
+    places) are single-life items with start_requires 'any' and the usual
     survivorship, given by ``columns``; the others are :class:`Item` objects in ``others``
     (by place). Indexing gives each place's :class:`Item` (built on demand), so it serves
     wherever a list of items does; :func:`dispatch` values the column rows without one."""
@@ -226,27 +234,27 @@ class ItemBatch(Sequence):
 def _timing_codes(value) -> np.ndarray:
     if value.dtype.kind in "iuf":
         codes = np.asarray(value, dtype=float)
-        ok = np.isin(codes, (0, 1))
+        ok = np.isin(codes, (0, 1, CONTINUOUS))
         return np.where(ok, codes, -1).astype(np.int8)
     text = value.astype(str)
-    if np.any(text == "continuous"):
-        raise ValueError("columns hold discrete timings only (advance, arrears); value "
-                         "continuous payments with value_annuities")
-    return np.select([text == "advance", text == "arrears"], [0, 1], -1).astype(np.int8)
+    return np.select([text == name for name in TIMING_CODES], range(len(TIMING_CODES)),
+                     -1).astype(np.int8)
 
 
 def _item_row(item) -> tuple | None:
-    """The columns of one item, or None where it is not single-life and discrete."""
+    """The columns of one item, or None where it is not single-life (a continuous item's
+    frequency, which nothing reads, is kept where it is a whole number and 1 otherwise)."""
     if len(item.lives) != 1:
         return None
     p = item.payments
     code = TIMING_CODES.index(p.timing) if p.timing in TIMING_CODES else -1
-    if p.timing == "continuous":
-        return None
+    frequency = p.frequency
+    if code == CONTINUOUS and type(frequency) is not int:
+        frequency = 1
     life = item.lives[0]
     return (life.table, life.age, math.nan if life.duration is None else life.duration,
             life.age_adjustment, life.mortality_multiplier, life.flat_extra, code,
-            p.frequency, math.inf if p.term is None else p.term, p.deferral, p.guarantee,
+            frequency, math.inf if p.term is None else p.term, p.deferral, p.guarantee,
             p.escalation)
 
 
@@ -281,7 +289,7 @@ def _row_item(cols: Columns, n: int) -> Item:
                 age_adjustment=float(cols.age_adjustment[n]),
                 mortality_multiplier=float(cols.mortality_multiplier[n]),
                 flat_extra=float(cols.flat_extra[n]))
-    pay = Payments(timing=TIMING_CODES[code] if code in (0, 1) else "unknown",
+    pay = Payments(timing=TIMING_CODES[code] if 0 <= code < len(TIMING_CODES) else "unknown",
                    frequency=_whole_or_float(float(cols.frequency[n])),
                    term=None if term == math.inf else term, deferral=float(cols.deferral[n]),
                    guarantee=float(cols.guarantee[n]), escalation=float(cols.escalation[n]))
@@ -301,9 +309,10 @@ def _multiple(value, m):
 def _field_suspects(cols: Columns) -> np.ndarray:
     """Rows that may fail the general path's item checks (a superset)."""
     m = cols.frequency
+    cont = cols.timing == CONTINUOUS  # (no frequency, no whole periods)
     with np.errstate(invalid="ignore"):
         good_m = (m == np.round(m)) & (m >= 1) & (m <= MAX_FREQUENCY)
-        bad = ~np.isin(cols.timing, (0, 1)) | ~good_m
+        bad = ~np.isin(cols.timing, (0, 1, CONTINUOUS)) | ~(good_m | cont)
         for v in (cols.deferral, cols.guarantee):
             bad |= ~(np.isfinite(v) & (v >= 0))
         life = np.isinf(cols.term) & (cols.term > 0)
@@ -312,7 +321,7 @@ def _field_suspects(cols: Columns) -> np.ndarray:
         bad |= ~life & (cols.guarantee > cols.term * (1 + 1e-12))
         safe_m = np.where(good_m, m, 1.0)
         for v in (np.where(life, 0.0, cols.term), cols.deferral, cols.guarantee):
-            bad |= ~_multiple(v, safe_m)
+            bad |= ~cont & ~_multiple(v, safe_m)
         bad |= ~np.isfinite(cols.age + cols.age_adjustment)
         mult = cols.mortality_multiplier
         bad |= ~(np.isfinite(mult) & (mult >= 0))
@@ -411,19 +420,32 @@ def _year_rates(tables, t, anchor, dkey, mult, extra, k):
 # Valuation
 
 
-def covered(valuation: Valuation, frequency) -> np.ndarray:
-    """Which items (by payments a year) this module values under ``valuation``."""
+def covered(valuation: Valuation, frequency, timing=None) -> np.ndarray:
+    """Which items (by payments a year, and timing codes where given) this module values
+    under ``valuation``."""
     frequency = np.asarray(frequency)
     if valuation.curve.kind != "flat":
         return np.zeros(frequency.shape, dtype=bool)
-    return (valuation.approximation == "exact") | (frequency == 1)
+    out = (valuation.approximation == "exact") | (frequency == 1)
+    if timing is not None:
+        out = out | (np.asarray(timing) == CONTINUOUS)
+    return out
 
 
 def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
     """Work units: one an item under UDD (a few sums on shared columns); under the other
-    assumptions the per-year pass sums every payment date, as the general path does."""
+    assumptions the per-year pass sums every payment date, as the general path does
+    (continuous items: see :func:`service.engine.continuous_columns.work`)."""
     if assumption == "udd":
         return np.ones(len(cols), dtype=np.int64)
+    cont = cols.timing == CONTINUOUS
+    if cont.any():
+        from service.engine import continuous_columns
+
+        out = np.zeros(len(cols), dtype=np.int64)
+        out[cont] = continuous_columns.work(tables, cols.take(cont), assumption)
+        out[~cont] = _work(tables, cols.take(~cont), assumption)
+        return out
     m = cols.frequency
     ages = cols.age + cols.age_adjustment
     last = np.array([tb.last_age for tb in tables], dtype=float)[cols.table]
@@ -435,7 +457,7 @@ def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
 
 def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None = None,
                   deadline: float | None = None) -> Values:
-    """Return the present value of 1 p.a. of each single-life discrete item in ``columns``
+    """Return the present value of 1 p.a. of each single-life item in ``columns``
     (a :class:`Columns`, a mapping of arrays or a pandas DataFrame), and its method code.
 
     Items this module does not cover under ``valuation`` (see :func:`covered`) are valued
@@ -447,7 +469,7 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     found = problems(tables, cols, valuation.fractional_age)
     if found:
         raise ItemError(found)
-    fast = covered(valuation, cols.frequency)
+    fast = covered(valuation, cols.frequency, cols.timing)
     rest = np.flatnonzero(~fast)
     fast_work = int(_work(tables, cols.take(fast), valuation.fractional_age).sum())
     values = np.zeros(len(cols))
@@ -468,6 +490,7 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     which = np.flatnonzero(fast)
     if which.size:
         values[which] = _value(tables, cols.take(which), valuation, deadline)
+        code[which] = np.where(cols.timing[which] == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
 
 
@@ -503,8 +526,9 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         listed = enumerate(items)
     for n, item in listed:
         p = item.payments
-        if (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
-                and (exact or p.frequency == 1)
+        if (p.timing in TIMING_CODES and len(item.lives) == 1
+                and (p.timing == "continuous"
+                     or (type(p.frequency) is int and (exact or p.frequency == 1)))
                 and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
                 and type(item.lives[0].table) is int
                 and item.start_requires in START_REQUIREMENTS
@@ -512,8 +536,9 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
             rows.append(_item_row(item))
             which.append(n)
     if given is not None:
-        take = given.rows if exact else given.rows[given.columns.frequency == 1]
-        part = given.columns if exact else given.columns.take(given.columns.frequency == 1)
+        held = covered(valuation, given.columns.frequency, given.columns.timing)
+        take = given.rows[held]
+        part = given.columns.take(held)
         if rows:
             places = np.concatenate([take, np.array(which, dtype=np.intp)])
             order = np.argsort(places, kind="stable")
@@ -552,6 +577,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     elif max_work is not None and fast_work > max_work:
         raise WorkLimitError(fast_work, max_work)
     values[which] = _value(tables, cols, valuation, deadline)
+    code[which] = np.where(cols.timing == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
 
 
@@ -572,10 +598,20 @@ def _slot_tables(ms, delta):
 
 
 def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
-    """Values of validated, covered items (flat rate; exact sums)."""
+    """Values of validated, covered items (flat rate; exact sums, or continuous)."""
     n = len(cols)
     values = np.zeros(n)
     if not n:
+        return values
+    cont = cols.timing == CONTINUOUS
+    if cont.any():
+        from service.engine import continuous_columns
+
+        values[cont] = continuous_columns.value(tables, cols.take(cont),
+                                                valuation.curve.constant_force,
+                                                valuation.fractional_age, deadline)
+        if not cont.all():
+            values[~cont] = _value(tables, cols.take(~cont), valuation, deadline)
         return values
     ages = cols.age + cols.age_adjustment
     anchor = np.floor(ages + _SNAP).astype(np.int64)
