@@ -607,9 +607,8 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     if cont.any():
         from service.engine import continuous_columns
 
-        values[cont] = continuous_columns.value(tables, cols.take(cont),
-                                                valuation.curve.constant_force,
-                                                valuation.fractional_age, deadline)
+        values[cont] = continuous_columns.value(tables, cols.take(cont), valuation,
+                                                deadline)
         if not cont.all():
             values[~cont] = _value(tables, cols.take(~cont), valuation, deadline)
         return values

@@ -499,6 +499,8 @@ _PLAIN_MIX = [
     {"lives": [{"age": 5, "age_adjustment": -10}], "timing": "arrears"},  # so is this
     {"lives": [{"age": 80, "sex": "blend-60.40"}], "timing": "advance"},  # no such table
     {"lives": [{"age": 45}], "timing": "arrears", "frequency": 365, "term": 1},
+    {"lives": [{"age": 58.75, "duration": 0}], "timing": "continuous", "frequency": 12,
+     "term": 20.5, "deferral": 1.3, "guarantee": 4.2, "escalation": 0.03},
 ]
 
 
@@ -535,7 +537,8 @@ def test_plain_items_are_held_as_columns(app):
         objects, _, _ = views._engine_items(basis, copy.deepcopy(items), dated)
         batch, refused, _ = views._column_items(basis, items, dated)
     assert isinstance(batch, ItemBatch)
-    assert batch.rows.tolist() == [0, 1, 7, 11]  # (7 gave its term in months)
+    # (7 gave its term in months; 2 and 12 are continuous, their frequency ignored)
+    assert batch.rows.tolist() == [0, 1, 2, 7, 11, 12]
     assert sorted(refused) == [8, 9, 10]  # ages outside the table, no such table
     # Each place gives the engine item the object path builds.
     assert list(batch) == objects and batch[-1] == objects[-1]
