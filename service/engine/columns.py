@@ -59,7 +59,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from service.engine import annuity
+from service.engine import annuity, small
 from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.checks import _check_item
@@ -95,6 +95,9 @@ _CHUNK_PAIRS = 200_000
 #: An item whose cumulative difference subtracts more than this many times its value sums
 #: its whole years directly instead.
 _CANCELLATION = 64.0
+#: A slot range whose sum of c_i (1 - s_i) is below this share of its sum of c_i is summed
+#: slot by slot (see _Slots.weights).
+_ILL = 1e-3
 
 
 @dataclass(frozen=True, eq=False)
@@ -444,6 +447,16 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     :func:`service.engine.annuity.value_annuities`.
     """
     cols = _as_columns(columns)
+    rows = (list(zip(*(getattr(cols, name).tolist() for name in FIELDS), strict=True))
+            if _small_covered(valuation, len(cols)) else ())
+    exact = valuation.approximation == "exact"
+    if rows and all(row[6] in (0, 1) and (exact or row[7] == 1) for row in rows):  # (timing
+        # codes; frequencies Woolhouse leaves to exact sums)
+        values = _value_small(tables, rows, [_row_item(cols, n) for n in range(len(cols))],
+                              valuation, max_work, deadline, lambda: problems(
+                                  tables, cols, valuation.fractional_age))
+        return Values(np.array(values), np.full(len(cols), EXACT_SUM, dtype=np.int8),
+                      methods(valuation))
     found = problems(tables, cols, valuation.fractional_age)
     if found:
         raise ItemError(found)
@@ -494,6 +507,13 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     if measure is not None and np.any(measure):
         return None  # sensitivities come from the general path's payments
     exact = valuation.approximation == "exact"
+    if _small_covered(valuation, len(items)):
+        rows = [_item_row(item) if _plain(item, exact) else None for item in items]
+        if all(row is not None for row in rows):
+            values = _value_small(tables, rows, items, valuation, max_work, deadline,
+                                  lambda: _found(tables, items, valuation))
+            return Values(np.array(values), np.full(len(items), EXACT_SUM, dtype=np.int8),
+                          methods(valuation))
     rows, which = [], []
     given = None
     if isinstance(items, ItemBatch):
@@ -502,13 +522,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     else:
         listed = enumerate(items)
     for n, item in listed:
-        p = item.payments
-        if (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
-                and (exact or p.frequency == 1)
-                and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
-                and type(item.lives[0].table) is int
-                and item.start_requires in START_REQUIREMENTS
-                and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)):
+        if _plain(item, exact):
             rows.append(_item_row(item))
             which.append(n)
     if given is not None:
@@ -553,6 +567,59 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         raise WorkLimitError(fast_work, max_work)
     values[which] = _value(tables, cols, valuation, deadline)
     return Values(values, code, methods(valuation))
+
+
+def _plain(item, exact: bool) -> bool:
+    """Whether ``item`` is a single-life discrete item this module values (one the general
+    path would accept as such: whole frequency and duration, a table index, known start
+    requirement, survivorship amounts in [0, 1])."""
+    p = item.payments
+    return (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
+            and (exact or p.frequency == 1)
+            and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
+            and type(item.lives[0].table) is int
+            and item.start_requires in START_REQUIREMENTS
+            and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship))
+
+
+def _small_covered(valuation: Valuation, size: int) -> bool:
+    """Whether a batch of ``size`` covered items goes to :mod:`service.engine.small`."""
+    return (0 < size <= small.SMALL_BATCH and valuation.fractional_age == "udd"
+            and valuation.curve.kind == "flat")
+
+
+def _found(tables, items, valuation: Valuation) -> dict:
+    """The general path's problems with ``items`` (empty when there is none)."""
+    try:
+        _prepare(tables, items, valuation)
+    except ItemError as error:
+        return error.errors
+    return {}
+
+
+def _value_small(tables, rows, items, valuation: Valuation, max_work, deadline,
+                 find) -> list[float]:
+    """Value a few covered rows in plain floats, after the checks the column path makes:
+    each item's own (``_check_item``), then its table index, then its life under its table
+    (where a row is suspect, ``find()`` words the problems, as the path it stands in for)."""
+    errors: dict[str, list[str]] = {}
+    for n, item in enumerate(items):
+        for path, msgs in _check_item(item).items():
+            errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    if errors:
+        raise ItemError(errors)
+    bad = [n for n, row in enumerate(rows) if not 0 <= row[0] < len(tables)]
+    if bad:
+        raise ItemError({f"{n}.lives.0.sex": ["no table for this life in the basis"]
+                         for n in bad})
+    if any(small.suspect(tables, row) for row in rows):
+        found = find()
+        if found:
+            raise ItemError(found)
+    if max_work is not None and len(rows) > max_work:
+        raise WorkLimitError(len(rows), max_work)  # one unit an item under UDD (_work)
+    _on_time(deadline)
+    return small.value_rows(tables, rows, valuation.curve.constant_force)
 
 
 def _slot_tables(ms, delta):
@@ -725,7 +792,27 @@ class _Slots:
             c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
             shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
             a, b = a - shift, b + shift
+        # Where the slots fall at the very end of the year (1 - s_i tiny: a life with a year
+        # of q = 1 and little of it left), A is a small difference of the prefix sums: sum
+        # its few slots directly instead (at most a couple: 1 - s_i < 1e-3 for every slot).
+        ill = a < _ILL * (a + b)
+        if ill.any():
+            w = np.flatnonzero(ill)
+            a = a.copy()
+            a[w] = _direct_a(lo_[w], hi[w], self.m[w], self.mf[w], self.dm[w], self.rho[w],
+                             self.kappa[w], self.phi[w], self.delta)
         return a, b
+
+
+def _direct_a(lo, hi, m, mf, dm, rho, kappa, phi, delta):
+    """sum c_i (1 - s_i) over the slots lo <= i < hi, slot by slot."""
+    out = np.zeros(lo.size)
+    for step in range(int((hi - lo).max(initial=0))):
+        i = lo + step
+        term = (kappa * np.where(i < dm, rho, 1.0) * np.exp(-delta * i / mf)
+                * np.where(phi + i < 0, 1.0, ((m - i) - phi) / mf))
+        out += np.where(i < hi, term, 0.0)
+    return out
 
 
 def _offsets(m, offset):

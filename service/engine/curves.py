@@ -433,7 +433,7 @@ class Curve:
         """Return K, the number of key-rate factors."""
         return len(self.rates)
 
-    @property
+    @cached_property
     def constant_force(self) -> float | None:
         """Return the force of interest where the structure is one flat rate, else None."""
         c = self._c
