@@ -648,12 +648,23 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     anchor = np.floor(ages + _SNAP).astype(np.int64)
     dkey = _select_key(tables, cols.table, cols.duration)
     growth = np.log1p(cols.escalation)
-    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
-                        cols.table))
     m_all = cols.frequency.astype(np.int64)
     delta = valuation.curve.constant_force
     ms = np.unique(m_all).tolist()
     slots = _slot_tables(ms, delta)
+    done = None
+    if valuation.fractional_age == "udd":
+        from service.engine import commutation  # (it builds on this module)
+
+        values, done = commutation.value(tables, cols, ages, anchor, dkey, growth, m_all,
+                                         delta, slots, deadline)
+        if done.all():
+            return values
+    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
+                        cols.table))
+    if done is not None:
+        order = order[~done[order]]  # the rest on chains of their own
+        n = order.size
     for start in range(0, n, _CHUNK_ITEMS):
         _on_time(deadline)
         idx = order[start:start + _CHUNK_ITEMS]
@@ -683,32 +694,11 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                     mult[rep][:, None], extra[rep][:, None], k)
     cum = np.ones((rep.size, width + 1))
     cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
-    frac = np.maximum(ages - anchor, 0.0)
-    start = fraction_survival(q[chain, 0], frac, assumption)
-
-    # Payment windows (as batch._payment_count and discrete._discrete_values).
-    u = cols.deferral[idx]
-    mf = m.astype(float)
-    arr = (cols.timing[idx] == 1).astype(np.int64)
-    horizon = last[t] + 1.0 - (anchor + frac)
-    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
-    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
-    count = np.minimum(np.maximum(by_life, guaranteed),
-                       np.rint(cols.term[idx] * mf)).astype(np.int64)
-    first = np.minimum(guaranteed, count)
-    n0 = np.rint(u * mf).astype(np.int64) + arr
-
-    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
-    fm = frac * mf
-    big = np.floor(fm).astype(np.int64)
-    phi_ = fm - big
-    snap = phi_ >= 1.0 - mf * _SNAP
-    big = np.where(snap, big + 1, big)
-    phi_ = np.where(snap, phi_ - 1.0, phi_)
-    dq, dm = np.divmod(big + n0, m)
-    kappa = np.exp(delta * big / mf - dq * growth)
-    rho = np.exp(-growth)
-    lw = growth - delta  # ln w
+    start = fraction_survival(q[chain, 0], np.maximum(ages - anchor, 0.0), assumption)
+    win = _windows(cols, idx, ages, anchor, growth, m, delta, last[t])
+    frac, u, mf, arr, big, phi_, guaranteed, n0 = (
+        win.frac, win.u, win.mf, win.arr, win.big, win.phi, win.guaranteed, win.n0)
+    kappa, rho, lw = win.kappa, win.rho, win.lw
 
     values = np.zeros(size)
     # The guarantee: P(alive at u) v^u sum over its years, in closed form.
@@ -720,24 +710,14 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
         ku = np.clip(ku, 0, width).astype(np.intp)
         alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
                                                    assumption) / start
-        whole, part = np.divmod(guaranteed, m)
-        lam = delta - growth
-        i = math.expm1(delta)
-        advance = arr == 0
-        years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
-            i, 1.0, m=mf, advance=advance)
-        tail = np.where(part > 0, np.exp(-lam * whole)
-                        * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
-        values += np.where(has_g, alive * np.exp(-delta * u) * (years + tail), 0.0)
+        values += _guarantee(win, m, growth, delta, alive)
 
-    live = count > first
+    live = win.live
     if not live.any():
         return values
-    ka, ia = np.divmod(n0 + first + big, m)
-    kb, ib = np.divmod(n0 + count - 1 + big, m)
-    ka = np.where(live, ka, 0)
-    kb = np.where(live, np.minimum(kb, width - 1), 0)
-    ctx = _Slots(m, mf, dm, rho, kappa, phi_, slots, delta)
+    ka, ia, ib = win.ka, win.ia, win.ib
+    kb = np.where(live, np.minimum(win.kb, width - 1), 0)
+    ctx = _Slots(m, mf, win.dm, rho, kappa, phi_, slots, delta)
     life = np.zeros(size)
     if assumption == "udd":
         cum2 = np.concatenate([cum, np.zeros((rep.size, 1))], axis=1)  # C up to width + 1
@@ -758,6 +738,84 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                          (frac, u, n0 - arr, big))
     values += np.where(live, life / (mf * start), 0.0)
     return values
+
+
+@dataclass(frozen=True, eq=False)
+class _Windows:
+    """Each item's payments as periods and slots (see the module docstring): the fraction
+    f of its age, its deferral u, m as a float, 1 in arrears, G = floor(f m) and phi (snapped
+    as the general path's ages), the guaranteed payments, the periods evaluated (count; the
+    life-contingent ones from ``first``), n0 = U + arr, D = m dq + dm, kappa, rho =
+    1 / (1 + r), ln w; the first and last life-contingent payments as (year of age, slot)."""
+
+    frac: np.ndarray
+    u: np.ndarray
+    mf: np.ndarray
+    arr: np.ndarray
+    big: np.ndarray
+    phi: np.ndarray
+    guaranteed: np.ndarray
+    count: np.ndarray
+    first: np.ndarray
+    n0: np.ndarray
+    dm: np.ndarray
+    kappa: np.ndarray
+    rho: np.ndarray
+    lw: np.ndarray
+    live: np.ndarray
+    ka: np.ndarray  # 0 where not live
+    ia: np.ndarray
+    kb: np.ndarray  # 0 where not live; not clipped to the chain
+    ib: np.ndarray
+
+
+def _windows(cols, idx, ages, anchor, growth, m, delta, last) -> _Windows:
+    """The payment windows of items ``idx`` (as batch._payment_count and
+    discrete._discrete_values count them); ``last`` is each item's table's last age."""
+    frac = np.maximum(ages - anchor, 0.0)
+    u = cols.deferral[idx]
+    mf = m.astype(float)
+    arr = (cols.timing[idx] == 1).astype(np.int64)
+    horizon = last + 1.0 - (anchor + frac)
+    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
+    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
+    count = np.minimum(np.maximum(by_life, guaranteed),
+                       np.rint(cols.term[idx] * mf)).astype(np.int64)
+    first = np.minimum(guaranteed, count)
+    n0 = np.rint(u * mf).astype(np.int64) + arr
+    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
+    fm = frac * mf
+    big = np.floor(fm).astype(np.int64)
+    phi_ = fm - big
+    snap = phi_ >= 1.0 - mf * _SNAP
+    big = np.where(snap, big + 1, big)
+    phi_ = np.where(snap, phi_ - 1.0, phi_)
+    dq, dm = np.divmod(big + n0, m)
+    live = count > first
+    ka, ia = np.divmod(n0 + first + big, m)
+    kb, ib = np.divmod(n0 + count - 1 + big, m)
+    return _Windows(frac, u, mf, arr, big, phi_, guaranteed, count, first, n0, dm,
+                    np.exp(delta * big / mf - dq * growth), np.exp(-growth), growth - delta,
+                    live, np.where(live, ka, 0), ia, np.where(live, kb, 0), ib)
+
+
+def _guarantee(win: _Windows, m, growth, delta, alive):
+    """The guaranteed payments' value given P(alive at u) ``alive``: v^u times the
+    annuity-certain of each whole year, the years summed as a geometric series in closed
+    form, and of the part year."""
+    out = np.zeros(win.guaranteed.size)
+    g = np.flatnonzero(win.guaranteed > 0)
+    whole, part = np.divmod(win.guaranteed[g], m[g])
+    lam = delta - growth[g]
+    i = math.expm1(delta)
+    advance = win.arr[g] == 0
+    mf = win.mf[g]
+    years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
+        i, 1.0, m=mf, advance=advance)
+    tail = np.where(part > 0, np.exp(-lam * whole)
+                    * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
+    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)
+    return out
 
 
 @dataclass(frozen=True, eq=False)
