@@ -56,6 +56,7 @@ sensitivities are wanted.
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
@@ -367,7 +368,8 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
             sel = anchor[rows] - dkey[rows]
             suspect[rows] |= (sel < table.select_first_age) | (sel > table.select_last_age)
     ok = ~suspect
-    if ok.any():
+    # (Under UDD no life is dead at its age: 1 - f q >= 1 - f > 0, the fraction f < 1.)
+    if ok.any() and assumption != "udd":
         q0 = _year_rates(tables, t[ok], anchor[ok], dkey[ok], cols.mortality_multiplier[ok],
                          cols.flat_extra[ok], np.zeros(int(ok.sum()), dtype=np.int64))
         frac = np.maximum(ages[ok] - anchor[ok], 0.0)
@@ -388,26 +390,53 @@ def _year_rates(tables, t, anchor, dkey, mult, extra, k):
     broadcast: select rates within the select period, the multiplier and flat extra applied
     and capped at 1, and q = 1 from the table's last age (as build_lives)."""
     t, anchor, dkey, mult, extra, k = np.broadcast_arrays(t, anchor, dkey, mult, extra, k)
-    out = np.ones(t.shape)
-    for ti, table in enumerate(tables):
-        rows = t == ti
-        if not rows.any():
-            continue
-        age = anchor[rows] + k[rows]
-        index = age - table.first_age
-        base = np.where(index < len(table.q), table.q[np.clip(index, 0, len(table.q) - 1)],
-                        1.0)
-        period = table.select_period
-        if period:
-            d = dkey[rows]
-            dur = d + k[rows]
-            sel = (d >= 0) & (dur < period)
-            srow = np.clip(anchor[rows] - d - table.select_first_age, 0,
-                           table.select_q.shape[0] - 1)
-            base = np.where(sel, table.select_q[srow, np.clip(dur, 0, period - 1)], base)
-        out[rows] = np.where(age >= table.last_age, 1.0,
-                             np.minimum(base * mult[rows] + extra[rows], 1.0))
-    return out
+    flat = _flat_rates(tuple(tables))
+    age = anchor + k
+    base = flat.q[flat.offset[t] + np.clip(age - flat.first[t], 0, flat.length[t] - 1)]
+    if flat.select is not None:
+        period = flat.period[t]
+        dur = dkey + k
+        sel = (dkey >= 0) & (dur < period)
+        if sel.any():
+            srow = np.clip(anchor - dkey - flat.select_first[t], 0, flat.select_rows[t] - 1)
+            at = flat.select_offset[t] + srow * period + np.clip(dur, 0, period - 1)
+            base = np.where(sel, flat.select[np.where(sel, at, 0)], base)
+    return np.where(age >= flat.last[t], 1.0, np.minimum(base * mult + extra, 1.0))
+
+
+@dataclass(frozen=True, eq=False)
+class _FlatRates:
+    """Every table's ultimate rates end to end, and its select rates flattened row by row,
+    with each table's offsets, ages and sizes (indexed by table)."""
+
+    q: np.ndarray
+    offset: np.ndarray
+    first: np.ndarray
+    length: np.ndarray
+    last: np.ndarray
+    select: np.ndarray | None  # None where no table has select rates
+    select_offset: np.ndarray
+    select_first: np.ndarray
+    select_rows: np.ndarray
+    period: np.ndarray
+
+
+@lru_cache(maxsize=32)
+def _flat_rates(tables: tuple) -> _FlatRates:
+    lengths = [len(tb.q) for tb in tables]
+    sizes = [tb.select_q.size if tb.select_period else 0 for tb in tables]
+    flat = [tb.select_q.ravel() for tb, size in zip(tables, sizes, strict=True) if size]
+    return _FlatRates(
+        q=np.concatenate([tb.q for tb in tables]),
+        offset=np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64),
+        first=np.array([tb.first_age for tb in tables], dtype=np.int64),
+        length=np.array(lengths, dtype=np.int64),
+        last=np.array([tb.last_age for tb in tables], dtype=np.int64),
+        select=np.concatenate(flat) if flat else None,
+        select_offset=np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64),
+        select_first=np.array([tb.select_first_age for tb in tables], dtype=np.int64),
+        select_rows=np.array([max(tb.select_q.shape[0], 1) for tb in tables], dtype=np.int64),
+        period=np.array([tb.select_period for tb in tables], dtype=np.int64))
 
 
 # ---------------------------------------------------------------------------------------------
