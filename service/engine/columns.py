@@ -60,10 +60,11 @@ sensitivities are wanted.
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
-from service.engine import annuity
+from service.engine import annuity, small
 from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.checks import _check_item
@@ -102,6 +103,9 @@ _CHUNK_PAIRS = 200_000
 #: An item whose cumulative difference subtracts more than this many times its value sums
 #: its whole years directly instead.
 _CANCELLATION = 64.0
+#: A slot range whose sum of c_i (1 - s_i) is below this share of its sum of c_i is summed
+#: slot by slot (see _Slots.weights).
+_ILL = 1e-3
 
 
 @dataclass(frozen=True, eq=False)
@@ -373,7 +377,8 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
             sel = anchor[rows] - dkey[rows]
             suspect[rows] |= (sel < table.select_first_age) | (sel > table.select_last_age)
     ok = ~suspect
-    if ok.any():
+    # (Under UDD no life is dead at its age: 1 - f q >= 1 - f > 0, the fraction f < 1.)
+    if ok.any() and assumption != "udd":
         q0 = _year_rates(tables, t[ok], anchor[ok], dkey[ok], cols.mortality_multiplier[ok],
                          cols.flat_extra[ok], np.zeros(int(ok.sum()), dtype=np.int64))
         frac = np.maximum(ages[ok] - anchor[ok], 0.0)
@@ -394,26 +399,53 @@ def _year_rates(tables, t, anchor, dkey, mult, extra, k):
     broadcast: select rates within the select period, the multiplier and flat extra applied
     and capped at 1, and q = 1 from the table's last age (as build_lives)."""
     t, anchor, dkey, mult, extra, k = np.broadcast_arrays(t, anchor, dkey, mult, extra, k)
-    out = np.ones(t.shape)
-    for ti, table in enumerate(tables):
-        rows = t == ti
-        if not rows.any():
-            continue
-        age = anchor[rows] + k[rows]
-        index = age - table.first_age
-        base = np.where(index < len(table.q), table.q[np.clip(index, 0, len(table.q) - 1)],
-                        1.0)
-        period = table.select_period
-        if period:
-            d = dkey[rows]
-            dur = d + k[rows]
-            sel = (d >= 0) & (dur < period)
-            srow = np.clip(anchor[rows] - d - table.select_first_age, 0,
-                           table.select_q.shape[0] - 1)
-            base = np.where(sel, table.select_q[srow, np.clip(dur, 0, period - 1)], base)
-        out[rows] = np.where(age >= table.last_age, 1.0,
-                             np.minimum(base * mult[rows] + extra[rows], 1.0))
-    return out
+    flat = _flat_rates(tuple(tables))
+    age = anchor + k
+    base = flat.q[flat.offset[t] + np.clip(age - flat.first[t], 0, flat.length[t] - 1)]
+    if flat.select is not None:
+        period = flat.period[t]
+        dur = dkey + k
+        sel = (dkey >= 0) & (dur < period)
+        if sel.any():
+            srow = np.clip(anchor - dkey - flat.select_first[t], 0, flat.select_rows[t] - 1)
+            at = flat.select_offset[t] + srow * period + np.clip(dur, 0, period - 1)
+            base = np.where(sel, flat.select[np.where(sel, at, 0)], base)
+    return np.where(age >= flat.last[t], 1.0, np.minimum(base * mult + extra, 1.0))
+
+
+@dataclass(frozen=True, eq=False)
+class _FlatRates:
+    """Every table's ultimate rates end to end, and its select rates flattened row by row,
+    with each table's offsets, ages and sizes (indexed by table)."""
+
+    q: np.ndarray
+    offset: np.ndarray
+    first: np.ndarray
+    length: np.ndarray
+    last: np.ndarray
+    select: np.ndarray | None  # None where no table has select rates
+    select_offset: np.ndarray
+    select_first: np.ndarray
+    select_rows: np.ndarray
+    period: np.ndarray
+
+
+@lru_cache(maxsize=32)
+def _flat_rates(tables: tuple) -> _FlatRates:
+    lengths = [len(tb.q) for tb in tables]
+    sizes = [tb.select_q.size if tb.select_period else 0 for tb in tables]
+    flat = [tb.select_q.ravel() for tb, size in zip(tables, sizes, strict=True) if size]
+    return _FlatRates(
+        q=np.concatenate([tb.q for tb in tables]),
+        offset=np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64),
+        first=np.array([tb.first_age for tb in tables], dtype=np.int64),
+        length=np.array(lengths, dtype=np.int64),
+        last=np.array([tb.last_age for tb in tables], dtype=np.int64),
+        select=np.concatenate(flat) if flat else None,
+        select_offset=np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64),
+        select_first=np.array([tb.select_first_age for tb in tables], dtype=np.int64),
+        select_rows=np.array([max(tb.select_q.shape[0], 1) for tb in tables], dtype=np.int64),
+        period=np.array([tb.select_period for tb in tables], dtype=np.int64))
 
 
 # ---------------------------------------------------------------------------------------------
@@ -466,6 +498,16 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     :func:`service.engine.annuity.value_annuities`.
     """
     cols = _as_columns(columns)
+    rows = (list(zip(*(getattr(cols, name).tolist() for name in FIELDS), strict=True))
+            if _small_covered(valuation, len(cols)) else ())
+    exact = valuation.approximation == "exact"
+    if rows and all(row[6] in (0, 1) and (exact or row[7] == 1) for row in rows):  # (timing
+        # codes; frequencies Woolhouse leaves to exact sums)
+        values = _value_small(tables, rows, [_row_item(cols, n) for n in range(len(cols))],
+                              valuation, max_work, deadline, lambda: problems(
+                                  tables, cols, valuation.fractional_age))
+        return Values(np.array(values), np.full(len(cols), EXACT_SUM, dtype=np.int8),
+                      methods(valuation))
     found = problems(tables, cols, valuation.fractional_age)
     if found:
         raise ItemError(found)
@@ -517,6 +559,13 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     if measure is not None and np.any(measure):
         return None  # sensitivities come from the general path's payments
     exact = valuation.approximation == "exact"
+    if _small_covered(valuation, len(items)):
+        rows = [_item_row(item) if _plain(item, exact) else None for item in items]
+        if all(row is not None and row[6] != CONTINUOUS for row in rows):  # (discrete)
+            values = _value_small(tables, rows, items, valuation, max_work, deadline,
+                                  lambda: _found(tables, items, valuation))
+            return Values(np.array(values), np.full(len(items), EXACT_SUM, dtype=np.int8),
+                          methods(valuation))
     rows, which = [], []
     given = None
     if isinstance(items, ItemBatch):
@@ -525,14 +574,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     else:
         listed = enumerate(items)
     for n, item in listed:
-        p = item.payments
-        if (p.timing in TIMING_CODES and len(item.lives) == 1
-                and (p.timing == "continuous"
-                     or (type(p.frequency) is int and (exact or p.frequency == 1)))
-                and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
-                and type(item.lives[0].table) is int
-                and item.start_requires in START_REQUIREMENTS
-                and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)):
+        if _plain(item, exact):
             rows.append(_item_row(item))
             which.append(n)
     if given is not None:
@@ -581,6 +623,60 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     return Values(values, code, methods(valuation))
 
 
+def _plain(item, exact: bool) -> bool:
+    """Whether ``item`` is a single-life item this module values (one the general path
+    would accept as such: whole frequency (discrete payments) and duration, a table index,
+    known start requirement, survivorship amounts in [0, 1])."""
+    p = item.payments
+    return (p.timing in TIMING_CODES and len(item.lives) == 1
+            and (p.timing == "continuous"
+                 or (type(p.frequency) is int and (exact or p.frequency == 1)))
+            and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
+            and type(item.lives[0].table) is int
+            and item.start_requires in START_REQUIREMENTS
+            and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship))
+
+
+def _small_covered(valuation: Valuation, size: int) -> bool:
+    """Whether a batch of ``size`` covered items goes to :mod:`service.engine.small`."""
+    return (0 < size <= small.SMALL_BATCH and valuation.fractional_age == "udd"
+            and valuation.curve.kind == "flat")
+
+
+def _found(tables, items, valuation: Valuation) -> dict:
+    """The general path's problems with ``items`` (empty when there is none)."""
+    try:
+        _prepare(tables, items, valuation)
+    except ItemError as error:
+        return error.errors
+    return {}
+
+
+def _value_small(tables, rows, items, valuation: Valuation, max_work, deadline,
+                 find) -> list[float]:
+    """Value a few covered rows in plain floats, after the checks the column path makes:
+    each item's own (``_check_item``), then its table index, then its life under its table
+    (where a row is suspect, ``find()`` words the problems, as the path it stands in for)."""
+    errors: dict[str, list[str]] = {}
+    for n, item in enumerate(items):
+        for path, msgs in _check_item(item).items():
+            errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    if errors:
+        raise ItemError(errors)
+    bad = [n for n, row in enumerate(rows) if not 0 <= row[0] < len(tables)]
+    if bad:
+        raise ItemError({f"{n}.lives.0.sex": ["no table for this life in the basis"]
+                         for n in bad})
+    if any(small.suspect(tables, row) for row in rows):
+        found = find()
+        if found:
+            raise ItemError(found)
+    if max_work is not None and len(rows) > max_work:
+        raise WorkLimitError(len(rows), max_work)  # one unit an item under UDD (_work)
+    _on_time(deadline)
+    return small.value_rows(tables, rows, valuation.curve.constant_force)
+
+
 def _slot_tables(ms, delta):
     """For each frequency m: P0[k] = sum_(i<k) x^i and P1[k] = sum_(i<k) i x^i, x = e^(-delta/m),
     k = 0..m, concatenated; return (offset by m, P0, P1)."""
@@ -616,12 +712,23 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     anchor = np.floor(ages + _SNAP).astype(np.int64)
     dkey = _select_key(tables, cols.table, cols.duration)
     growth = np.log1p(cols.escalation)
-    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
-                        cols.table))
     m_all = cols.frequency.astype(np.int64)
     delta = valuation.curve.constant_force
     ms = np.unique(m_all).tolist()
     slots = _slot_tables(ms, delta)
+    done = None
+    if valuation.fractional_age == "udd":
+        from service.engine import commutation  # (it builds on this module)
+
+        values, done = commutation.value(tables, cols, ages, anchor, dkey, growth, m_all,
+                                         delta, slots, deadline)
+        if done.all():
+            return values
+    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
+                        cols.table))
+    if done is not None:
+        order = order[~done[order]]  # the rest on chains of their own
+        n = order.size
     for start in range(0, n, _CHUNK_ITEMS):
         _on_time(deadline)
         idx = order[start:start + _CHUNK_ITEMS]
@@ -651,32 +758,11 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                     mult[rep][:, None], extra[rep][:, None], k)
     cum = np.ones((rep.size, width + 1))
     cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
-    frac = np.maximum(ages - anchor, 0.0)
-    start = fraction_survival(q[chain, 0], frac, assumption)
-
-    # Payment windows (as batch._payment_count and discrete._discrete_values).
-    u = cols.deferral[idx]
-    mf = m.astype(float)
-    arr = (cols.timing[idx] == 1).astype(np.int64)
-    horizon = last[t] + 1.0 - (anchor + frac)
-    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
-    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
-    count = np.minimum(np.maximum(by_life, guaranteed),
-                       np.rint(cols.term[idx] * mf)).astype(np.int64)
-    first = np.minimum(guaranteed, count)
-    n0 = np.rint(u * mf).astype(np.int64) + arr
-
-    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
-    fm = frac * mf
-    big = np.floor(fm).astype(np.int64)
-    phi_ = fm - big
-    snap = phi_ >= 1.0 - mf * _SNAP
-    big = np.where(snap, big + 1, big)
-    phi_ = np.where(snap, phi_ - 1.0, phi_)
-    dq, dm = np.divmod(big + n0, m)
-    kappa = np.exp(delta * big / mf - dq * growth)
-    rho = np.exp(-growth)
-    lw = growth - delta  # ln w
+    start = fraction_survival(q[chain, 0], np.maximum(ages - anchor, 0.0), assumption)
+    win = _windows(cols, idx, ages, anchor, growth, m, delta, last[t])
+    frac, u, mf, arr, big, phi_, guaranteed, n0 = (
+        win.frac, win.u, win.mf, win.arr, win.big, win.phi, win.guaranteed, win.n0)
+    kappa, rho, lw = win.kappa, win.rho, win.lw
 
     values = np.zeros(size)
     # The guarantee: P(alive at u) v^u sum over its years, in closed form.
@@ -688,24 +774,14 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
         ku = np.clip(ku, 0, width).astype(np.intp)
         alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
                                                    assumption) / start
-        whole, part = np.divmod(guaranteed, m)
-        lam = delta - growth
-        i = math.expm1(delta)
-        advance = arr == 0
-        years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
-            i, 1.0, m=mf, advance=advance)
-        tail = np.where(part > 0, np.exp(-lam * whole)
-                        * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
-        values += np.where(has_g, alive * np.exp(-delta * u) * (years + tail), 0.0)
+        values += _guarantee(win, m, growth, delta, alive)
 
-    live = count > first
+    live = win.live
     if not live.any():
         return values
-    ka, ia = np.divmod(n0 + first + big, m)
-    kb, ib = np.divmod(n0 + count - 1 + big, m)
-    ka = np.where(live, ka, 0)
-    kb = np.where(live, np.minimum(kb, width - 1), 0)
-    ctx = _Slots(m, mf, dm, rho, kappa, phi_, slots, delta)
+    ka, ia, ib = win.ka, win.ia, win.ib
+    kb = np.where(live, np.minimum(win.kb, width - 1), 0)
+    ctx = _Slots(m, mf, win.dm, rho, kappa, phi_, slots, delta)
     life = np.zeros(size)
     if assumption == "udd":
         cum2 = np.concatenate([cum, np.zeros((rep.size, 1))], axis=1)  # C up to width + 1
@@ -726,6 +802,84 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                          (frac, u, n0 - arr, big))
     values += np.where(live, life / (mf * start), 0.0)
     return values
+
+
+@dataclass(frozen=True, eq=False)
+class _Windows:
+    """Each item's payments as periods and slots (see the module docstring): the fraction
+    f of its age, its deferral u, m as a float, 1 in arrears, G = floor(f m) and phi (snapped
+    as the general path's ages), the guaranteed payments, the periods evaluated (count; the
+    life-contingent ones from ``first``), n0 = U + arr, D = m dq + dm, kappa, rho =
+    1 / (1 + r), ln w; the first and last life-contingent payments as (year of age, slot)."""
+
+    frac: np.ndarray
+    u: np.ndarray
+    mf: np.ndarray
+    arr: np.ndarray
+    big: np.ndarray
+    phi: np.ndarray
+    guaranteed: np.ndarray
+    count: np.ndarray
+    first: np.ndarray
+    n0: np.ndarray
+    dm: np.ndarray
+    kappa: np.ndarray
+    rho: np.ndarray
+    lw: np.ndarray
+    live: np.ndarray
+    ka: np.ndarray  # 0 where not live
+    ia: np.ndarray
+    kb: np.ndarray  # 0 where not live; not clipped to the chain
+    ib: np.ndarray
+
+
+def _windows(cols, idx, ages, anchor, growth, m, delta, last) -> _Windows:
+    """The payment windows of items ``idx`` (as batch._payment_count and
+    discrete._discrete_values count them); ``last`` is each item's table's last age."""
+    frac = np.maximum(ages - anchor, 0.0)
+    u = cols.deferral[idx]
+    mf = m.astype(float)
+    arr = (cols.timing[idx] == 1).astype(np.int64)
+    horizon = last + 1.0 - (anchor + frac)
+    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
+    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
+    count = np.minimum(np.maximum(by_life, guaranteed),
+                       np.rint(cols.term[idx] * mf)).astype(np.int64)
+    first = np.minimum(guaranteed, count)
+    n0 = np.rint(u * mf).astype(np.int64) + arr
+    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
+    fm = frac * mf
+    big = np.floor(fm).astype(np.int64)
+    phi_ = fm - big
+    snap = phi_ >= 1.0 - mf * _SNAP
+    big = np.where(snap, big + 1, big)
+    phi_ = np.where(snap, phi_ - 1.0, phi_)
+    dq, dm = np.divmod(big + n0, m)
+    live = count > first
+    ka, ia = np.divmod(n0 + first + big, m)
+    kb, ib = np.divmod(n0 + count - 1 + big, m)
+    return _Windows(frac, u, mf, arr, big, phi_, guaranteed, count, first, n0, dm,
+                    np.exp(delta * big / mf - dq * growth), np.exp(-growth), growth - delta,
+                    live, np.where(live, ka, 0), ia, np.where(live, kb, 0), ib)
+
+
+def _guarantee(win: _Windows, m, growth, delta, alive):
+    """The guaranteed payments' value given P(alive at u) ``alive``: v^u times the
+    annuity-certain of each whole year, the years summed as a geometric series in closed
+    form, and of the part year."""
+    out = np.zeros(win.guaranteed.size)
+    g = np.flatnonzero(win.guaranteed > 0)
+    whole, part = np.divmod(win.guaranteed[g], m[g])
+    lam = delta - growth[g]
+    i = math.expm1(delta)
+    advance = win.arr[g] == 0
+    mf = win.mf[g]
+    years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
+        i, 1.0, m=mf, advance=advance)
+    tail = np.where(part > 0, np.exp(-lam * whole)
+                    * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
+    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -760,7 +914,27 @@ class _Slots:
             c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
             shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
             a, b = a - shift, b + shift
+        # Where the slots fall at the very end of the year (1 - s_i tiny: a life with a year
+        # of q = 1 and little of it left), A is a small difference of the prefix sums: sum
+        # its few slots directly instead (at most a couple: 1 - s_i < 1e-3 for every slot).
+        ill = a < _ILL * (a + b)
+        if ill.any():
+            w = np.flatnonzero(ill)
+            a = a.copy()
+            a[w] = _direct_a(lo_[w], hi[w], self.m[w], self.mf[w], self.dm[w], self.rho[w],
+                             self.kappa[w], self.phi[w], self.delta)
         return a, b
+
+
+def _direct_a(lo, hi, m, mf, dm, rho, kappa, phi, delta):
+    """sum c_i (1 - s_i) over the slots lo <= i < hi, slot by slot."""
+    out = np.zeros(lo.size)
+    for step in range(int((hi - lo).max(initial=0))):
+        i = lo + step
+        term = (kappa * np.where(i < dm, rho, 1.0) * np.exp(-delta * i / mf)
+                * np.where(phi + i < 0, 1.0, ((m - i) - phi) / mf))
+        out += np.where(i < hi, term, 0.0)
+    return out
 
 
 def _offsets(m, offset):

@@ -481,3 +481,20 @@ def test_a_curve_leaves_continuous_items_to_the_general_path():
     want = value_annuities(tables, cols.to_items(), Valuation(curve), fast=False)
     assert got.method_code.tolist() == want.method_code.tolist() == [INTEGRAL, EXACT_SUM]
     np.testing.assert_allclose(got.value, want.value, rtol=RTOL, atol=0)
+
+
+@pytest.mark.parametrize("size", [1, 2, 5, 8, 9])
+def test_small_batches_with_continuous_items(size):
+    # Small UDD batches of discrete items are valued in plain floats (service.engine.small);
+    # a continuous item among them must still be valued as continuous.
+    tables = [models.susm()]
+    rng = np.random.default_rng(size)
+    items = []
+    for n in range(size):
+        timing = "continuous" if n % 2 == 0 else str(rng.choice(["advance", "arrears"]))
+        items.append(Item((Life(float(rng.uniform(40, 95))),),
+                          Payments(timing, 12, term=float(rng.integers(1, 30)),
+                                   deferral=float(rng.integers(0, 5)), escalation=0.01)))
+    got = _assert_same(tables, items, Valuation(0.04))
+    assert got.method_code.tolist() == [INTEGRAL if n % 2 == 0 else EXACT_SUM
+                                        for n in range(size)]
