@@ -290,11 +290,12 @@ def _before(x, y):
 
 
 def _parts(h0, h1, gamma):
-    """The parts [h0, h1] before and after gamma (positions as hi + lo) of a year of age:
-    (start, 1 - end, length) of each, the length 0 where a part is empty."""
+    """The parts of [h0, h1] (h0 <= h1; positions as hi + lo) of a year of age before and
+    after gamma: (start, 1 - end, length) of each, the length 0 where a part is empty."""
+    split_in = _where(_before(h1, gamma), h1, gamma)  # the end of the part before gamma
+    split_out = _where(_before(h0, gamma), gamma, h0)  # the start of the part after it
     out = []
-    for a, b in ((_where(_before(h0, gamma), h0, gamma), _where(_before(h1, gamma), h1, gamma)),
-                 (_where(_before(h0, gamma), gamma, h0), _where(_before(h1, gamma), gamma, h1))):
+    for a, b in ((h0, split_in), (split_out, h1)):
         length = np.maximum((b[0] - a[0]) + (b[1] - a[1]), 0.0)
         rest = np.clip((1.0 - b[0]) - b[1], 0.0, 1.0)
         out.append((np.clip(a[0] + a[1], 0.0, 1.0), rest, length))
