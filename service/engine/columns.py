@@ -513,7 +513,8 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
         raise ItemError(found)
     fast = covered(valuation, cols.frequency, cols.timing)
     rest = np.flatnonzero(~fast)
-    fast_work = int(_work(tables, cols.take(fast), valuation.fractional_age).sum())
+    mine = cols if not rest.size else cols.take(fast)
+    fast_work = int(_work(tables, mine, valuation.fractional_age).sum())
     values = np.zeros(len(cols))
     if rest.size:
         left = None if max_work is None else max_work - fast_work
@@ -529,10 +530,11 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
         if max_work is not None and fast_work > max_work:
             raise WorkLimitError(fast_work, max_work)
         code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
-    which = np.flatnonzero(fast)
-    if which.size:
-        values[which] = _value(tables, cols.take(which), valuation, deadline)
-        code[which] = np.where(cols.timing[which] == CONTINUOUS, INTEGRAL, EXACT_SUM)
+    if not rest.size:
+        values = _value(tables, cols, valuation, deadline)
+    elif len(mine):
+        values[fast] = _value(tables, mine, valuation, deadline)
+    code[fast] = np.where(cols.timing[fast] == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
 
 
@@ -869,16 +871,23 @@ def _guarantee(win: _Windows, m, growth, delta, alive):
     form, and of the part year."""
     out = np.zeros(win.guaranteed.size)
     g = np.flatnonzero(win.guaranteed > 0)
-    whole, part = np.divmod(win.guaranteed[g], m[g])
-    lam = delta - growth[g]
+    # The certain part depends only on (payments, m, timing, escalation): computed once for
+    # each distinct one (a batch has few).
+    rates, by_rate = np.unique(growth[g], return_inverse=True)
+    shape = (win.guaranteed[g] * (2 * MAX_FREQUENCY + 2) + m[g] * 2 + win.arr[g]) \
+        * rates.size + by_rate
+    _, first, back = np.unique(shape, return_index=True, return_inverse=True)
+    u = g[first]
+    whole, part = np.divmod(win.guaranteed[u], m[u])
+    lam = delta - growth[u]
     i = math.expm1(delta)
-    advance = win.arr[g] == 0
-    mf = win.mf[g]
+    advance = win.arr[u] == 0
+    mf = win.mf[u]
     years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
         i, 1.0, m=mf, advance=advance)
     tail = np.where(part > 0, np.exp(-lam * whole)
                     * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
-    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)
+    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)[back]
     return out
 
 
