@@ -309,7 +309,9 @@ def _weights(ranges, delta, gamma, rho, kappa):
     With L = b - a and phi_n at delta L: I(h; a, b) = e^(-delta a) L [a phi_0 + L phi_1] and
     I(1 - h; a, b) = e^(-delta a) L [((1 - b) + L) phi_0 - L phi_1], 1 - b and L each
     carried to rounding of itself (so that a part ending near the end of the year keeps its
-    precision) and phi_0 - phi_1 > phi_0 / 2, so that the difference loses a bit at most."""
+    precision); phi_0 - phi_1 = int_0^1 (1 - v) e^(-delta L v) dv is at least 0.4 phi_0
+    while delta L >= -1 (rates of interest above -63%), so the difference loses a bit or
+    two at most."""
     n = len(ranges)
     h0 = tuple(np.concatenate([r[0][j] for r in ranges]) for j in (0, 1))
     h1 = tuple(np.concatenate([r[1][j] for r in ranges]) for j in (0, 1))
