@@ -33,7 +33,7 @@ from service.engine.tables import MortalityTable
 from tests.reference import models
 
 ASSUMPTIONS = ("udd", "constant-force", "balducci")
-RATES = (0.04, 0.0, 1e-13, 1e-7, -0.02, 0.25)
+RATES = (0.04, 0.0, 1e-13, 1e-7, -0.02, -0.4, 0.25)
 RTOL = 1e-12
 
 
