@@ -348,19 +348,30 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
     ages = rng.uniform(55, 85, BATCH)
     sexes = rng.integers(0, 2, BATCH)
     annual = engine.prepare(simple_columns(ages, sexes, "advance", 1))
-    # Columns hold discrete timings only: continuous payments go as items.
-    continuous = to_items(simple_columns(ages, sexes, "continuous", 1))
+    # Continuous payments through the same interface as the annual ones (columns where they
+    # exist), guarded against the general path (segment by segment).
+    continuous_cols = simple_columns(ages, sexes, "continuous", 1)
+    continuous = engine.prepare(continuous_cols)
+    continuous_items = to_items(continuous_cols)
+    continuous_between = relative_difference(
+        engine.value(continuous),
+        value_annuities(tables, continuous_items, valuation, fast=False).value)
+    if not continuous_between <= COLUMNS_AGREEMENT:
+        failures.append(f"continuous payments: the engine differs from the general path by "
+                        f"{continuous_between:.3g} (tolerance {COLUMNS_AGREEMENT:g})")
     partner = np.clip(ages + rng.uniform(-5, 5, BATCH), 40, 110)
     pairs = [Item((Life(float(a), int(s)), Life(float(b), 1 - int(s))), Payments("advance", 1))
              for a, b, s in zip(ages, partner, sexes, strict=True)]
     tasks6 = {"annual": lambda: engine.value(annual),
               "two lives": lambda: value_annuities(tables, pairs, valuation),
-              "continuous": lambda: value_annuities(tables, continuous, valuation).value}
+              "continuous": lambda: engine.value(continuous)}
     items_annual = None
     if engine.api != "value_annuities":
         items_annual = to_items(simple_columns(ages, sexes, "advance", 1))
         tasks6["annual, value_annuities"] = lambda: value_annuities(tables, items_annual,
                                                                     valuation)
+        tasks6["continuous, value_annuities"] = lambda: value_annuities(
+            tables, continuous_items, valuation)
     s6 = side_by_side(tasks6, repeats)
 
     def paired(top, bottom):
@@ -376,6 +387,12 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
                          median(s6["two lives"]) / BATCH, "s per item",
                          floor=median(s6["annual, value_annuities"]) / BATCH,
                          ratio=paired("two lives", "annual, value_annuities")))
+        f6.append(Figure(f"floors: continuous / single-life annual, both through "
+                         f"value_annuities (Item objects), batches of {BATCH:,}",
+                         median(s6["continuous, value_annuities"]) / BATCH, "s per item",
+                         floor=median(s6["annual, value_annuities"]) / BATCH,
+                         ratio=paired("continuous, value_annuities",
+                                      "annual, value_annuities")))
     figures += [f1, guard, f2, f2m, f3, *f6]
 
     # Sweeps for the plots: time against items, and against a monthly term.
@@ -437,7 +454,10 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
         "years, annual in advance (two lives as Item objects through `value_annuities`, which "
         "sends them to the two-life column path, service/engine/joint_columns.py; the time "
         "includes reading the items); the ratio is "
-        "the median of each round's ratio.",
+        "the median of each round's ratio. Continuous payments go through the same "
+        "interface as the annual ones; guard: they agree with the general path "
+        f"(`value_annuities(..., fast=False)`) to {continuous_between:.2g} relative "
+        f"(tolerance {COLUMNS_AGREEMENT:g}).",
         "",
         "Seconds of each repeat: " + "; ".join(
             f"{name} {what}: " + ", ".join(f"{t:.4g}" for t in times)

@@ -1,4 +1,4 @@
-"""Single-life discrete annuities valued from columns, on shared chains of survival.
+"""Single-life annuities valued from columns, on shared chains of survival.
 
 A batch given as columns (:class:`Columns`: one numpy array per field) is valued without a
 Python object per item, and :func:`service.engine.annuity.value_annuities` sends the items
@@ -48,18 +48,23 @@ P(alive at u) v^u times sum_k ((1 + r) v)^k a(1) over its whole years, a(1) the
 annuity-certain of one year paid m-thly, plus its part year; the geometric sum is taken in
 closed form.
 
-Not covered here (the general path values them): two lives, continuous payments, interest
-structures other than one flat rate, Woolhouse's approximation with m > 1, and items whose
+Continuous payments (timing code 2; their frequency is ignored, as by the general path) are
+valued by :mod:`service.engine.continuous_columns` on the same kind of chains, under every
+fractional-age assumption, with the general path's method code (INTEGRAL).
+
+Not covered here (the general path values them): two lives, interest structures other than
+one flat rate, Woolhouse's approximation with m > 1 (discrete payments), and items whose
 sensitivities are wanted.
 """
 
 import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 
-from service.engine import annuity
+from service.engine import annuity, small
 from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.checks import _check_item
@@ -68,6 +73,7 @@ from service.engine.integrals import phi
 from service.engine.interest import annuity_certain
 from service.engine.items import (
     EXACT_SUM,
+    INTEGRAL,
     MAX_FREQUENCY,
     START_REQUIREMENTS,
     Item,
@@ -79,7 +85,9 @@ from service.engine.items import (
 from service.engine.survival import build_lives, fraction_survival
 
 #: Timing codes of :attr:`Columns.timing`; any other code is an invalid timing.
-TIMING_CODES = ("advance", "arrears")
+TIMING_CODES = ("advance", "arrears", "continuous")
+#: The code of continuous payments.
+CONTINUOUS = 2
 FIELDS = ("table", "age", "duration", "age_adjustment", "mortality_multiplier", "flat_extra",
           "timing", "frequency", "term", "deferral", "guarantee", "escalation")
 _DEFAULTS = {"table": 0, "duration": math.nan, "age_adjustment": 0.0,
@@ -95,15 +103,19 @@ _CHUNK_PAIRS = 200_000
 #: An item whose cumulative difference subtracts more than this many times its value sums
 #: its whole years directly instead.
 _CANCELLATION = 64.0
+#: A slot range whose sum of c_i (1 - s_i) is below this share of its sum of c_i is summed
+#: slot by slot (see _Slots.weights).
+_ILL = 1e-3
 
 
 @dataclass(frozen=True, eq=False)
 class Columns:
-    """Single-life discrete annuity items, one array per field (all the same length).
+    """Single-life annuity items, one array per field (all the same length).
 
     ``table`` indexes the tables; ``duration`` is NaN for ultimate; ``timing`` holds codes
-    (0 advance, 1 arrears, see ``TIMING_CODES``; -1 an unknown timing); ``frequency`` is
-    payments a year (whole numbers); ``term`` is inf for life. Amounts are per 1 p.a.
+    (0 advance, 1 arrears, 2 continuous, see ``TIMING_CODES``; -1 an unknown timing);
+    ``frequency`` is payments a year (whole numbers; ignored for continuous payments);
+    ``term`` is inf for life. Amounts are per 1 p.a.
     Build with :meth:`from_dict`, :meth:`from_frame` or :meth:`from_items`.
     """
 
@@ -174,12 +186,12 @@ class Columns:
     @classmethod
     def from_items(cls, items) -> "Columns":
         """Build from engine :class:`~service.engine.annuity.Item` objects, each with one life
-        and discrete payments (ValueError otherwise)."""
+        (ValueError otherwise)."""
         rows = []
         for n, item in enumerate(items):
             row = _item_row(item)
             if row is None:
-                raise ValueError(f"item {n} is not a single-life item with discrete payments")
+                raise ValueError(f"item {n} is not a single-life item")
             rows.append(row)
         return _from_rows(rows)
 
@@ -194,7 +206,7 @@ class Columns:
 
 class ItemBatch(Sequence):
     """A batch of engine items held partly as columns: the items at ``rows`` (ascending
-    places) are single-life discrete items with start_requires 'any' and the usual
+    places) are single-life items with start_requires 'any' and the usual
     survivorship, given by ``columns``; the others are :class:`Item` objects in ``others``
     (by place). Indexing gives each place's :class:`Item` (built on demand), so it serves
     wherever a list of items does; :func:`dispatch` values the column rows without one."""
@@ -226,27 +238,27 @@ class ItemBatch(Sequence):
 def _timing_codes(value) -> np.ndarray:
     if value.dtype.kind in "iuf":
         codes = np.asarray(value, dtype=float)
-        ok = np.isin(codes, (0, 1))
+        ok = np.isin(codes, (0, 1, CONTINUOUS))
         return np.where(ok, codes, -1).astype(np.int8)
     text = value.astype(str)
-    if np.any(text == "continuous"):
-        raise ValueError("columns hold discrete timings only (advance, arrears); value "
-                         "continuous payments with value_annuities")
-    return np.select([text == "advance", text == "arrears"], [0, 1], -1).astype(np.int8)
+    return np.select([text == name for name in TIMING_CODES], range(len(TIMING_CODES)),
+                     -1).astype(np.int8)
 
 
 def _item_row(item) -> tuple | None:
-    """The columns of one item, or None where it is not single-life and discrete."""
+    """The columns of one item, or None where it is not single-life (a continuous item's
+    frequency, which nothing reads, is kept where it is a whole number and 1 otherwise)."""
     if len(item.lives) != 1:
         return None
     p = item.payments
     code = TIMING_CODES.index(p.timing) if p.timing in TIMING_CODES else -1
-    if p.timing == "continuous":
-        return None
+    frequency = p.frequency
+    if code == CONTINUOUS and type(frequency) is not int:
+        frequency = 1
     life = item.lives[0]
     return (life.table, life.age, math.nan if life.duration is None else life.duration,
             life.age_adjustment, life.mortality_multiplier, life.flat_extra, code,
-            p.frequency, math.inf if p.term is None else p.term, p.deferral, p.guarantee,
+            frequency, math.inf if p.term is None else p.term, p.deferral, p.guarantee,
             p.escalation)
 
 
@@ -281,7 +293,7 @@ def _row_item(cols: Columns, n: int) -> Item:
                 age_adjustment=float(cols.age_adjustment[n]),
                 mortality_multiplier=float(cols.mortality_multiplier[n]),
                 flat_extra=float(cols.flat_extra[n]))
-    pay = Payments(timing=TIMING_CODES[code] if code in (0, 1) else "unknown",
+    pay = Payments(timing=TIMING_CODES[code] if 0 <= code < len(TIMING_CODES) else "unknown",
                    frequency=_whole_or_float(float(cols.frequency[n])),
                    term=None if term == math.inf else term, deferral=float(cols.deferral[n]),
                    guarantee=float(cols.guarantee[n]), escalation=float(cols.escalation[n]))
@@ -301,9 +313,10 @@ def _multiple(value, m):
 def _field_suspects(cols: Columns) -> np.ndarray:
     """Rows that may fail the general path's item checks (a superset)."""
     m = cols.frequency
+    cont = cols.timing == CONTINUOUS  # (no frequency, no whole periods)
     with np.errstate(invalid="ignore"):
         good_m = (m == np.round(m)) & (m >= 1) & (m <= MAX_FREQUENCY)
-        bad = ~np.isin(cols.timing, (0, 1)) | ~good_m
+        bad = ~np.isin(cols.timing, (0, 1, CONTINUOUS)) | ~(good_m | cont)
         for v in (cols.deferral, cols.guarantee):
             bad |= ~(np.isfinite(v) & (v >= 0))
         life = np.isinf(cols.term) & (cols.term > 0)
@@ -312,7 +325,7 @@ def _field_suspects(cols: Columns) -> np.ndarray:
         bad |= ~life & (cols.guarantee > cols.term * (1 + 1e-12))
         safe_m = np.where(good_m, m, 1.0)
         for v in (np.where(life, 0.0, cols.term), cols.deferral, cols.guarantee):
-            bad |= ~_multiple(v, safe_m)
+            bad |= ~cont & ~_multiple(v, safe_m)
         bad |= ~np.isfinite(cols.age + cols.age_adjustment)
         mult = cols.mortality_multiplier
         bad |= ~(np.isfinite(mult) & (mult >= 0))
@@ -364,7 +377,8 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
             sel = anchor[rows] - dkey[rows]
             suspect[rows] |= (sel < table.select_first_age) | (sel > table.select_last_age)
     ok = ~suspect
-    if ok.any():
+    # (Under UDD no life is dead at its age: 1 - f q >= 1 - f > 0, the fraction f < 1.)
+    if ok.any() and assumption != "udd":
         q0 = _year_rates(tables, t[ok], anchor[ok], dkey[ok], cols.mortality_multiplier[ok],
                          cols.flat_extra[ok], np.zeros(int(ok.sum()), dtype=np.int64))
         frac = np.maximum(ages[ok] - anchor[ok], 0.0)
@@ -385,45 +399,85 @@ def _year_rates(tables, t, anchor, dkey, mult, extra, k):
     broadcast: select rates within the select period, the multiplier and flat extra applied
     and capped at 1, and q = 1 from the table's last age (as build_lives)."""
     t, anchor, dkey, mult, extra, k = np.broadcast_arrays(t, anchor, dkey, mult, extra, k)
-    out = np.ones(t.shape)
-    for ti, table in enumerate(tables):
-        rows = t == ti
-        if not rows.any():
-            continue
-        age = anchor[rows] + k[rows]
-        index = age - table.first_age
-        base = np.where(index < len(table.q), table.q[np.clip(index, 0, len(table.q) - 1)],
-                        1.0)
-        period = table.select_period
-        if period:
-            d = dkey[rows]
-            dur = d + k[rows]
-            sel = (d >= 0) & (dur < period)
-            srow = np.clip(anchor[rows] - d - table.select_first_age, 0,
-                           table.select_q.shape[0] - 1)
-            base = np.where(sel, table.select_q[srow, np.clip(dur, 0, period - 1)], base)
-        out[rows] = np.where(age >= table.last_age, 1.0,
-                             np.minimum(base * mult[rows] + extra[rows], 1.0))
-    return out
+    flat = _flat_rates(tuple(tables))
+    age = anchor + k
+    base = flat.q[flat.offset[t] + np.clip(age - flat.first[t], 0, flat.length[t] - 1)]
+    if flat.select is not None:
+        period = flat.period[t]
+        dur = dkey + k
+        sel = (dkey >= 0) & (dur < period)
+        if sel.any():
+            srow = np.clip(anchor - dkey - flat.select_first[t], 0, flat.select_rows[t] - 1)
+            at = flat.select_offset[t] + srow * period + np.clip(dur, 0, period - 1)
+            base = np.where(sel, flat.select[np.where(sel, at, 0)], base)
+    return np.where(age >= flat.last[t], 1.0, np.minimum(base * mult + extra, 1.0))
+
+
+@dataclass(frozen=True, eq=False)
+class _FlatRates:
+    """Every table's ultimate rates end to end, and its select rates flattened row by row,
+    with each table's offsets, ages and sizes (indexed by table)."""
+
+    q: np.ndarray
+    offset: np.ndarray
+    first: np.ndarray
+    length: np.ndarray
+    last: np.ndarray
+    select: np.ndarray | None  # None where no table has select rates
+    select_offset: np.ndarray
+    select_first: np.ndarray
+    select_rows: np.ndarray
+    period: np.ndarray
+
+
+@lru_cache(maxsize=32)
+def _flat_rates(tables: tuple) -> _FlatRates:
+    lengths = [len(tb.q) for tb in tables]
+    sizes = [tb.select_q.size if tb.select_period else 0 for tb in tables]
+    flat = [tb.select_q.ravel() for tb, size in zip(tables, sizes, strict=True) if size]
+    return _FlatRates(
+        q=np.concatenate([tb.q for tb in tables]),
+        offset=np.concatenate([[0], np.cumsum(lengths)[:-1]]).astype(np.int64),
+        first=np.array([tb.first_age for tb in tables], dtype=np.int64),
+        length=np.array(lengths, dtype=np.int64),
+        last=np.array([tb.last_age for tb in tables], dtype=np.int64),
+        select=np.concatenate(flat) if flat else None,
+        select_offset=np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64),
+        select_first=np.array([tb.select_first_age for tb in tables], dtype=np.int64),
+        select_rows=np.array([max(tb.select_q.shape[0], 1) for tb in tables], dtype=np.int64),
+        period=np.array([tb.select_period for tb in tables], dtype=np.int64))
 
 
 # ---------------------------------------------------------------------------------------------
 # Valuation
 
 
-def covered(valuation: Valuation, frequency) -> np.ndarray:
-    """Which items (by payments a year) this module values under ``valuation``."""
+def covered(valuation: Valuation, frequency, timing=None) -> np.ndarray:
+    """Which items (by payments a year, and timing codes where given) this module values
+    under ``valuation``."""
     frequency = np.asarray(frequency)
     if valuation.curve.kind != "flat":
         return np.zeros(frequency.shape, dtype=bool)
-    return (valuation.approximation == "exact") | (frequency == 1)
+    out = (valuation.approximation == "exact") | (frequency == 1)
+    if timing is not None:
+        out = out | (np.asarray(timing) == CONTINUOUS)
+    return out
 
 
 def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
     """Work units: one an item under UDD (a few sums on shared columns); under the other
-    assumptions the per-year pass sums every payment date, as the general path does."""
+    assumptions the per-year pass sums every payment date, as the general path does
+    (continuous items: see :func:`service.engine.continuous_columns.work`)."""
     if assumption == "udd":
         return np.ones(len(cols), dtype=np.int64)
+    cont = cols.timing == CONTINUOUS
+    if cont.any():
+        from service.engine import continuous_columns
+
+        out = np.zeros(len(cols), dtype=np.int64)
+        out[cont] = continuous_columns.work(tables, cols.take(cont), assumption)
+        out[~cont] = _work(tables, cols.take(~cont), assumption)
+        return out
     m = cols.frequency
     ages = cols.age + cols.age_adjustment
     last = np.array([tb.last_age for tb in tables], dtype=float)[cols.table]
@@ -435,7 +489,7 @@ def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
 
 def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None = None,
                   deadline: float | None = None) -> Values:
-    """Return the present value of 1 p.a. of each single-life discrete item in ``columns``
+    """Return the present value of 1 p.a. of each single-life item in ``columns``
     (a :class:`Columns`, a mapping of arrays or a pandas DataFrame), and its method code.
 
     Items this module does not cover under ``valuation`` (see :func:`covered`) are valued
@@ -444,12 +498,23 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     :func:`service.engine.annuity.value_annuities`.
     """
     cols = _as_columns(columns)
+    rows = (list(zip(*(getattr(cols, name).tolist() for name in FIELDS), strict=True))
+            if _small_covered(valuation, len(cols)) else ())
+    exact = valuation.approximation == "exact"
+    if rows and all(row[6] in (0, 1) and (exact or row[7] == 1) for row in rows):  # (timing
+        # codes; frequencies Woolhouse leaves to exact sums)
+        values = _value_small(tables, rows, [_row_item(cols, n) for n in range(len(cols))],
+                              valuation, max_work, deadline, lambda: problems(
+                                  tables, cols, valuation.fractional_age))
+        return Values(np.array(values), np.full(len(cols), EXACT_SUM, dtype=np.int8),
+                      methods(valuation))
     found = problems(tables, cols, valuation.fractional_age)
     if found:
         raise ItemError(found)
-    fast = covered(valuation, cols.frequency)
+    fast = covered(valuation, cols.frequency, cols.timing)
     rest = np.flatnonzero(~fast)
-    fast_work = int(_work(tables, cols.take(fast), valuation.fractional_age).sum())
+    mine = cols if not rest.size else cols.take(fast)
+    fast_work = int(_work(tables, mine, valuation.fractional_age).sum())
     values = np.zeros(len(cols))
     if rest.size:
         left = None if max_work is None else max_work - fast_work
@@ -465,9 +530,11 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
         if max_work is not None and fast_work > max_work:
             raise WorkLimitError(fast_work, max_work)
         code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
-    which = np.flatnonzero(fast)
-    if which.size:
-        values[which] = _value(tables, cols.take(which), valuation, deadline)
+    if not rest.size:
+        values = _value(tables, cols, valuation, deadline)
+    elif len(mine):
+        values[fast] = _value(tables, mine, valuation, deadline)
+    code[fast] = np.where(cols.timing[fast] == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
 
 
@@ -496,6 +563,13 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     from service.engine import joint_columns  # (it builds on this module)
 
     exact = valuation.approximation == "exact"
+    if _small_covered(valuation, len(items)):
+        rows = [_item_row(item) if _plain(item, exact) else None for item in items]
+        if all(row is not None and row[6] != CONTINUOUS for row in rows):  # (discrete)
+            values = _value_small(tables, rows, items, valuation, max_work, deadline,
+                                  lambda: _found(tables, items, valuation))
+            return Values(np.array(values), np.full(len(items), EXACT_SUM, dtype=np.int8),
+                          methods(valuation))
     rows, which = [], []
     given = None
     if isinstance(items, ItemBatch):
@@ -504,18 +578,13 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     else:
         listed = enumerate(items)
     for n, item in listed:
-        p = item.payments
-        if (p.timing in TIMING_CODES and len(item.lives) == 1 and type(p.frequency) is int
-                and (exact or p.frequency == 1)
-                and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
-                and type(item.lives[0].table) is int
-                and item.start_requires in START_REQUIREMENTS
-                and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)):
+        if _plain(item, exact):
             rows.append(_item_row(item))
             which.append(n)
     if given is not None:
-        take = given.rows if exact else given.rows[given.columns.frequency == 1]
-        part = given.columns if exact else given.columns.take(given.columns.frequency == 1)
+        held = covered(valuation, given.columns.frequency, given.columns.timing)
+        take = given.rows[held]
+        part = given.columns.take(held)
         if rows:
             places = np.concatenate([take, np.array(which, dtype=np.intp)])
             order = np.argsort(places, kind="stable")
@@ -555,7 +624,62 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     elif max_work is not None and fast_work > max_work:
         raise WorkLimitError(fast_work, max_work)
     values[which] = _value(tables, cols, valuation, deadline)
+    code[which] = np.where(cols.timing == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
+
+
+def _plain(item, exact: bool) -> bool:
+    """Whether ``item`` is a single-life item this module values (one the general path
+    would accept as such: whole frequency (discrete payments) and duration, a table index,
+    known start requirement, survivorship amounts in [0, 1])."""
+    p = item.payments
+    return (p.timing in TIMING_CODES and len(item.lives) == 1
+            and (p.timing == "continuous"
+                 or (type(p.frequency) is int and (exact or p.frequency == 1)))
+            and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
+            and type(item.lives[0].table) is int
+            and item.start_requires in START_REQUIREMENTS
+            and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship))
+
+
+def _small_covered(valuation: Valuation, size: int) -> bool:
+    """Whether a batch of ``size`` covered items goes to :mod:`service.engine.small`."""
+    return (0 < size <= small.SMALL_BATCH and valuation.fractional_age == "udd"
+            and valuation.curve.kind == "flat")
+
+
+def _found(tables, items, valuation: Valuation) -> dict:
+    """The general path's problems with ``items`` (empty when there is none)."""
+    try:
+        _prepare(tables, items, valuation)
+    except ItemError as error:
+        return error.errors
+    return {}
+
+
+def _value_small(tables, rows, items, valuation: Valuation, max_work, deadline,
+                 find) -> list[float]:
+    """Value a few covered rows in plain floats, after the checks the column path makes:
+    each item's own (``_check_item``), then its table index, then its life under its table
+    (where a row is suspect, ``find()`` words the problems, as the path it stands in for)."""
+    errors: dict[str, list[str]] = {}
+    for n, item in enumerate(items):
+        for path, msgs in _check_item(item).items():
+            errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    if errors:
+        raise ItemError(errors)
+    bad = [n for n, row in enumerate(rows) if not 0 <= row[0] < len(tables)]
+    if bad:
+        raise ItemError({f"{n}.lives.0.sex": ["no table for this life in the basis"]
+                         for n in bad})
+    if any(small.suspect(tables, row) for row in rows):
+        found = find()
+        if found:
+            raise ItemError(found)
+    if max_work is not None and len(rows) > max_work:
+        raise WorkLimitError(len(rows), max_work)  # one unit an item under UDD (_work)
+    _on_time(deadline)
+    return small.value_rows(tables, rows, valuation.curve.constant_force)
 
 
 def _slot_tables(ms, delta):
@@ -575,21 +699,41 @@ def _slot_tables(ms, delta):
 
 
 def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
-    """Values of validated, covered items (flat rate; exact sums)."""
+    """Values of validated, covered items (flat rate; exact sums, or continuous)."""
     n = len(cols)
     values = np.zeros(n)
     if not n:
+        return values
+    cont = cols.timing == CONTINUOUS
+    if cont.any():
+        from service.engine import continuous_columns
+
+        values[cont] = continuous_columns.value(tables, cols.take(cont), valuation,
+                                                deadline)
+        if not cont.all():
+            values[~cont] = _value(tables, cols.take(~cont), valuation, deadline)
         return values
     ages = cols.age + cols.age_adjustment
     anchor = np.floor(ages + _SNAP).astype(np.int64)
     dkey = _select_key(tables, cols.table, cols.duration)
     growth = np.log1p(cols.escalation)
-    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
-                        cols.table))
     m_all = cols.frequency.astype(np.int64)
     delta = valuation.curve.constant_force
     ms = np.unique(m_all).tolist()
     slots = _slot_tables(ms, delta)
+    done = None
+    if valuation.fractional_age == "udd":
+        from service.engine import commutation  # (it builds on this module)
+
+        values, done = commutation.value(tables, cols, ages, anchor, dkey, growth, m_all,
+                                         delta, slots, deadline)
+        if done.all():
+            return values
+    order = np.lexsort((growth, anchor, cols.flat_extra, cols.mortality_multiplier, dkey,
+                        cols.table))
+    if done is not None:
+        order = order[~done[order]]  # the rest on chains of their own
+        n = order.size
     for start in range(0, n, _CHUNK_ITEMS):
         _on_time(deadline)
         idx = order[start:start + _CHUNK_ITEMS]
@@ -619,32 +763,11 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                     mult[rep][:, None], extra[rep][:, None], k)
     cum = np.ones((rep.size, width + 1))
     cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
-    frac = np.maximum(ages - anchor, 0.0)
-    start = fraction_survival(q[chain, 0], frac, assumption)
-
-    # Payment windows (as batch._payment_count and discrete._discrete_values).
-    u = cols.deferral[idx]
-    mf = m.astype(float)
-    arr = (cols.timing[idx] == 1).astype(np.int64)
-    horizon = last[t] + 1.0 - (anchor + frac)
-    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
-    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
-    count = np.minimum(np.maximum(by_life, guaranteed),
-                       np.rint(cols.term[idx] * mf)).astype(np.int64)
-    first = np.minimum(guaranteed, count)
-    n0 = np.rint(u * mf).astype(np.int64) + arr
-
-    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
-    fm = frac * mf
-    big = np.floor(fm).astype(np.int64)
-    phi_ = fm - big
-    snap = phi_ >= 1.0 - mf * _SNAP
-    big = np.where(snap, big + 1, big)
-    phi_ = np.where(snap, phi_ - 1.0, phi_)
-    dq, dm = np.divmod(big + n0, m)
-    kappa = np.exp(delta * big / mf - dq * growth)
-    rho = np.exp(-growth)
-    lw = growth - delta  # ln w
+    start = fraction_survival(q[chain, 0], np.maximum(ages - anchor, 0.0), assumption)
+    win = _windows(cols, idx, ages, anchor, growth, m, delta, last[t])
+    frac, u, mf, arr, big, phi_, guaranteed, n0 = (
+        win.frac, win.u, win.mf, win.arr, win.big, win.phi, win.guaranteed, win.n0)
+    kappa, rho, lw = win.kappa, win.rho, win.lw
 
     values = np.zeros(size)
     # The guarantee: P(alive at u) v^u sum over its years, in closed form.
@@ -656,24 +779,14 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
         ku = np.clip(ku, 0, width).astype(np.intp)
         alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
                                                    assumption) / start
-        whole, part = np.divmod(guaranteed, m)
-        lam = delta - growth
-        i = math.expm1(delta)
-        advance = arr == 0
-        years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
-            i, 1.0, m=mf, advance=advance)
-        tail = np.where(part > 0, np.exp(-lam * whole)
-                        * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
-        values += np.where(has_g, alive * np.exp(-delta * u) * (years + tail), 0.0)
+        values += _guarantee(win, m, growth, delta, alive)
 
-    live = count > first
+    live = win.live
     if not live.any():
         return values
-    ka, ia = np.divmod(n0 + first + big, m)
-    kb, ib = np.divmod(n0 + count - 1 + big, m)
-    ka = np.where(live, ka, 0)
-    kb = np.where(live, np.minimum(kb, width - 1), 0)
-    ctx = _Slots(m, mf, dm, rho, kappa, phi_, slots, delta)
+    ka, ia, ib = win.ka, win.ia, win.ib
+    kb = np.where(live, np.minimum(win.kb, width - 1), 0)
+    ctx = _Slots(m, mf, win.dm, rho, kappa, phi_, slots, delta)
     life = np.zeros(size)
     if assumption == "udd":
         cum2 = np.concatenate([cum, np.zeros((rep.size, 1))], axis=1)  # C up to width + 1
@@ -694,6 +807,91 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
                          (frac, u, n0 - arr, big))
     values += np.where(live, life / (mf * start), 0.0)
     return values
+
+
+@dataclass(frozen=True, eq=False)
+class _Windows:
+    """Each item's payments as periods and slots (see the module docstring): the fraction
+    f of its age, its deferral u, m as a float, 1 in arrears, G = floor(f m) and phi (snapped
+    as the general path's ages), the guaranteed payments, the periods evaluated (count; the
+    life-contingent ones from ``first``), n0 = U + arr, D = m dq + dm, kappa, rho =
+    1 / (1 + r), ln w; the first and last life-contingent payments as (year of age, slot)."""
+
+    frac: np.ndarray
+    u: np.ndarray
+    mf: np.ndarray
+    arr: np.ndarray
+    big: np.ndarray
+    phi: np.ndarray
+    guaranteed: np.ndarray
+    count: np.ndarray
+    first: np.ndarray
+    n0: np.ndarray
+    dm: np.ndarray
+    kappa: np.ndarray
+    rho: np.ndarray
+    lw: np.ndarray
+    live: np.ndarray
+    ka: np.ndarray  # 0 where not live
+    ia: np.ndarray
+    kb: np.ndarray  # 0 where not live; not clipped to the chain
+    ib: np.ndarray
+
+
+def _windows(cols, idx, ages, anchor, growth, m, delta, last) -> _Windows:
+    """The payment windows of items ``idx`` (as batch._payment_count and
+    discrete._discrete_values count them); ``last`` is each item's table's last age."""
+    frac = np.maximum(ages - anchor, 0.0)
+    u = cols.deferral[idx]
+    mf = m.astype(float)
+    arr = (cols.timing[idx] == 1).astype(np.int64)
+    horizon = last + 1.0 - (anchor + frac)
+    by_life = np.maximum(np.floor(np.maximum(horizon - u, -1.0) * mf + _EPS) + 1, 0)
+    guaranteed = np.rint(cols.guarantee[idx] * mf).astype(np.int64)
+    count = np.minimum(np.maximum(by_life, guaranteed),
+                       np.rint(cols.term[idx] * mf)).astype(np.int64)
+    first = np.minimum(guaranteed, count)
+    n0 = np.rint(u * mf).astype(np.int64) + arr
+    # Slots: G = floor(f m), phi = f m - G (snapped as the general path's ages).
+    fm = frac * mf
+    big = np.floor(fm).astype(np.int64)
+    phi_ = fm - big
+    snap = phi_ >= 1.0 - mf * _SNAP
+    big = np.where(snap, big + 1, big)
+    phi_ = np.where(snap, phi_ - 1.0, phi_)
+    dq, dm = np.divmod(big + n0, m)
+    live = count > first
+    ka, ia = np.divmod(n0 + first + big, m)
+    kb, ib = np.divmod(n0 + count - 1 + big, m)
+    return _Windows(frac, u, mf, arr, big, phi_, guaranteed, count, first, n0, dm,
+                    np.exp(delta * big / mf - dq * growth), np.exp(-growth), growth - delta,
+                    live, np.where(live, ka, 0), ia, np.where(live, kb, 0), ib)
+
+
+def _guarantee(win: _Windows, m, growth, delta, alive):
+    """The guaranteed payments' value given P(alive at u) ``alive``: v^u times the
+    annuity-certain of each whole year, the years summed as a geometric series in closed
+    form, and of the part year."""
+    out = np.zeros(win.guaranteed.size)
+    g = np.flatnonzero(win.guaranteed > 0)
+    # The certain part depends only on (payments, m, timing, escalation): computed once for
+    # each distinct one (a batch has few).
+    rates, by_rate = np.unique(growth[g], return_inverse=True)
+    shape = (win.guaranteed[g] * (2 * MAX_FREQUENCY + 2) + m[g] * 2 + win.arr[g]) \
+        * rates.size + by_rate
+    _, first, back = np.unique(shape, return_index=True, return_inverse=True)
+    u = g[first]
+    whole, part = np.divmod(win.guaranteed[u], m[u])
+    lam = delta - growth[u]
+    i = math.expm1(delta)
+    advance = win.arr[u] == 0
+    mf = win.mf[u]
+    years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
+        i, 1.0, m=mf, advance=advance)
+    tail = np.where(part > 0, np.exp(-lam * whole)
+                    * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
+    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)[back]
+    return out
 
 
 @dataclass(frozen=True, eq=False)
@@ -728,7 +926,27 @@ class _Slots:
             c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
             shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
             a, b = a - shift, b + shift
+        # Where the slots fall at the very end of the year (1 - s_i tiny: a life with a year
+        # of q = 1 and little of it left), A is a small difference of the prefix sums: sum
+        # its few slots directly instead (at most a couple: 1 - s_i < 1e-3 for every slot).
+        ill = a < _ILL * (a + b)
+        if ill.any():
+            w = np.flatnonzero(ill)
+            a = a.copy()
+            a[w] = _direct_a(lo_[w], hi[w], self.m[w], self.mf[w], self.dm[w], self.rho[w],
+                             self.kappa[w], self.phi[w], self.delta)
         return a, b
+
+
+def _direct_a(lo, hi, m, mf, dm, rho, kappa, phi, delta):
+    """sum c_i (1 - s_i) over the slots lo <= i < hi, slot by slot."""
+    out = np.zeros(lo.size)
+    for step in range(int((hi - lo).max(initial=0))):
+        i = lo + step
+        term = (kappa * np.where(i < dm, rho, 1.0) * np.exp(-delta * i / mf)
+                * np.where(phi + i < 0, 1.0, ((m - i) - phi) / mf))
+        out += np.where(i < hi, term, 0.0)
+    return out
 
 
 def _offsets(m, offset):

@@ -105,7 +105,8 @@ import json
 import math
 import numbers
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -274,10 +275,6 @@ class Curve:
     kind: str
     knots: tuple[float, ...]
     rates: tuple[float, ...]
-    _c: np.ndarray = field(init=False, repr=False, compare=False)
-    _t: np.ndarray = field(init=False, repr=False, compare=False)
-    _start: np.ndarray = field(init=False, repr=False, compare=False)
-    _acc: np.ndarray = field(init=False, repr=False, compare=False)
 
     def __post_init__(self):
         if self.kind not in KINDS:
@@ -285,25 +282,46 @@ class Curve:
         errors = _check(self.kind, list(self.knots), list(self.rates), "interest")
         if errors:
             raise CurveError(errors)
-        knots = tuple(float(k) for k in self.knots)
-        rates = tuple(float(r) for r in self.rates)
-        object.__setattr__(self, "knots", knots)
-        object.__setattr__(self, "rates", rates)
-        c = np.log1p(np.array(rates))
-        t = np.array(knots)
-        # Band starts (0, e_0, e_1, ...) and L at each band's start for forward bands.
+        if not (type(self.knots) is tuple and type(self.rates) is tuple
+                and all(type(x) is float for x in (*self.knots, *self.rates))):
+            raise TypeError("knots and rates must be tuples of floats (Curve.flat and "
+                            "Curve.from_mapping convert them)")
+
+    @cached_property
+    def _arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """(c, t, start, acc): forces ln(1 + rate), knots, band starts (0, e_0, e_1, ...;
+        the knots for spot) and, for forward bands, ln D at each band's start."""
+        c = np.log1p(np.array(self.rates))
+        t = np.array(self.knots)
         start = np.concatenate([[0.0], t]) if self.kind != "spot" else t
-        acc = np.zeros(len(rates))
+        acc = np.zeros(len(self.rates))
         if self.kind == "forward":
             acc[1:] = np.cumsum(c[:-1] * np.diff(start))
-        for name, value in (("_c", c), ("_t", t), ("_start", start), ("_acc", acc)):
-            object.__setattr__(self, name, _readonly(value))
+        return tuple(_readonly(a) for a in (c, t, start, acc))
+
+    @property
+    def _c(self) -> np.ndarray:
+        return self._arrays[0]
+
+    @property
+    def _t(self) -> np.ndarray:
+        return self._arrays[1]
+
+    @property
+    def _start(self) -> np.ndarray:
+        return self._arrays[2]
+
+    @property
+    def _acc(self) -> np.ndarray:
+        return self._arrays[3]
 
     # ---- construction and audit -------------------------------------------------------------
 
     @classmethod
     def flat(cls, rate: float) -> "Curve":
         """Return the flat structure at the annual effective ``rate``."""
+        if isinstance(rate, numbers.Real) and not isinstance(rate, bool):
+            rate = float(rate)  # (anything else is refused by the checks, by field)
         return cls("flat", (), (rate,))
 
     @classmethod
@@ -351,7 +369,7 @@ class Curve:
         errors = _check(kind, knots, rates, path)
         if errors:
             raise CurveError(errors)
-        return cls(kind, tuple(knots), tuple(rates))
+        return cls(kind, tuple(float(k) for k in knots), tuple(float(r) for r in rates))
 
     def doubled(self) -> "Curve":
         """Return the same structure at twice every force of interest: D(t)^2 for D(t).
@@ -415,7 +433,7 @@ class Curve:
         """Return K, the number of key-rate factors."""
         return len(self.rates)
 
-    @property
+    @cached_property
     def constant_force(self) -> float | None:
         """Return the force of interest where the structure is one flat rate, else None."""
         c = self._c

@@ -24,6 +24,11 @@ def _series_coefficients(n: int) -> np.ndarray:
 
 
 _COEFFICIENTS = {n: _series_coefficients(n) for n in (0, 1, 2)}
+#: _REACH[k]: the largest |x| for which the first k terms of the series leave out less
+#: than 1e-19 (the alternating series' error is below its first omitted term,
+#: |x|^k / (k! (n + k + 1)); phi_n is at least 0.2 for |x| < 1/2, n <= 2).
+_REACH = [(1e-19 * math.factorial(k)) ** (1 / k) if k else 0.0
+          for k in range(_SERIES_TERMS + 1)]
 
 
 def phi(n: int, x):
@@ -39,7 +44,10 @@ def phi(n: int, x):
     small = np.abs(x) < _SERIES_BELOW
     xs = x[small]
     acc = np.zeros_like(xs)
-    for c in _COEFFICIENTS[n]:
+    # As few terms as the largest |x| needs (all 24 only near |x| = 1/2).
+    reach = float(np.abs(xs).max(initial=0.0))
+    terms = next((k for k in range(1, _SERIES_TERMS) if _REACH[k] >= reach), _SERIES_TERMS)
+    for c in _COEFFICIENTS[n][_SERIES_TERMS - terms:]:
         acc = acc * xs + c
     out[small] = acc
     xl = x[~small]

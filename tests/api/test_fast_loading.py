@@ -499,6 +499,8 @@ _PLAIN_MIX = [
     {"lives": [{"age": 5, "age_adjustment": -10}], "timing": "arrears"},  # so is this
     {"lives": [{"age": 80, "sex": "blend-60.40"}], "timing": "advance"},  # no such table
     {"lives": [{"age": 45}], "timing": "arrears", "frequency": 365, "term": 1},
+    {"lives": [{"age": 58.75, "duration": 0}], "timing": "continuous", "frequency": 12,
+     "term": 20.5, "deferral": 1.3, "guarantee": 4.2, "escalation": 0.03},
 ]
 
 
@@ -524,6 +526,39 @@ def test_items_held_as_columns_answer_byte_for_byte_as_objects(client, monkeypat
         assert fast.status_code == 200, fast.get_json()
 
 
+_CONTINUOUS = [
+    {"lives": [{"age": 58.75, "duration": 0}], "timing": "continuous", "frequency": 12,
+     "term": 20.5, "deferral": 1.3, "guarantee": 4.2, "escalation": 0.03},
+    {"lives": [{"age": 70}], "timing": "continuous"},
+    {"lives": [{"age": 66.1, "mortality_multiplier": 1.4}], "timing": "continuous",
+     "deferral_months": 7, "guarantee": 10.0},
+    {"lives": [{"age": 81.5, "sex": "male"}], "timing": "continuous", "term_months": 30,
+     "escalation": -0.01},
+    {"lives": [{"age": 64}], "timing": "advance", "frequency": 12, "term": 10},
+    {"lives": [{"age": 60}, {"age": 57}], "timing": "continuous",
+     "survivorship": "joint-life"},
+]
+
+
+@pytest.mark.parametrize("rate", [None, 0.0, -0.01])
+def test_continuous_items_held_as_columns_answer_as_the_general_path(client, monkeypatch,
+                                                                      rate):
+    """Continuous single-life items ride as columns and are valued on shared chains; the
+    answer is the general path's (each value to 1e-12 relative, the rest identical)."""
+    from service.engine import columns
+
+    body = _batch(_CONTINUOUS, **({} if rate is None else {"interest_rate": rate}))
+    fast = client.post("/v1/annuity-factors", json=copy.deepcopy(body))
+    with monkeypatch.context() as m:
+        m.setattr(columns, "dispatch", lambda *args, **kwargs: None)
+        slow = client.post("/v1/annuity-factors", json=copy.deepcopy(body))
+    assert fast.status_code == slow.status_code == 200, fast.get_json()
+    got, want = _without_ids(fast.get_json()), _without_ids(slow.get_json())
+    values = [[r.pop("value") for r in body["results"]] for body in (got, want)]
+    assert got == want  # method blocks, ids, warnings
+    assert values[0] == pytest.approx(values[1], rel=1e-12, abs=0)
+
+
 def test_plain_items_are_held_as_columns(app):
     """Without this the comparison above could pass with no item ever held as columns."""
     from service.engine.columns import ItemBatch
@@ -535,7 +570,8 @@ def test_plain_items_are_held_as_columns(app):
         objects, _, _ = views._engine_items(basis, copy.deepcopy(items), dated)
         batch, refused, _ = views._column_items(basis, items, dated)
     assert isinstance(batch, ItemBatch)
-    assert batch.rows.tolist() == [0, 1, 7, 11]  # (7 gave its term in months)
+    # (7 gave its term in months; 2 and 12 are continuous, their frequency ignored)
+    assert batch.rows.tolist() == [0, 1, 2, 7, 11, 12]
     assert sorted(refused) == [8, 9, 10]  # ages outside the table, no such table
     # Each place gives the engine item the object path builds.
     assert list(batch) == objects and batch[-1] == objects[-1]

@@ -4,6 +4,7 @@ Every check compares with something computed here from the rates by hand (the de
 the four structures), a textbook closed form, scipy or mpmath, or finite differences.
 """
 
+import dataclasses
 import hashlib
 import json
 import math
@@ -131,6 +132,20 @@ class TestFromMapping:
             Curve("spot", (5.0, 1.0), (0.03, 0.04))
         with pytest.raises(CurveError):
             Curve("flat", (1.0,), (0.03,))
+
+    def test_it_is_built_whole_from_floats(self):
+        # Frozen and never patched after construction: whole numbers from a mapping become
+        # floats before the constructor sees them, so "5" and "5.0" name the same structure.
+        from_ints = Curve.from_mapping({"kind": "spot", "terms": [1, 5], "rates": [0.03, 0.04]})
+        from_floats = Curve.from_mapping({"kind": "spot", "terms": [1.0, 5.0],
+                                          "rates": [0.03, 0.04]})
+        assert from_ints == from_floats and from_ints.digest() == from_floats.digest()
+        assert all(type(x) is float for x in from_ints.knots)
+        assert Curve.flat(0).rates == (0.0,)
+        with pytest.raises(TypeError):
+            Curve("spot", (1, 5), (0.03, 0.04))
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            from_floats.rates = (0.05, 0.05)
 
 
 class TestDigest:
