@@ -2,6 +2,7 @@
 
 import re
 import uuid
+import weakref
 from datetime import UTC, datetime
 from importlib import metadata
 
@@ -35,18 +36,50 @@ def interest_block(curve, source: str) -> dict:
     return curve.describe() | {"digest": curve.digest(), "source": source}
 
 
+#: Each loaded basis' own audit blocks (what it is; its interest), made once: a basis is
+#: immutable after loading. Keyed by the basis object itself, so two bases (or two versions
+#: of one) never share an entry, and an entry goes with its basis.
+_BASIS_BLOCKS: "weakref.WeakKeyDictionary[object, tuple[dict, dict]]" = \
+    weakref.WeakKeyDictionary()
+#: Interest blocks of request structures, by what the block is made of (kind and the reprs
+#: of the terms or edges and rates, which are what its JSON and digest are written from).
+_CURVE_BLOCKS: dict[tuple, dict] = {}
+_CURVE_BLOCKS_KEPT = 512
+
+
+def _basis_blocks(basis) -> tuple[dict, dict]:
+    found = _BASIS_BLOCKS.get(basis)
+    if found is None:
+        block = {"id": basis.id, "version": basis.version, "digest": basis.digest,
+                 "status": basis.status}
+        if basis.improvement is not None:
+            block["improvement"] = improvement_block(basis.improvement)
+        found = _BASIS_BLOCKS[basis] = (block, interest_block(basis.interest, "basis"))
+    return found
+
+
+def _request_interest_block(curve) -> dict:
+    key = (curve.kind, tuple(map(repr, curve.knots)), tuple(map(repr, curve.rates)))
+    found = _CURVE_BLOCKS.get(key)
+    if found is None:
+        found = interest_block(curve, "request")
+        if len(_CURVE_BLOCKS) >= _CURVE_BLOCKS_KEPT:
+            _CURVE_BLOCKS.clear()
+        _CURVE_BLOCKS[key] = found
+    return found
+
+
 def use_basis(basis, curve=None) -> None:
     """Record which basis and interest this request used, for its audit block.
 
     ``curve`` is the request's own interest structure; None means the basis' interest.
+    The blocks are copies of ones made once per basis (or per request structure), so a
+    request may add to its own (as :func:`use_age_definition` does).
     """
     state = current()
-    state.basis = {"id": basis.id, "version": basis.version, "digest": basis.digest,
-                   "status": basis.status}
-    if basis.improvement is not None:
-        state.basis["improvement"] = improvement_block(basis.improvement)
-    state.interest = interest_block(basis.interest if curve is None else curve,
-                                      "basis" if curve is None else "request")
+    block, interest = _basis_blocks(basis)
+    state.basis = block.copy()
+    state.interest = (interest if curve is None else _request_interest_block(curve)).copy()
 
 
 def improvement_block(improvement) -> dict:

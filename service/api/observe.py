@@ -14,6 +14,8 @@ from service.api.auth import CHALLENGE, check_token
 from service.api.state import current
 
 access_log = logging.getLogger("service.access")
+#: ``json.dumps(..., separators=(",", ":"))`` made once (dumps builds an encoder per call).
+_LINE = json.JSONEncoder(separators=(",", ":")).encode
 
 
 def _route() -> str:
@@ -40,8 +42,10 @@ def init_app(app: Flask) -> None:
         seconds = time.perf_counter() - state.started
         route = _route()
         metrics.observe(route, request.method, response.status_code, seconds)
+        if not access_log.isEnabledFor(logging.INFO):
+            return response  # no line is written: none is composed
         basis = state.basis
-        access_log.info(json.dumps({
+        access_log.info(_LINE({
             "event": "request",
             "request_id": request_id(),
             "method": request.method,
@@ -52,5 +56,5 @@ def init_app(app: Flask) -> None:
             "basis_version": basis["version"] if basis else None,
             "items": state.item_count,
             "pid": os.getpid(),
-        }, separators=(",", ":")))
+        }))
         return response

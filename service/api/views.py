@@ -12,6 +12,7 @@ from flask import Blueprint, Response, current_app, jsonify, request
 from marshmallow import Schema, validate
 
 from service.api import examples as ex
+from service.api import fastload
 from service.api.audit import (
     audit_block,
     improvement_block,
@@ -448,11 +449,28 @@ def _valuation(basis, data):
         if curve is not None:
             raise ProblemError(422, "The request has invalid fields.", errors={
                 "interest": ["Give interest or interest_rate, not both."]})
-        curve = Curve.flat(data["interest_rate"])
+        curve = _flat_curve(data["interest_rate"])
     use_basis(basis, curve)
     use_valuation_date(data.get("valuation_date"))
     return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
                      basis.approximation)
+
+
+#: Flat request structures by the repr of their rate (a Curve is immutable, and equal reprs
+#: are equal floats, signed zeros apart), so that a request giving interest_rate reuses one.
+_FLAT_CURVES: dict[str, Curve] = {}
+_FLAT_CURVES_KEPT = 512
+
+
+def _flat_curve(rate: float) -> Curve:
+    key = repr(rate)
+    curve = _FLAT_CURVES.get(key)
+    if curve is None:
+        curve = Curve.flat(rate)
+        if len(_FLAT_CURVES) >= _FLAT_CURVES_KEPT:
+            _FLAT_CURVES.clear()
+        _FLAT_CURVES[key] = curve
+    return curve
 
 
 def _item_problem(exc: ItemError, prefix: str) -> ProblemError:
@@ -517,6 +535,11 @@ class _Request:
             "warnings": self.warnings, "audit": audit_block()}))
 
 
+#: Results from which method blocks are encoded once (fewer encode faster as they are: about
+#: 30 was the break-even measured, bench/README.md).
+_SHARED_BLOCKS_FROM = 32
+
+
 def _results_json(body: dict) -> Response:
     """``jsonify(body)``, byte for byte, with each distinct ``method`` block of the results
     (most items share one: the engine makes one per kind of valuation) encoded once.
@@ -525,6 +548,8 @@ def _results_json(body: dict) -> Response:
     token, and every occurrence counted: if any placeholder appears more often than it was
     placed, the body is encoded plainly), the rest encoded as jsonify does, and the
     placeholders' JSON replaced by the blocks' JSON."""
+    if len(body["results"]) < _SHARED_BLOCKS_FROM:
+        return jsonify(body)  # a few blocks encode faster than their placeholders are swapped
     provider = current_app.json
     if provider.compact is False or (provider.compact is None and current_app.debug):
         return jsonify(body)  # indented: the blocks would need the indentation of their place
@@ -589,7 +614,7 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
     per_item = isinstance(body, dict) and body.get("on_error") == "per-item"
     refused: dict[int, dict[str, list[str]]] = {}
     if per_item:
-        data = load(_top_schema(schema), body)
+        data = _load_top(schema, body)
         raw = data["items"]
         data["items"], places, errors = load_batch(item_schema, raw)
         refused = {n: flatten_errors(messages) for n, messages in errors.items()}
@@ -627,7 +652,9 @@ def _load_whole(schema, item_schema, body, build) -> dict:
     for them). At the first item refused, the whole body goes through ``load(schema, ...)``
     as before, which words every problem (and the basis adds its own)."""
     if isinstance(body, dict):
-        top, _, _, _ = validate_capped(_top_schema(schema), body)
+        top = _fast_top(schema, body)
+        if top is None:
+            top, _, _, _ = validate_capped(_top_schema(schema), body)
         if top is not None:
             items, _, errors = load_batch(item_schema, top["items"], stop_at_first=True)
             if not errors:
@@ -675,6 +702,19 @@ def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> P
     exc.errors_omitted = (exc.errors_omitted or 0) + max(len(found) - MAX_ERROR_PATHS, 0)
     exc.errors = merged
     return exc
+
+
+def _fast_top(schema, body: dict) -> dict | None:
+    """The request's own fields (items left raw) as the schema loads them, by the fast loader
+    (which gives marshmallow's answer or declines); None when it declines."""
+    loader = fastload.fast_loader(_top_schema(schema))
+    return None if loader is None else loader.load(body)
+
+
+def _load_top(schema, body) -> dict:
+    """``load(_top_schema(schema), body)``: the same answer or the same problem."""
+    top = _fast_top(schema, body) if isinstance(body, dict) else None
+    return top if top is not None else load(_top_schema(schema), body)
 
 
 _TOP_SCHEMAS: dict[type, Schema] = {}
@@ -746,9 +786,11 @@ def annuity_factors():
                            title="Batch too large to value")
 
     def value(engine):
-        asked_now = [item["measures"] for item in req.items]
+        asked_now = [bool(item["measures"]) for item in req.items]
+        # (no item asking for measures: the engine's default, "none", without a mask to scan)
         return value_annuities(req.tables, engine, valuation, max_work=req.limit,
-                               deadline=req.deadline, measure=[bool(m) for m in asked_now],
+                               deadline=req.deadline,
+                               measure=asked_now if any(asked_now) else None,
                                key_rates=key_rates > 0)
 
     valued = _value_batch(req, value)
