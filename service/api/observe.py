@@ -35,7 +35,8 @@ def init_app(app: Flask) -> None:
 
     @app.after_request
     def _finish(response):
-        response.headers["X-Request-ID"] = request_id()
+        rid = request_id()
+        response.headers["X-Request-ID"] = rid
         if response.status_code == 401:
             response.headers["WWW-Authenticate"] = CHALLENGE
         state = current()
@@ -47,7 +48,7 @@ def init_app(app: Flask) -> None:
         basis = state.basis
         access_log.info(_LINE({
             "event": "request",
-            "request_id": request_id(),
+            "request_id": rid,
             "method": request.method,
             "route": route,
             "status": response.status_code,

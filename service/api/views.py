@@ -3,6 +3,7 @@
 import csv
 import io
 import json
+import math
 import secrets
 import time
 from dataclasses import dataclass
@@ -26,7 +27,7 @@ from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
 from service.api.fastload import load_batch, load_items
-from service.api.metrics import FACTORS
+from service.api.metrics import count_factors
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
     SEX_VALUES,
@@ -108,9 +109,15 @@ def _finite(values, path: str):
 
 def _finite_items(values, places):
     """Refuse a batch whose value for some item is not finite, naming the first such item."""
+    if len(values) <= _FEW and all(map(math.isfinite, values.tolist())):
+        return  # (a few values: checked as floats faster than as an array)
     bad = np.flatnonzero(~np.isfinite(values))
     if bad.size:
         _finite(values, f"items.{places[int(bad[0])]}")
+
+
+#: Up to this many values are checked one by one rather than as an array.
+_FEW = 16
 
 
 def _summary(basis, registry) -> dict:
@@ -283,12 +290,25 @@ def _life_table_of(basis, index: int, query: dict):
 
 def _wants_csv() -> bool:
     """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV."""
-    if not request.accept_mimetypes:
-        return False  # no Accept header: JSON
-    best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+    header = request.environ.get("HTTP_ACCEPT")
+    best = _BEST_OF_ACCEPT.get(header, _UNSEEN) if header is not None else _UNSEEN
+    if best is _UNSEEN:
+        if not request.accept_mimetypes:
+            return False  # no Accept header: JSON
+        best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+        if header is not None and len(header) <= 200:
+            if len(_BEST_OF_ACCEPT) >= 256:
+                _BEST_OF_ACCEPT.clear()
+            _BEST_OF_ACCEPT[header] = best
     if best is None:
         raise ProblemError(406, "This answer is available as application/json or text/csv.")
     return best == "text/csv"
+
+
+#: The best match of an Accept header seen before (it depends on the header alone); most
+#: clients send one of a few.
+_BEST_OF_ACCEPT: dict[str, str | None] = {}
+_UNSEEN = object()
 
 
 def _column_items(basis, items, valuation_date):
@@ -797,7 +817,7 @@ def annuity_factors():
     if valued is None:
         return req.answer([], wants_csv)
     _finite_items(valued.value, req.places)
-    FACTORS.labels(req.basis.ref, "factor").inc(len(req.engine))
+    count_factors(req.basis.ref, "factor", len(req.engine))
     results = [_with_id(item, {"value": v, "method": valued.methods[code]}, req.basis)
                for item, v, code in zip(req.items, valued.value.tolist(),
                                         valued.method_code.tolist(), strict=True)]
@@ -850,7 +870,7 @@ def insurance_factors():
         return req.answer([], wants_csv, InsuranceResponseSchema)
     _finite_items(valued.value, req.places)
     _finite_items(valued.second_moment, req.places)
-    FACTORS.labels(req.basis.ref, "insurance").inc(len(req.engine))
+    count_factors(req.basis.ref, "insurance", len(req.engine))
     results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]},
                         req.basis)
                for item, v, v2, code in zip(req.items, valued.value.tolist(),
@@ -888,7 +908,7 @@ def cash_flow_projections():
                "payment": projected.expected, "present_value": projected.present_value}
     for name, values in columns.items():
         _finite(values, f"rows.{name}")
-    FACTORS.labels(req.basis.ref, "projection").inc(len(req.engine))
+    count_factors(req.basis.ref, "projection", len(req.engine))
     totals = {"payment": float(projected.expected.sum()),
               "present_value": float(projected.present_value.sum())}
     names = list(columns)
@@ -1022,7 +1042,7 @@ def cash_flow_schedules():
         raise ProblemError(422, "The item is impossible under this basis.", errors={
             "item." + path.partition(".")[2]: msgs for path, msgs in exc.errors.items()}) \
             from None
-    FACTORS.labels(basis.ref, "schedule").inc()
+    count_factors(basis.ref, "schedule")
     amount = data["amount"]
     columns = {"time": sched.time, "payment": sched.payment * amount,
                "probability": sched.probability, "discount": sched.discount,

@@ -296,3 +296,155 @@ def test_without_info_logging_no_line_is_composed_and_metrics_still_count(client
     (record,) = [r for r in caplog.records if r.name == "service.access"]
     assert json.loads(record.getMessage()) == composed[0]
     assert record.getMessage() == json.dumps(composed[0], separators=(",", ":"))
+
+
+# ---- the body's parse -----------------------------------------------------------------------
+
+
+def _reference_parse(text: str):
+    """json.loads with hooks written from the definition (every key checked one by one, every
+    float checked finite, an object below the top with more than MAX_OBJECT_MEMBERS members
+    refused with a 413)."""
+    from service.api.body import MAX_OBJECT_MEMBERS, _BodyError
+
+    inner = []
+
+    def pairs(items):
+        seen = {}
+        for key, value in items:
+            if key in seen:
+                raise _BodyError(f"duplicate key '{key}'")
+            seen[key] = value
+        if len(seen) > MAX_OBJECT_MEMBERS:
+            inner.append(seen)
+        return seen
+
+    def number(literal):
+        value = float(literal)
+        if value in (float("inf"), float("-inf")):
+            raise _BodyError(f"number {literal} is out of range")
+        return value
+
+    def constant(name):
+        raise _BodyError(f"'{name}' is not a JSON number")
+
+    value = json.loads(text, object_pairs_hook=pairs, parse_constant=constant,
+                       parse_float=number)
+    big = [obj for obj in inner if obj is not value]
+    if big:
+        raise ProblemError(413, f"An object in the body has {len(big[0])} members; an object "
+                                f"below the top level may have at most {MAX_OBJECT_MEMBERS}.")
+    return value
+
+
+def _parsed(parse, text):
+    from service.api.body import _BodyError
+
+    try:
+        return "ok", repr(parse(text))
+    except (_BodyError, ValueError) as exc:
+        return "error", type(exc).__name__, str(exc)
+    except ProblemError as exc:
+        return "problem", exc.status, exc.detail
+
+
+def _members(n: int, start: int = 0) -> str:
+    return "{" + ", ".join(f'"k{k}": {k}' for k in range(start, start + n)) + "}"
+
+
+PARSE_TEXTS = [
+    '\ufeff{"a": 1}',                                   # a byte order mark
+    '{"a": 1}\ufeff',
+    _members(1000), _members(1001),                     # the top level has no limit
+    '{"a": ' + _members(1000) + '}', '{"a": ' + _members(1001) + '}',
+    '[' + _members(1001) + ']',
+    '{"a": ' + _members(1001) + ', "b": {"c": 1, "c": 2}}',  # oversized, then a duplicate
+    '{"b": {"c": 1, "c": 2}, "a": ' + _members(1001) + '}',
+    '{"a": ' + _members(1001)[:-1] + ', "k5": 0}}',      # oversized and a duplicate in one
+    '{"a": [' + _members(1001) + ', ' + _members(1002) + ']}',
+    '{"a": 1, "b": {"a": 1}, "c": [{"a": 1, "b": 2.5}]}',
+]
+
+
+@pytest.mark.parametrize("text", PARSE_TEXTS, ids=range(len(PARSE_TEXTS)))
+def test_the_parse_with_one_decoder_agrees_with_the_definition(text):
+    from service.api.body import _parse
+
+    assert _parsed(_parse, text) == _parsed(_reference_parse, text)
+
+
+def test_one_decoder_per_thread_parses_alike_across_threads():
+    import threading
+
+    from service.api.body import _parse
+
+    texts = [PARSE_TEXTS[n % len(PARSE_TEXTS)] for n in range(200)]
+    expected = [_parsed(_reference_parse, t) for t in texts]
+    got: dict[int, list] = {}
+
+    def work(k):
+        got[k] = [_parsed(_parse, t) for t in texts]
+
+    threads = [threading.Thread(target=work, args=(k,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert all(got[k] == expected for k in range(4))
+
+
+# ---- the Accept header, the finite check and the metrics ------------------------------------
+
+
+@pytest.mark.parametrize("accept, status, csv", [
+    (None, 200, False), ("", 200, False), ("*/*", 200, False),
+    ("application/json", 200, False), ("text/csv", 200, True),
+    ("text/csv;q=0.5, application/json", 200, False),
+    ("application/json;q=0.1, text/csv;q=0.9", 200, True),
+    ("text/*", 200, True), ("image/png", 406, False),
+])
+def test_an_accept_header_answers_alike_the_first_time_and_after(client, accept, status, csv):
+    body = {"basis": "standard-ultimate", "items": [{"lives": [{"age": 65}],
+                                                     "timing": "advance"}]}
+    headers = {} if accept is None else {"Accept": accept}
+    views._BEST_OF_ACCEPT.clear()
+    for _ in range(2):
+        answer = client.post("/v1/annuity-factors", json=body, headers=headers)
+        assert answer.status_code == status
+        if status == 200:
+            assert answer.mimetype == ("text/csv" if csv else "application/json")
+
+
+def test_a_value_not_finite_is_named_however_many_items_there_are(app):
+    import numpy as np
+
+    for size in (1, 2, views._FEW, views._FEW + 1, 40):
+        for bad in {0, size // 2, size - 1}:
+            values = np.ones(size)
+            values[bad] = np.nan
+            with app.test_request_context(), pytest.raises(ProblemError) as exc:
+                views._finite_items(values, list(range(100, 100 + size)))
+            assert exc.value.errors == {f"items.{100 + bad}": ["The value is not finite."]}
+        views._finite_items(np.ones(size), list(range(size)))  # all finite: no problem
+
+
+def test_requests_and_factors_are_counted_in_their_series(client):
+    from prometheus_client import REGISTRY
+
+    def sample(name, labels):
+        return REGISTRY.get_sample_value(name, labels) or 0.0
+
+    series = {"route": "/v1/annuity-factors", "method": "POST", "status": "200"}
+    factors = {"basis": "standard-ultimate@2026.1", "kind": "factor"}
+    before = (sample("annuity_http_requests_total", series),
+              sample("annuity_http_request_duration_seconds_count", series),
+              sample("annuity_factors_computed_total", factors))
+    body = {"basis": "standard-ultimate", "items": [{"lives": [{"age": 65}],
+                                                     "timing": "advance"}] * 3}
+    for _ in range(4):
+        assert client.post("/v1/annuity-factors", json=body).status_code == 200
+    after = (sample("annuity_http_requests_total", series),
+             sample("annuity_http_request_duration_seconds_count", series),
+             sample("annuity_factors_computed_total", factors))
+    assert after[0] - before[0] == 4 and after[1] - before[1] == 4
+    assert after[2] - before[2] == 12
