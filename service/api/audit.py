@@ -113,5 +113,11 @@ def audit_block() -> dict:
         "service": {"name": current_app.config["SERVICE_NAME"],
                     "version": current_app.config["SERVICE_VERSION"]},
         "request_id": request_id(),
-        "computed_at": datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
+        "computed_at": computed_at(datetime.now(UTC)),
     }
+
+
+def computed_at(moment: datetime) -> str:
+    """``moment`` (UTC) as ``%Y-%m-%dT%H:%M:%S.%fZ``: microseconds always, then Z (written by
+    isoformat, about twice as fast as strftime)."""
+    return moment.replace(tzinfo=None).isoformat(timespec="microseconds") + "Z"

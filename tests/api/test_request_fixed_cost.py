@@ -448,3 +448,32 @@ def test_requests_and_factors_are_counted_in_their_series(client):
              sample("annuity_factors_computed_total", factors))
     assert after[0] - before[0] == 4 and after[1] - before[1] == 4
     assert after[2] - before[2] == 12
+
+
+# ---- the time of computation ----------------------------------------------------------------
+
+
+@pytest.mark.parametrize("moment", [
+    (2026, 12, 31, 23, 59, 59, 999999), (2026, 1, 2, 3, 4, 5, 0), (2026, 1, 2, 3, 4, 5, 7),
+    (1999, 12, 31, 0, 0, 0, 500000), (2100, 2, 28, 12, 0, 9, 10),
+])
+def test_the_time_of_computation_is_written_as_strftime_writes_it(moment):
+    from datetime import UTC, datetime
+
+    at = datetime(*moment, tzinfo=UTC)
+    assert audit.computed_at(at) == at.strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+
+
+def test_the_gunicorn_configuration_freezes_the_start_up_objects_before_each_fork():
+    import gc
+
+    from tests.live.server import gunicorn_settings
+
+    settings = gunicorn_settings()  # read, nothing started (the environment restored)
+    gc.unfreeze()
+    try:
+        assert gc.get_freeze_count() == 0
+        settings["pre_fork"](None, None)
+        assert gc.get_freeze_count() > 0
+    finally:
+        gc.unfreeze()
