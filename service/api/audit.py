@@ -21,9 +21,11 @@ def installed_version() -> str:
         return "unknown"
 
 
-def request_id() -> str:
-    """Return this request's id: the caller's X-Request-ID if well-formed, else a new one."""
-    state = current()
+def request_id(state=None) -> str:
+    """Return this request's id: the caller's X-Request-ID if well-formed, else a new one.
+    ``state``: this request's state, where the caller holds it already."""
+    if state is None:
+        state = current()
     if state.request_id is None:
         incoming = request.headers.get("X-Request-ID", "")
         state.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
@@ -112,7 +114,7 @@ def audit_block() -> dict:
         **({"valuation_date": dated.isoformat()} if dated is not None else {}),
         "service": {"name": current_app.config["SERVICE_NAME"],
                     "version": current_app.config["SERVICE_VERSION"]},
-        "request_id": request_id(),
+        "request_id": request_id(state),
         "computed_at": computed_at(datetime.now(UTC)),
     }
 

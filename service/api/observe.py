@@ -29,17 +29,16 @@ def init_app(app: Flask) -> None:
 
     @app.before_request
     def _start():
-        current()  # starts the clock
-        request_id()
+        request_id(current())  # (current() starts the clock)
         check_token(app)
 
     @app.after_request
     def _finish(response):
-        rid = request_id()
+        state = current()
+        rid = request_id(state)
         response.headers["X-Request-ID"] = rid
         if response.status_code == 401:
             response.headers["WWW-Authenticate"] = CHALLENGE
-        state = current()
         seconds = time.perf_counter() - state.started
         route = _route()
         metrics.observe(route, request.method, response.status_code, seconds)
