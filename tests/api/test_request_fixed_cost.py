@@ -477,3 +477,46 @@ def test_the_gunicorn_configuration_freezes_the_start_up_objects_before_each_for
         assert gc.get_freeze_count() > 0
     finally:
         gc.unfreeze()
+
+
+# ---- the cash-flow schedule's body ----------------------------------------------------------
+
+SCHEDULE_BODIES = [
+    {"basis": "standard-ultimate", "item": {"lives": [{"age": 65}], "timing": "advance"}},
+    {"basis": "standard-ultimate", "amount": 1200, "interest_rate": 0.03,
+     "item": {"lives": [{"age": 65.25, "sex": "male"}], "timing": "arrears", "frequency": 12,
+              "term_months": 18}},
+    {"basis": "fernhollow-annuitants", "valuation_date": "2026-12-31",
+     "item": {"lives": [{"date_of_birth": "1958-03-14", "sex": "female"}, {"age": 60}],
+              "timing": "advance", "survivorship": "last-survivor"}},
+    {"basis": "standard-ultimate", "item": {"lives": [{"age": 65}], "timing": "sideways"}},
+    {"basis": "standard-ultimate", "item": {"lives": [{"age": 65}], "timing": "advance"},
+     "amount": -1},
+    {"basis": "standard-ultimate", "item": {"lives": [{"age": 65}], "timing": "advance"},
+     "colour": "blue"},
+    {"basis": "standard-ultimate", "items": [{"lives": [{"age": 65}], "timing": "advance"}]},
+    {"basis": "standard-ultimate", "item": {"lives": [{"age": 140}], "timing": "advance"}},
+    [1, 2],
+]
+
+
+@pytest.mark.parametrize("body", SCHEDULE_BODIES, ids=range(len(SCHEDULE_BODIES)))
+def test_a_schedule_answers_alike_with_and_without_fast_loading(client, monkeypatch, body):
+    fast = client.post("/v1/cash-flow-schedules", json=copy.deepcopy(body))
+    with monkeypatch.context() as m:
+        m.setattr(fastload, "fast_loader", lambda schema: None)
+        slow = client.post("/v1/cash-flow-schedules", json=copy.deepcopy(body))
+    assert fast.status_code == slow.status_code
+    a, b = fast.get_json(), slow.get_json()
+    for answer in (a, b):
+        answer.pop("request_id", None)
+        (answer.get("audit") or {}).pop("request_id", None)
+        (answer.get("audit") or {}).pop("computed_at", None)
+    assert a == b
+
+
+def test_a_plain_schedule_body_is_loaded_fast():
+    loader = fastload.fast_loader(views._schedule_request)
+    body = copy.deepcopy(SCHEDULE_BODIES[1])
+    assert loader is not None
+    assert loader.load(body) == views._schedule_request.load(copy.deepcopy(body))
