@@ -27,7 +27,8 @@ def request_id(state=None) -> str:
     if state is None:
         state = current()
     if state.request_id is None:
-        incoming = request.headers.get("X-Request-ID", "")
+        # (request.headers.get("X-Request-ID", ""), read where the headers live)
+        incoming = request.environ.get("HTTP_X_REQUEST_ID", "")
         state.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
     return state.request_id
 
@@ -108,12 +109,12 @@ def use_valuation_date(date) -> None:
 def audit_block() -> dict:
     state = current()
     dated = state.valuation_date
+    config = current_app.config
     return {
         "basis": state.basis,
         "interest": state.interest,
         **({"valuation_date": dated.isoformat()} if dated is not None else {}),
-        "service": {"name": current_app.config["SERVICE_NAME"],
-                    "version": current_app.config["SERVICE_VERSION"]},
+        "service": {"name": config["SERVICE_NAME"], "version": config["SERVICE_VERSION"]},
         "request_id": request_id(state),
         "computed_at": computed_at(datetime.now(UTC)),
     }

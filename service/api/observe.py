@@ -41,14 +41,15 @@ def init_app(app: Flask) -> None:
             response.headers["WWW-Authenticate"] = CHALLENGE
         seconds = time.perf_counter() - state.started
         route = _route()
-        metrics.observe(route, request.method, response.status_code, seconds)
+        method = request.method
+        metrics.observe(route, method, response.status_code, seconds)
         if not access_log.isEnabledFor(logging.INFO):
             return response  # no line is written: none is composed
         basis = state.basis
         access_log.info(_LINE({
             "event": "request",
             "request_id": rid,
-            "method": request.method,
+            "method": method,
             "route": route,
             "status": response.status_code,
             "duration_ms": round(seconds * 1000, 3),
