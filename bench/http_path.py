@@ -19,12 +19,14 @@ Each pair is run in turn (round robin), median of the repeats.
 
     .venv/bin/python -m bench.run --only http [--repeats R]
     .venv/bin/python -m bench.http_path --profile   # where a 10,000-item request's time goes
+    .venv/bin/python -m bench.http_path --profile-single 2>/dev/null   # a single factor's
 """
 
 import contextlib
 import http.client
 import json
 import logging
+import math
 import os
 import re
 import shutil
@@ -308,8 +310,90 @@ def profile(repeats: int = 5) -> str:
                       *table(["stage", "seconds", "share"], rows)])
 
 
+def profile_single(requests: int = 500, blocks: int = 7) -> str:
+    """Time the stages of a single-factor request (``SINGLE``) through the Flask test client,
+    the access log on (written to stderr) as in production; the least of ``blocks`` blocks of
+    ``requests`` requests, beside the echo app's request through the same client."""
+    from flask import Flask, jsonify, request
+
+    from service import create_app
+    from service.api import views
+
+    spent: dict[str, float] = {}
+    inside: set[str] = set()
+
+    def timed(original, label):
+        def stage(*args, **kwargs):
+            if label in inside:
+                return original(*args, **kwargs)
+            inside.add(label)
+            t0 = time.perf_counter()
+            try:
+                return original(*args, **kwargs)
+            finally:
+                inside.discard(label)
+                spent[label] = spent.get(label, 0.0) + time.perf_counter() - t0
+
+        return stage
+
+    stages = {"json_body": "parse the body", "_load_whole": "load and validate",
+              "_basis": "basis, interest, audit record", "_valuation":
+                  "basis, interest, audit record", "_dates_needed": "basis, interest, audit record",
+              "_column_items": "engine items", "_engine_items": "engine items",
+              "value_annuities": "engine", "request_warnings": "warnings",
+              "audit_block": "audit block, dump, encode", "dump": "audit block, dump, encode",
+              "_results_json": "audit block, dump, encode", "_wants_csv": "Accept header"}
+    originals = {name: getattr(views, name) for name in stages}
+    app = create_app()
+    hooks = {key: list(funcs) for key, funcs in app.before_request_funcs.items()}, \
+        {key: list(funcs) for key, funcs in app.after_request_funcs.items()}
+    bookkeeping = "request id, metrics, access log"
+    for funcs_of in (app.before_request_funcs, app.after_request_funcs):
+        for key, funcs in funcs_of.items():
+            funcs_of[key] = [timed(f, bookkeeping) for f in funcs]
+    echo = Flask("echo")
+    echo.post("/")(lambda: jsonify(request.get_json()))
+    body = json.dumps(SINGLE).encode()
+
+    def best(client, path):
+        least, at = math.inf, {}
+        for _ in range(blocks + 1):
+            spent.clear()
+            t0 = time.perf_counter()
+            for _ in range(requests):
+                response = client.post(path, data=body, content_type="application/json")
+                assert response.status_code == 200
+            total = (time.perf_counter() - t0) / requests
+            if total < least:
+                least, at = total, {k: v / requests for k, v in spent.items()}
+        return least, at
+
+    try:
+        for name, label in stages.items():
+            setattr(views, name, timed(originals[name], label))
+        total, shares = best(app.test_client(), "/v1/annuity-factors")
+    finally:
+        for name, original in originals.items():
+            setattr(views, name, original)
+        app.before_request_funcs.update(hooks[0])
+        app.after_request_funcs.update(hooks[1])
+    floor, _ = best(echo.test_client(), "/")
+    labels = [*dict.fromkeys(stages.values()), bookkeeping]
+    rows = [[label, f"{shares.get(label, 0.0) * 1e6:.0f}",
+             f"{100 * shares.get(label, 0.0) / total:.0f}%"] for label in labels]
+    rest = total - sum(shares.get(label, 0.0) for label in labels)
+    rows.append(["Flask, the test client, the view's own code", f"{rest * 1e6:.0f}",
+                 f"{100 * rest / total:.0f}%"])
+    return "\n".join([f"Single-factor request through the Flask test client: {total * 1e6:.0f} µs "
+                      f"(the least of {blocks} blocks of {requests}); the echo app's "
+                      f"{floor * 1e6:.0f} µs", "",
+                      *table(["stage", "µs", "share"], rows)])
+
+
 if __name__ == "__main__":
-    if "--profile" in sys.argv:
+    if "--profile-single" in sys.argv:
+        print(profile_single())
+    elif "--profile" in sys.argv:
         print(profile())
     else:
         print(run(int(sys.argv[1]) if len(sys.argv) > 1 else 5).markdown())

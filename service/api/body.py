@@ -10,6 +10,7 @@ import contextvars
 import copy
 import json
 import math
+import threading
 import weakref
 
 from flask import request
@@ -63,7 +64,45 @@ def _read_body() -> bytes:
     return raw
 
 
+class _Oversized(Exception):
+    """An object with more than ``MAX_OBJECT_MEMBERS`` members: parse again, the long way."""
+
+
+def _plain_pairs(pairs):
+    obj = dict(pairs)
+    if len(obj) != len(pairs):
+        _no_duplicates(pairs)  # raises, naming the first key met twice
+    if len(obj) > MAX_OBJECT_MEMBERS:
+        raise _Oversized
+    return obj
+
+
+_DECODERS = threading.local()
+
+
+def _decoder() -> json.JSONDecoder:
+    """This thread's decoder with :func:`_plain_pairs` (made once, not per body)."""
+    decoder = getattr(_DECODERS, "decoder", None)
+    if decoder is None:
+        decoder = _DECODERS.decoder = json.JSONDecoder(
+            object_pairs_hook=_plain_pairs, parse_constant=_reject_constant,
+            parse_float=_finite_float)
+    return decoder
+
+
 def _parse(text: str):
+    """The body's value, as :func:`_parse_fully` gives it. A body none of whose objects has
+    more than ``MAX_OBJECT_MEMBERS`` members (almost all) is parsed once by a decoder made
+    once; any other is parsed again by :func:`_parse_fully`, which judges it."""
+    if text.startswith("\ufeff"):
+        return _parse_fully(text)  # (json.loads words a byte order mark itself)
+    try:
+        return _decoder().decode(text)
+    except _Oversized:
+        return _parse_fully(text)
+
+
+def _parse_fully(text: str):
     oversized = []
 
     def pairs_hook(pairs):

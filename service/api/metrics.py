@@ -66,11 +66,30 @@ def status_label(status: int) -> str:
     return str(status) if 100 <= status <= 599 else "other"
 
 
+#: The labelled series met so far. ``labels()`` takes a lock and checks its values on every
+#: call; for the same values it returns the same series object as long as the metric is not
+#: cleared, and these metrics never are. The label values are bounded (route rules, methods,
+#: statuses; loaded bases and kinds), and so is this.
+_REQUEST_SERIES: dict[tuple, tuple] = {}
+_FACTOR_SERIES: dict[tuple, object] = {}
+
+
 def observe(route: str, method: str, status: int, seconds: float) -> None:
     """Count one answered request; ``route`` is a route rule or ``UNMATCHED``."""
     labels = (route, method_label(method), status_label(status))
-    REQUESTS.labels(*labels).inc()
-    LATENCY.labels(*labels).observe(seconds)
+    series = _REQUEST_SERIES.get(labels)
+    if series is None:
+        series = _REQUEST_SERIES[labels] = (REQUESTS.labels(*labels), LATENCY.labels(*labels))
+    series[0].inc()
+    series[1].observe(seconds)
+
+
+def count_factors(basis: str, kind: str, amount: int = 1) -> None:
+    """Count ``amount`` factors (or schedules) of ``kind`` computed under ``basis``."""
+    series = _FACTOR_SERIES.get((basis, kind))
+    if series is None:
+        series = _FACTOR_SERIES[basis, kind] = FACTORS.labels(basis, kind)
+    series.inc(amount)
 
 
 @bp.get("/metrics")

@@ -14,6 +14,8 @@ from service.api.auth import CHALLENGE, check_token
 from service.api.state import current
 
 access_log = logging.getLogger("service.access")
+#: ``json.dumps(..., separators=(",", ":"))`` made once (dumps builds an encoder per call).
+_LINE = json.JSONEncoder(separators=(",", ":")).encode
 
 
 def _route() -> str:
@@ -27,24 +29,27 @@ def init_app(app: Flask) -> None:
 
     @app.before_request
     def _start():
-        current()  # starts the clock
-        request_id()
+        request_id(current())  # (current() starts the clock)
         check_token(app)
 
     @app.after_request
     def _finish(response):
-        response.headers["X-Request-ID"] = request_id()
+        state = current()
+        rid = request_id(state)
+        response.headers["X-Request-ID"] = rid
         if response.status_code == 401:
             response.headers["WWW-Authenticate"] = CHALLENGE
-        state = current()
         seconds = time.perf_counter() - state.started
         route = _route()
-        metrics.observe(route, request.method, response.status_code, seconds)
+        method = request.method
+        metrics.observe(route, method, response.status_code, seconds)
+        if not access_log.isEnabledFor(logging.INFO):
+            return response  # no line is written: none is composed
         basis = state.basis
-        access_log.info(json.dumps({
+        access_log.info(_LINE({
             "event": "request",
-            "request_id": request_id(),
-            "method": request.method,
+            "request_id": rid,
+            "method": method,
             "route": route,
             "status": response.status_code,
             "duration_ms": round(seconds * 1000, 3),
@@ -52,5 +57,5 @@ def init_app(app: Flask) -> None:
             "basis_version": basis["version"] if basis else None,
             "items": state.item_count,
             "pid": os.getpid(),
-        }, separators=(",", ":")))
+        }))
         return response

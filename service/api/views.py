@@ -3,6 +3,7 @@
 import csv
 import io
 import json
+import math
 import secrets
 import time
 from dataclasses import dataclass
@@ -12,6 +13,7 @@ from flask import Blueprint, Response, current_app, jsonify, request
 from marshmallow import Schema, validate
 
 from service.api import examples as ex
+from service.api import fastload
 from service.api.audit import (
     audit_block,
     improvement_block,
@@ -25,7 +27,7 @@ from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
 from service.api.fastload import load_batch, load_items
-from service.api.metrics import FACTORS
+from service.api.metrics import count_factors
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 from service.api.schemas import (
     SEX_VALUES,
@@ -107,9 +109,15 @@ def _finite(values, path: str):
 
 def _finite_items(values, places):
     """Refuse a batch whose value for some item is not finite, naming the first such item."""
+    if len(values) <= _FEW and all(map(math.isfinite, values.tolist())):
+        return  # (a few values: checked as floats faster than as an array)
     bad = np.flatnonzero(~np.isfinite(values))
     if bad.size:
         _finite(values, f"items.{places[int(bad[0])]}")
+
+
+#: Up to this many values are checked one by one rather than as an array.
+_FEW = 16
 
 
 def _summary(basis, registry) -> dict:
@@ -282,12 +290,25 @@ def _life_table_of(basis, index: int, query: dict):
 
 def _wants_csv() -> bool:
     """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV."""
-    if not request.accept_mimetypes:
-        return False  # no Accept header: JSON
-    best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+    header = request.environ.get("HTTP_ACCEPT")
+    best = _BEST_OF_ACCEPT.get(header, _UNSEEN) if header is not None else _UNSEEN
+    if best is _UNSEEN:
+        if not request.accept_mimetypes:
+            return False  # no Accept header: JSON
+        best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+        if header is not None and len(header) <= 200:
+            if len(_BEST_OF_ACCEPT) >= 256:
+                _BEST_OF_ACCEPT.clear()
+            _BEST_OF_ACCEPT[header] = best
     if best is None:
         raise ProblemError(406, "This answer is available as application/json or text/csv.")
     return best == "text/csv"
+
+
+#: The best match of an Accept header seen before (it depends on the header alone); most
+#: clients send one of a few.
+_BEST_OF_ACCEPT: dict[str, str | None] = {}
+_UNSEEN = object()
 
 
 def _column_items(basis, items, valuation_date):
@@ -448,11 +469,28 @@ def _valuation(basis, data):
         if curve is not None:
             raise ProblemError(422, "The request has invalid fields.", errors={
                 "interest": ["Give interest or interest_rate, not both."]})
-        curve = Curve.flat(data["interest_rate"])
+        curve = _flat_curve(data["interest_rate"])
     use_basis(basis, curve)
     use_valuation_date(data.get("valuation_date"))
     return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
                      basis.approximation)
+
+
+#: Flat request structures by the repr of their rate (a Curve is immutable, and equal reprs
+#: are equal floats, signed zeros apart), so that a request giving interest_rate reuses one.
+_FLAT_CURVES: dict[str, Curve] = {}
+_FLAT_CURVES_KEPT = 512
+
+
+def _flat_curve(rate: float) -> Curve:
+    key = repr(rate)
+    curve = _FLAT_CURVES.get(key)
+    if curve is None:
+        curve = Curve.flat(rate)
+        if len(_FLAT_CURVES) >= _FLAT_CURVES_KEPT:
+            _FLAT_CURVES.clear()
+        _FLAT_CURVES[key] = curve
+    return curve
 
 
 def _item_problem(exc: ItemError, prefix: str) -> ProblemError:
@@ -517,6 +555,11 @@ class _Request:
             "warnings": self.warnings, "audit": audit_block()}))
 
 
+#: Results from which method blocks are encoded once (fewer encode faster as they are: about
+#: 30 was the break-even measured, bench/README.md).
+_SHARED_BLOCKS_FROM = 32
+
+
 def _results_json(body: dict) -> Response:
     """``jsonify(body)``, byte for byte, with each distinct ``method`` block of the results
     (most items share one: the engine makes one per kind of valuation) encoded once.
@@ -525,6 +568,8 @@ def _results_json(body: dict) -> Response:
     token, and every occurrence counted: if any placeholder appears more often than it was
     placed, the body is encoded plainly), the rest encoded as jsonify does, and the
     placeholders' JSON replaced by the blocks' JSON."""
+    if len(body["results"]) < _SHARED_BLOCKS_FROM:
+        return jsonify(body)  # a few blocks encode faster than their placeholders are swapped
     provider = current_app.json
     if provider.compact is False or (provider.compact is None and current_app.debug):
         return jsonify(body)  # indented: the blocks would need the indentation of their place
@@ -589,7 +634,7 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
     per_item = isinstance(body, dict) and body.get("on_error") == "per-item"
     refused: dict[int, dict[str, list[str]]] = {}
     if per_item:
-        data = load(_top_schema(schema), body)
+        data = _load_top(schema, body)
         raw = data["items"]
         data["items"], places, errors = load_batch(item_schema, raw)
         refused = {n: flatten_errors(messages) for n, messages in errors.items()}
@@ -627,7 +672,9 @@ def _load_whole(schema, item_schema, body, build) -> dict:
     for them). At the first item refused, the whole body goes through ``load(schema, ...)``
     as before, which words every problem (and the basis adds its own)."""
     if isinstance(body, dict):
-        top, _, _, _ = validate_capped(_top_schema(schema), body)
+        top = _fast_top(schema, body)
+        if top is None:
+            top, _, _, _ = validate_capped(_top_schema(schema), body)
         if top is not None:
             items, _, errors = load_batch(item_schema, top["items"], stop_at_first=True)
             if not errors:
@@ -675,6 +722,27 @@ def _with_basis_errors(exc: ProblemError, schema, item_schema, body, build) -> P
     exc.errors_omitted = (exc.errors_omitted or 0) + max(len(found) - MAX_ERROR_PATHS, 0)
     exc.errors = merged
     return exc
+
+
+def _fast_top(schema, body: dict) -> dict | None:
+    """The request's own fields (items left raw) as the schema loads them, by the fast loader
+    (which gives marshmallow's answer or declines); None when it declines."""
+    loader = fastload.fast_loader(_top_schema(schema))
+    return None if loader is None else loader.load(body)
+
+
+def _load_fast(schema, body) -> dict:
+    """``load(schema, body)``: the same answer (by the fast loader where it vouches for the
+    body) or the same problem (marshmallow's)."""
+    loader = fastload.fast_loader(schema) if isinstance(body, dict) else None
+    data = None if loader is None else loader.load(body)
+    return data if data is not None else load(schema, body)
+
+
+def _load_top(schema, body) -> dict:
+    """``load(_top_schema(schema), body)``: the same answer or the same problem."""
+    top = _fast_top(schema, body) if isinstance(body, dict) else None
+    return top if top is not None else load(_top_schema(schema), body)
 
 
 _TOP_SCHEMAS: dict[type, Schema] = {}
@@ -746,16 +814,18 @@ def annuity_factors():
                            title="Batch too large to value")
 
     def value(engine):
-        asked_now = [item["measures"] for item in req.items]
+        asked_now = [bool(item["measures"]) for item in req.items]
+        # (no item asking for measures: the engine's default, "none", without a mask to scan)
         return value_annuities(req.tables, engine, valuation, max_work=req.limit,
-                               deadline=req.deadline, measure=[bool(m) for m in asked_now],
+                               deadline=req.deadline,
+                               measure=asked_now if any(asked_now) else None,
                                key_rates=key_rates > 0)
 
     valued = _value_batch(req, value)
     if valued is None:
         return req.answer([], wants_csv)
     _finite_items(valued.value, req.places)
-    FACTORS.labels(req.basis.ref, "factor").inc(len(req.engine))
+    count_factors(req.basis.ref, "factor", len(req.engine))
     results = [_with_id(item, {"value": v, "method": valued.methods[code]}, req.basis)
                for item, v, code in zip(req.items, valued.value.tolist(),
                                         valued.method_code.tolist(), strict=True)]
@@ -808,7 +878,7 @@ def insurance_factors():
         return req.answer([], wants_csv, InsuranceResponseSchema)
     _finite_items(valued.value, req.places)
     _finite_items(valued.second_moment, req.places)
-    FACTORS.labels(req.basis.ref, "insurance").inc(len(req.engine))
+    count_factors(req.basis.ref, "insurance", len(req.engine))
     results = [_with_id(item, {"value": v, "second_moment": v2, "method": valued.methods[code]},
                         req.basis)
                for item, v, v2, code in zip(req.items, valued.value.tolist(),
@@ -846,7 +916,7 @@ def cash_flow_projections():
                "payment": projected.expected, "present_value": projected.present_value}
     for name, values in columns.items():
         _finite(values, f"rows.{name}")
-    FACTORS.labels(req.basis.ref, "projection").inc(len(req.engine))
+    count_factors(req.basis.ref, "projection", len(req.engine))
     totals = {"payment": float(projected.expected.sum()),
               "present_value": float(projected.present_value.sum())}
     names = list(columns)
@@ -959,7 +1029,7 @@ def cash_flow_schedules():
     """The expected payment schedule behind one factor."""
     wants_csv = _wants_csv()
     body = json_body()
-    data = load(_schedule_request, body)
+    data = _load_fast(_schedule_request, body)
     current().item_count = 1
     basis = _basis(data["basis"])
     valuation = _valuation(basis, data)
@@ -980,7 +1050,7 @@ def cash_flow_schedules():
         raise ProblemError(422, "The item is impossible under this basis.", errors={
             "item." + path.partition(".")[2]: msgs for path, msgs in exc.errors.items()}) \
             from None
-    FACTORS.labels(basis.ref, "schedule").inc()
+    count_factors(basis.ref, "schedule")
     amount = data["amount"]
     columns = {"time": sched.time, "payment": sched.payment * amount,
                "probability": sched.probability, "discount": sched.discount,
