@@ -14,7 +14,9 @@ passed). Everything else goes to the column path.
 """
 
 import math
+import operator
 from functools import lru_cache
+from itertools import accumulate
 
 from service.engine.integrals import _COEFFICIENTS, _SERIES_BELOW
 
@@ -67,7 +69,7 @@ def _chain(table, anchor: int, dkey: int, mult: float, extra: float, width: int)
         for k in range(min(period - dkey, width)):
             if anchor + k < last:
                 base[k] = float(table.select_q[row, dkey + k])
-    out = [min(b * mult + extra, 1.0) for b in base]
+    out = base if mult == 1.0 and extra == 0.0 else [min(b * mult + extra, 1.0) for b in base]
     for k in range(max(last - anchor, 0), width):
         out[k] = 1.0  # q = 1 from the last age, whatever the multiplier
     return out
@@ -146,9 +148,7 @@ def _value_row(tables, row, delta: float) -> float:
     # The chain as far as it is used: q_k for k < need, C_k for k <= need.
     need = min(width, max(kb + 2 if count > first else 1, ku + 1))
     q = _chain(table, anchor, _select_key(table, duration), mult, extra, need)
-    cum = [1.0]
-    for rate in q:
-        cum.append(cum[-1] * (1.0 - rate))
+    cum = [1.0, *accumulate([1.0 - rate for rate in q], operator.mul)]
     start = 1.0 - frac * q[0]
 
     value = 0.0
@@ -191,6 +191,10 @@ def _value_row(tables, row, delta: float) -> float:
         life += math.exp(kb * lw) * (a2 * cum[kb] + b2 * cum[kb + 1])
     if kb > ka + 1:
         af, bf = weights(0, m)
-        life += sum(math.exp(k * lw) * (af * cum[k] + bf * cum[k + 1])
-                    for k in range(ka + 1, kb))
+        # w^K by repeated multiplication (relative error about K eps, K < 200)
+        w, wk, whole = math.exp(lw), math.exp((ka + 1) * lw), 0.0
+        for c0, c1 in zip(cum[ka + 1:kb], cum[ka + 2:kb + 1], strict=True):
+            whole += wk * (af * c0 + bf * c1)
+            wk *= w
+        life += whole
     return value + life / (m * start)
