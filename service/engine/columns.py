@@ -743,26 +743,38 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     return values
 
 
+def _sorted_chains(keys) -> tuple[np.ndarray, np.ndarray]:
+    """Items sorted by ``keys`` (arrays) share a chain with their neighbours of the same key:
+    return each item's chain and the first item of each chain."""
+    new = np.zeros(keys[0].size, dtype=bool)
+    new[0] = True
+    for key in keys:
+        new[1:] |= key[1:] != key[:-1]
+    return np.cumsum(new) - 1, np.flatnonzero(new)
+
+
+def _chain_rates(tables, t, anchor, dkey, mult, extra) -> tuple[np.ndarray, np.ndarray]:
+    """The chains of lives (one per entry of the arrays) as far as any can live: q of each
+    year from the integer age ``anchor`` (q = 1 from the table's last age; (chains, width))
+    and survival C_0 = 1 .. C_width ((chains, width + 1))."""
+    last = np.array([tb.last_age for tb in tables])
+    width = int((last[t] - anchor).max()) + 3
+    q = _year_rates(tables, t[:, None], anchor[:, None], dkey[:, None], mult[:, None],
+                    extra[:, None], np.arange(width)[None, :])
+    cum = np.ones((t.size, width + 1))
+    cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
+    return q, cum
+
+
 def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assumption, slots):
     t = cols.table[idx]
     mult = cols.mortality_multiplier[idx]
     extra = cols.flat_extra[idx]
     size = idx.size
-    # Chains: consecutive items (sorted by key) with the same key share one.
-    keys = (t, dkey, mult, extra, anchor, growth)
-    new = np.zeros(size, dtype=bool)
-    new[0] = True
-    for key in keys:
-        new[1:] |= key[1:] != key[:-1]
-    chain = np.cumsum(new) - 1
-    rep = np.flatnonzero(new)
+    chain, rep = _sorted_chains((t, dkey, mult, extra, anchor, growth))
+    q, cum = _chain_rates(tables, t[rep], anchor[rep], dkey[rep], mult[rep], extra[rep])
+    width = q.shape[1]
     last = np.array([tb.last_age for tb in tables])
-    width = int((last[t[rep]] - anchor[rep]).max()) + 3
-    k = np.arange(width)[None, :]
-    q = _year_rates(tables, t[rep][:, None], anchor[rep][:, None], dkey[rep][:, None],
-                    mult[rep][:, None], extra[rep][:, None], k)
-    cum = np.ones((rep.size, width + 1))
-    cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
     start = fraction_survival(q[chain, 0], np.maximum(ages - anchor, 0.0), assumption)
     win = _windows(cols, idx, ages, anchor, growth, m, delta, last[t])
     frac, u, mf, arr, big, phi_, guaranteed, n0 = (

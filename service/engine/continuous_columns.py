@@ -180,22 +180,10 @@ def _chains(tables, t, dkey, mult, extra, anchor, growth):
     """Consecutive items (sorted by key) with the same key share one chain: return each
     item's chain, the representative items, the chains' rates q (from the integer age,
     q = 1 from the table's last age) and survival cum (C_0 = 1 .. C_width)."""
-    from service.engine.columns import _year_rates
+    from service.engine.columns import _chain_rates, _sorted_chains
 
-    size = t.size
-    new = np.zeros(size, dtype=bool)
-    new[0] = True
-    for key in (t, dkey, mult, extra, anchor, growth):
-        new[1:] |= key[1:] != key[:-1]
-    chain = np.cumsum(new) - 1
-    rep = np.flatnonzero(new)
-    last = np.array([tb.last_age for tb in tables])
-    width = int((last[t[rep]] - anchor[rep]).max()) + 3
-    k = np.arange(width)[None, :]
-    q = _year_rates(tables, t[rep][:, None], anchor[rep][:, None], dkey[rep][:, None],
-                    mult[rep][:, None], extra[rep][:, None], k)
-    cum = np.ones((rep.size, width + 1))
-    cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
+    chain, rep = _sorted_chains((t, dkey, mult, extra, anchor, growth))
+    q, cum = _chain_rates(tables, t[rep], anchor[rep], dkey[rep], mult[rep], extra[rep])
     return chain, rep, q, cum
 
 

@@ -61,10 +61,10 @@ from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.columns import (
     Columns,
+    _chain_rates,
     _field_suspects,
     _pair_chunks,
     _select_key,
-    _year_rates,
 )
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.integrals import phi
@@ -301,13 +301,8 @@ class _Chains:
         _, chain = _codes(code)
         rep = np.empty(int(chain.max()) + 1, dtype=np.intp)
         rep[chain] = np.arange(t.size)
-        last = np.array([tb.last_age for tb in tables])
-        width = int((last[t[rep]] - anchor[rep]).max()) + 3
-        k = np.arange(width)[None, :]
-        q = _year_rates(tables, t[rep][:, None], anchor[rep][:, None], dkey[rep][:, None],
-                        mult[rep][:, None], extra[rep][:, None], k)
-        cum = np.ones((rep.size, width + 1))
-        cum[:, 1:] = np.cumprod(1.0 - q, axis=1)
+        q, cum = _chain_rates(tables, t[rep], anchor[rep], dkey[rep], mult[rep], extra[rep])
+        width = q.shape[1]
         self.chain, self.width = chain, width
         self.q, self.cum = q.ravel(), cum.ravel()
         self.q0 = q[chain, 0]
