@@ -755,7 +755,7 @@ class JointColumns:
             b = item.lives[1] if len(item.lives) == 2 else None
             req = item.start_requires
             seconds.append(
-                (nan, nan, nan, nan, nan, nan) if b is None else
+                (0, nan, nan, 0.0, 1.0, 0.0) if b is None else  # (from_dict's defaults)
                 (b.table, b.age, nan if b.duration is None else b.duration, b.age_adjustment,
                  b.mortality_multiplier, b.flat_extra))
             seconds[-1] += (*item.survivorship,
