@@ -52,7 +52,8 @@ Continuous payments (timing code 2; their frequency is ignored, as by the genera
 valued by :mod:`service.engine.continuous_columns` on the same kind of chains, under every
 fractional-age assumption, with the general path's method code (INTEGRAL).
 
-Not covered here (the general path values them): two lives, interest structures other than
+Not covered here: two lives (:mod:`service.engine.joint_columns`, which also takes them as
+columns through :func:`value_columns`); the general path values interest structures other than
 one flat rate, Woolhouse's approximation with m > 1 (discrete payments), and items whose
 sensitivities are wanted.
 """

@@ -50,6 +50,15 @@ the sum does not need.
 The guarantee (g m payments certain once the requirement is met at u) is ab P(start) v^u
 times sum_k ((1 + r) v)^k a(1) over its whole years plus its part year, in closed form, and
 is computed only for items that have one.
+
+Two-life items given as columns (:class:`JointColumns`: the first life and the payments as
+:class:`~service.engine.columns.Columns`, the second life's fields suffixed 2, a NaN
+``age2`` marking a single life, the survivorship amounts ``both``, ``first_only``,
+``second_only`` and ``start_requires``; see :func:`value_joint_columns`, which
+``columns.value_columns`` calls) reach the same arrays (:class:`_Pairs`) without Item
+objects: the scan of Item objects and the columns feed one valuation. Their problems are
+the general path's: array checks find the rows that may fail, which are built as Items and
+prepared by the general path (:func:`problems`).
 """
 
 import math
