@@ -52,7 +52,8 @@ Continuous payments (timing code 2; their frequency is ignored, as by the genera
 valued by :mod:`service.engine.continuous_columns` on the same kind of chains, under every
 fractional-age assumption, with the general path's method code (INTEGRAL).
 
-Not covered here (the general path values them): two lives, interest structures other than
+Not covered here: two lives (:mod:`service.engine.joint_columns`, which also takes them as
+columns through :func:`value_columns`); the general path values interest structures other than
 one flat rate, Woolhouse's approximation with m > 1 (discrete payments), and items whose
 sensitivities are wanted.
 """
@@ -489,14 +490,22 @@ def _work(tables, cols: Columns, assumption: str) -> np.ndarray:
 
 def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None = None,
                   deadline: float | None = None) -> Values:
-    """Return the present value of 1 p.a. of each single-life item in ``columns``
-    (a :class:`Columns`, a mapping of arrays or a pandas DataFrame), and its method code.
+    """Return the present value of 1 p.a. of each item in ``columns`` (a :class:`Columns`,
+    a :class:`~service.engine.joint_columns.JointColumns`, a mapping of arrays or a pandas
+    DataFrame; a mapping or DataFrame with any of the two-life columns, ``age2``, ``both``,
+    ``start_requires`` and the rest of ``joint_columns.JOINT_FIELDS``, is read as
+    JointColumns), and its method code.
 
     Items this module does not cover under ``valuation`` (see :func:`covered`) are valued
     by the general path. Raises ItemError (paths like ``"3.lives.0.age"``, the general
     path's messages), WorkLimitError and DeadlineError like
     :func:`service.engine.annuity.value_annuities`.
     """
+    from service.engine import joint_columns  # (it builds on this module)
+
+    if joint_columns.is_joint(columns):
+        return joint_columns.value_joint_columns(tables, columns, valuation,
+                                                 max_work=max_work, deadline=deadline)
     cols = _as_columns(columns)
     rows = (list(zip(*(getattr(cols, name).tolist() for name in FIELDS), strict=True))
             if _small_covered(valuation, len(cols)) else ())

@@ -50,9 +50,20 @@ the sum does not need.
 The guarantee (g m payments certain once the requirement is met at u) is ab P(start) v^u
 times sum_k ((1 + r) v)^k a(1) over its whole years plus its part year, in closed form, and
 is computed only for items that have one.
+
+Two-life items given as columns (:class:`JointColumns`: the first life and the payments as
+:class:`~service.engine.columns.Columns`, the second life's fields suffixed 2, a NaN
+``age2`` marking a single life, the survivorship amounts ``both``, ``first_only``,
+``second_only`` and ``start_requires``; see :func:`value_joint_columns`, which
+``columns.value_columns`` calls) reach the same arrays (:class:`_Pairs`) without Item
+objects: the scan of Item objects and the columns feed one valuation. Their problems are
+the general path's: array checks find the rows that may fail, which are built as Items and
+prepared by the general path (:func:`problems`).
 """
 
 import math
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -60,16 +71,25 @@ from service.engine import annuity
 from service.engine.annuity import Values
 from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.columns import (
+    FIELDS,
     Columns,
     _chain_rates,
     _field_suspects,
+    _found,
+    _from_rows,
+    _item_row,
+    _life_suspects,
     _pair_chunks,
+    _row_item,
     _select_key,
+    _whole_or_float,
+    value_columns,
 )
+from service.engine.columns import _work as _column_work
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.integrals import phi
 from service.engine.interest import annuity_certain
-from service.engine.items import EXACT_SUM, START_REQUIREMENTS, methods
+from service.engine.items import EXACT_SUM, START_REQUIREMENTS, Item, Life, Valuation, methods
 from service.engine.survival import fraction_survival
 
 _SNAP = 1e-9  # as service.engine.survival
@@ -133,19 +153,26 @@ def _scan(items, exact: bool, _type=type, _int=int, _len=len, _code=_REQUIREMENT
 class _Pairs:
     """The covered two-life items as arrays: ``lives[0]`` and ``lives[1]`` are
     :class:`~service.engine.columns.Columns` of each life with the item's payments;
-    ``amounts`` (n, 3); ``requires`` indexes START_REQUIREMENTS."""
+    ``amounts`` (n, 3); ``requires`` indexes START_REQUIREMENTS. Built from the scan of Item
+    objects (:meth:`from_table`) or straight from :class:`JointColumns`."""
 
-    def __init__(self, table):
-        cols = np.ascontiguousarray(table.T)  # (an item a row of ``table``) one row a field
+    def __init__(self, first: Columns, second: Columns, amounts, requires):
+        self.lives = [first, second]
+        self.amounts = amounts
+        self.requires = requires
+
+    @classmethod
+    def from_table(cls, table) -> "_Pairs":
+        """From the scan's numbers (an item a row of ``table``, _ROW numbers)."""
+        cols = np.ascontiguousarray(table.T)  # one row a field
         pay = {name: cols[12 + k] for k, name in enumerate(_PAY)}
         pay["timing"] = pay["timing"].astype(np.int8)
-        self.lives = []
+        lives = []
         for at in (0, 6):
             life = {name: cols[at + k] for k, name in enumerate(_LIFE)}
             life["table"] = life["table"].astype(np.intp)
-            self.lives.append(Columns(**life, **pay))
-        self.amounts = cols[18:21].T
-        self.requires = cols[21].astype(np.int8)
+            lives.append(Columns(**life, **pay))
+        return cls(*lives, cols[18:21].T, cols[21].astype(np.int8))
 
     def __len__(self):
         return self.requires.size
@@ -215,6 +242,13 @@ def _work(count, guaranteed, m):
     return count - closed + -(-closed // m)
 
 
+def _fast_work(tables, pairs: _Pairs):
+    """(count, guaranteed, work units of them all) of validated ``pairs``."""
+    count, guaranteed = _payment_window(tables, pairs)
+    m = pairs.lives[0].frequency.astype(np.int64)
+    return count, guaranteed, int(_work(count, guaranteed, m).sum())
+
+
 def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
     """Value the covered two-life items of ``items`` here and the others by the general path;
     None where none is covered (or the rate is not flat).
@@ -237,13 +271,11 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
         if not places:
             return None
         table = table[keep]
-    pairs = _Pairs(table)
+    pairs = _Pairs.from_table(table)
     assumption = valuation.fractional_age
     if _suspect(tables, pairs, assumption):
         _prepare(tables, items, valuation)  # raises the general path's ItemError, if any
-    count, guaranteed = _payment_window(tables, pairs)
-    m = pairs.lives[0].frequency.astype(np.int64)
-    fast_work = int(_work(count, guaranteed, m).sum())
+    count, guaranteed, fast_work = _fast_work(tables, pairs)
     size = len(items)
     values = np.zeros(size)
     code = np.full(size, EXACT_SUM, dtype=np.int8)
@@ -608,3 +640,281 @@ def _window_sums(cz, lw_values, ch_a, ch_b, d, lw_id, windows):
                 taken[sel] += np.abs(c) * after
     # (the windows of a term have coefficients of one sign)
     return out, taken <= _CANCELLATION * np.abs(out)
+
+
+# ---------------------------------------------------------------------------------------------
+# Two-life items given as columns
+
+#: The second life's columns (as the first life's in Columns.FIELDS, suffixed 2).
+SECOND_FIELDS = ("table2", "age2", "duration2", "age_adjustment2", "mortality_multiplier2",
+                 "flat_extra2")
+#: The survivorship amounts' columns (as the JSON survivorship object's keys).
+AMOUNT_FIELDS = ("both", "first_only", "second_only")
+#: Every column of a :class:`JointColumns` beyond :data:`service.engine.columns.FIELDS`.
+JOINT_FIELDS = (*SECOND_FIELDS, *AMOUNT_FIELDS, "start_requires")
+_JOINT_DEFAULTS = {"table2": 0, "age2": math.nan, "duration2": math.nan,
+                   "age_adjustment2": 0.0, "mortality_multiplier2": 1.0, "flat_extra2": 0.0,
+                   "both": 1.0, "first_only": 1.0, "second_only": 1.0,
+                   "start_requires": "any"}
+
+
+@dataclass(frozen=True, eq=False)
+class JointColumns:
+    """One- and two-life annuity items, one array per field (all the same length).
+
+    ``first`` holds the first life and the payments, as :class:`Columns`; the second life's
+    fields are those of the first suffixed 2 (``table2``, ``age2``, ``duration2``, ...), a
+    NaN ``age2`` marking a single-life row (its other second-life fields are then not
+    read). ``both``, ``first_only`` and ``second_only`` are the survivorship amounts
+    (default 1, 1, 1: last survivor); ``start_requires`` holds codes indexing
+    START_REQUIREMENTS (0 any, 1 first, 2 both; -1 an unknown requirement).
+    Build with :meth:`from_dict`, :meth:`from_frame` or :meth:`from_items`.
+    """
+
+    first: Columns
+    table2: np.ndarray
+    age2: np.ndarray
+    duration2: np.ndarray
+    age_adjustment2: np.ndarray
+    mortality_multiplier2: np.ndarray
+    flat_extra2: np.ndarray
+    both: np.ndarray
+    first_only: np.ndarray
+    second_only: np.ndarray
+    start_requires: np.ndarray
+
+    def __post_init__(self):
+        shapes = {getattr(self, name).shape for name in JOINT_FIELDS}
+        if shapes != {(len(self.first),)}:
+            raise ValueError("every column must be one-dimensional and of the same length")
+
+    def __len__(self) -> int:
+        return len(self.first)
+
+    @property
+    def two(self) -> np.ndarray:
+        """Which rows have two lives."""
+        return ~np.isnan(self.age2)
+
+    @property
+    def second(self) -> Columns:
+        """The second life with the payments, as :class:`Columns` (NaN ages on single-life
+        rows)."""
+        f = self.first
+        return Columns(self.table2, self.age2, self.duration2, self.age_adjustment2,
+                       self.mortality_multiplier2, self.flat_extra2, f.timing, f.frequency,
+                       f.term, f.deferral, f.guarantee, f.escalation)
+
+    @property
+    def amounts(self) -> np.ndarray:
+        """The survivorship amounts, (n, 3)."""
+        return np.column_stack([self.both, self.first_only, self.second_only])
+
+    @classmethod
+    def from_dict(cls, data: Mapping) -> "JointColumns":
+        """Build from a mapping of field name to array (or scalar, broadcast): the columns
+        of :meth:`Columns.from_dict` plus those of :data:`JOINT_FIELDS`, which default to a
+        single life (``age2`` NaN), the second life's fields as the first's, last-survivor
+        amounts and start requirement 'any'. ``start_requires`` may be strings or codes; a
+        null ``table2`` is allowed on single-life rows."""
+        unknown = set(data) - set(FIELDS) - set(JOINT_FIELDS)
+        if unknown:
+            raise ValueError(f"unknown columns: {', '.join(sorted(unknown))}")
+        first = Columns.from_dict({k: v for k, v in data.items() if k in FIELDS})
+        size = len(first)
+        out = {}
+        for name in JOINT_FIELDS:
+            value = np.asarray(data.get(name, _JOINT_DEFAULTS[name]))
+            if value.ndim == 0:
+                value = np.full(size, value.item())
+            if name == "start_requires":
+                out[name] = _requirement_codes(value)
+                continue
+            with np.errstate(invalid="ignore"):
+                out[name] = np.array(value, dtype=float)  # None becomes NaN
+        two = ~np.isnan(out["age2"])
+        table = out["table2"]
+        if not np.all(~two | (np.isfinite(table) & (table == np.round(table)))):
+            raise ValueError("the column 'table2' must hold whole numbers")
+        out["table2"] = np.where(two, np.nan_to_num(table), 0).astype(np.intp)
+        for arr in out.values():
+            arr.setflags(write=False)
+        return cls(first, **out)
+
+    @classmethod
+    def from_frame(cls, frame) -> "JointColumns":
+        """Build from a pandas DataFrame whose columns are named as in :meth:`from_dict`."""
+        return cls.from_dict({name: frame[name].to_numpy() for name in frame.columns})
+
+    @classmethod
+    def from_items(cls, items) -> "JointColumns":
+        """Build from engine :class:`Item` objects of one or two lives (ValueError
+        otherwise)."""
+        rows, seconds = [], []
+        nan = math.nan
+        for n, item in enumerate(items):
+            if not 1 <= len(item.lives) <= 2:
+                raise ValueError(f"item {n} has neither one nor two lives")
+            rows.append(_item_row(replace(item, lives=item.lives[:1])))
+            b = item.lives[1] if len(item.lives) == 2 else None
+            req = item.start_requires
+            seconds.append(
+                (0, nan, nan, 0.0, 1.0, 0.0) if b is None else  # (from_dict's defaults)
+                (b.table, b.age, nan if b.duration is None else b.duration, b.age_adjustment,
+                 b.mortality_multiplier, b.flat_extra))
+            seconds[-1] += (*item.survivorship,
+                            _REQUIREMENT_CODE[req] if req in _REQUIREMENT_CODE else -1)
+        first = _from_rows(rows)
+        cols = (np.array(seconds, dtype=float).reshape(len(rows), len(JOINT_FIELDS)).T)
+        out = {name: np.array(col) for name, col in zip(JOINT_FIELDS, cols, strict=True)}
+        out["table2"] = np.nan_to_num(out["table2"]).astype(np.intp)
+        out["start_requires"] = out["start_requires"].astype(np.int8)
+        for arr in out.values():
+            arr.setflags(write=False)
+        return cls(first, **out)
+
+    def take(self, index) -> "JointColumns":
+        """The items at ``index`` (an integer array or boolean mask)."""
+        return JointColumns(self.first.take(index),
+                            **{name: getattr(self, name)[index] for name in JOINT_FIELDS})
+
+    def to_items(self) -> list[Item]:
+        """The items as engine objects (for the general path)."""
+        return [self._item(n) for n in range(len(self))]
+
+    def _item(self, n: int) -> Item:
+        item = _row_item(self.first, n)
+        lives = item.lives
+        if not math.isnan(self.age2[n]):
+            d = float(self.duration2[n])
+            lives = (*lives, Life(age=float(self.age2[n]), table=int(self.table2[n]),
+                                  duration=None if math.isnan(d) else _whole_or_float(d),
+                                  age_adjustment=float(self.age_adjustment2[n]),
+                                  mortality_multiplier=float(self.mortality_multiplier2[n]),
+                                  flat_extra=float(self.flat_extra2[n])))
+        code = int(self.start_requires[n])
+        return Item(lives, item.payments,
+                    (float(self.both[n]), float(self.first_only[n]), float(self.second_only[n])),
+                    START_REQUIREMENTS[code] if 0 <= code < len(START_REQUIREMENTS)
+                    else "unknown")
+
+
+def _requirement_codes(value) -> np.ndarray:
+    if value.dtype.kind in "iuf":
+        codes = np.asarray(value, dtype=float)
+        ok = np.isin(codes, range(len(START_REQUIREMENTS)))
+        return np.where(ok, codes, -1).astype(np.int8)
+    text = value.astype(str)
+    return np.select([text == name for name in START_REQUIREMENTS],
+                     range(len(START_REQUIREMENTS)), -1).astype(np.int8)
+
+
+def is_joint(columns) -> bool:
+    """Whether ``columns`` (given to value_columns) holds two-life columns: a
+    :class:`JointColumns`, or a mapping or DataFrame with any of :data:`JOINT_FIELDS`."""
+    if isinstance(columns, JointColumns):
+        return True
+    if isinstance(columns, Columns):
+        return False
+    names = columns.keys() if isinstance(columns, Mapping) else getattr(columns, "columns", ())
+    return any(name in JOINT_FIELDS for name in names)
+
+
+def _as_joint(columns) -> JointColumns:
+    if isinstance(columns, JointColumns):
+        return columns
+    if isinstance(columns, Mapping):
+        return JointColumns.from_dict(columns)
+    return JointColumns.from_frame(columns)
+
+
+def problems(tables, cols: JointColumns, valuation: Valuation) -> dict[str, list[str]]:
+    """Return the ItemError paths and messages the general path gives these items (empty
+    when there is none): rows that may fail (array checks, a superset) are built as Items and
+    prepared by the general path, whose paths are then placed in the whole batch. (Its
+    stages, each item's checks, then table indices, then the lives under their tables, are
+    batch-wide, so the suspects alone give the batch's problems.)"""
+    first, second, two = cols.first, cols.second, cols.two
+    amounts = cols.amounts
+    with np.errstate(invalid="ignore"):
+        suspect = (_field_suspects(first) | (two & _field_suspects(second))
+                   | ~np.all((amounts >= 0) & (amounts <= 1), axis=1)
+                   | ~np.isin(cols.start_requires, range(len(START_REQUIREMENTS))))
+    n_tables = len(tables)
+    suspect |= ~((first.table >= 0) & (first.table < n_tables))
+    suspect |= two & ~((second.table >= 0) & (second.table < n_tables))
+    assumption = valuation.fractional_age
+    for life, rows in ((first, ~suspect), (second, ~suspect & two)):
+        ok = np.flatnonzero(rows)
+        if ok.size == len(cols):  # (every row: no copies)
+            suspect |= _life_suspects(tables, life, assumption)
+        elif ok.size:
+            suspect[ok] |= _life_suspects(tables, life.take(ok), assumption)
+    rows = np.flatnonzero(suspect).tolist()
+    if not rows:
+        return {}
+    found = _found(tables, [cols._item(n) for n in rows], valuation)
+    out = {}
+    for path, msgs in found.items():
+        at, _, rest = path.partition(".")
+        out[f"{rows[int(at)]}.{rest}"] = msgs
+    return out
+
+
+def value_joint_columns(tables, columns, valuation: Valuation, *, max_work: int | None = None,
+                        deadline: float | None = None) -> Values:
+    """Return the present value of 1 p.a. of each item of ``columns`` (a
+    :class:`JointColumns`, or a mapping or DataFrame of its columns), and its method code,
+    as :func:`service.engine.columns.value_columns` (which sends two-life columns here).
+
+    Two-life rows with discrete payments under a flat rate (annual, or any whole frequency
+    with exact sums) go straight to this module's arrays (no Item objects); single-life rows
+    to the column path; the rest to the general path. Errors are the general path's.
+    """
+    cols = _as_joint(columns)
+    found = problems(tables, cols, valuation)
+    if found:
+        raise ItemError(found)
+    size = len(cols)
+    two = cols.two
+    timing, frequency = cols.first.timing, cols.first.frequency
+    fast = two & np.isin(timing, (0, 1)) & (
+        (valuation.approximation == "exact") | (frequency == 1))
+    if valuation.curve.kind != "flat":
+        fast[:] = False
+    values = np.zeros(size)
+    code = np.full(size, EXACT_SUM, dtype=np.int8)
+    pairs = None
+    fast_work = 0
+    if fast.any():
+        every = bool(fast.all())
+        sub = cols if every else cols.take(fast)
+        pairs = _Pairs(sub.first, sub.second, sub.amounts, sub.start_requires)
+        count, guaranteed, fast_work = _fast_work(tables, pairs)
+        if max_work is not None and fast_work > max_work:
+            raise WorkLimitError(fast_work, max_work)
+    done = fast_work
+    for rows, how in ((np.flatnonzero(~two), "columns"), (np.flatnonzero(two & ~fast), "items")):
+        if not rows.size:
+            continue
+        left = None if max_work is None else max_work - done
+        try:
+            if how == "columns":
+                got = value_columns(tables, cols.first.take(rows), valuation, max_work=left,
+                                    deadline=deadline)
+                done += int(_column_work(tables, cols.first.take(rows),
+                                         valuation.fractional_age).sum())
+            else:
+                got = annuity.value_annuities(tables, cols.take(rows).to_items(), valuation,
+                                              max_work=left, deadline=deadline, fast=False)
+        except WorkLimitError as exc:
+            raise WorkLimitError(exc.work + done, max_work) from None
+        values[rows] = got.value
+        code[rows] = got.method_code
+    if pairs is not None:
+        try:
+            values[fast] = _value(tables, pairs, count, guaranteed, valuation, deadline)
+        except _Refused:  # (not reached unless the checks disagree)
+            _prepare(tables, cols.to_items(), valuation)  # the general path's ItemError
+            raise
+    return Values(values, code, methods(valuation))
