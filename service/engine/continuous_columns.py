@@ -317,14 +317,18 @@ def _weights(ranges, delta, gamma, rho, kappa):
     return list(zip(np.split(big_a, n), np.split(big_b, n), strict=True))
 
 
-#: (item, year) pairs integrated at once by the per-year pass.
-_CHUNK_PAIRS = 200_000
+#: (item, year) pairs integrated at once by the per-year pass, by assumption: Balducci's
+#: closed form (an exponential integral near its pole, else a Gauss-Legendre rule) holds
+#: many more temporaries a pair (bench/costly.py: 190 MiB at 200,000 pairs, past the
+#: 137 MiB budget of a valuation).
+_CHUNK_PAIRS = {"udd": 200_000, "constant-force": 200_000, "balducci": 40_000}
 
 
 def _per_year(q, cum, chain, lw, ka, kb, h0, h1, gamma, rho, kappa, delta, assumption, live):
     """Life-contingent values of ``live`` items integrated year by year (any assumption):
     each year of age in its two parts, by the general path's closed forms."""
     single = by_assumption(_SINGLE, assumption)
+    chunk = by_assumption(_CHUNK_PAIRS, assumption)
     size = chain.size
     out = np.zeros(size)
     items = np.flatnonzero(live)
@@ -333,7 +337,7 @@ def _per_year(q, cum, chain, lw, ka, kb, h0, h1, gamma, rho, kappa, delta, assum
     begin = 0
     while begin < items.size:
         base = total[begin - 1] if begin else 0
-        stop = max(int(np.searchsorted(total, base + _CHUNK_PAIRS, side="right")), begin + 1)
+        stop = max(int(np.searchsorted(total, base + chunk, side="right")), begin + 1)
         sel = items[begin:stop]
         begin = stop
         own, k = _expand(sel, ka[sel], kb[sel] + 1)
