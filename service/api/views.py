@@ -312,27 +312,33 @@ _UNSEEN = object()
 
 
 def _column_items(basis, items, valuation_date):
-    """As :func:`_engine_items` for annuity items, with the plain ones (one life given by
-    age, discrete payments, start_requires 'any', no measures or spread, a table the basis
-    has for the life and an age inside it, no cohort tables) held as engine columns rather
+    """As :func:`_engine_items` for annuity items, with the plain ones (one life, given by
+    age or by a date of birth the valuation date follows; discrete or continuous payments,
+    start_requires 'any', no measures or spread, a table the basis has for the life (its
+    cohort's under a generational scale) and an age inside it) held as engine columns rather
     than objects; the others go through :func:`_engine_items` (which words any problem)."""
     tables = RequestTables(basis, valuation_date)
-    if tables.generational or len(items) < 2:
+    if len(items) < 2:
         return None
-    plain, rest = [], []
+    plain, rest, placed = [], [], []
     table_of: dict = {}
     for n, item in enumerate(items):
         lives = item["lives"]
-        if len(lives) == 1 and lives[0]["date_of_birth"] is None \
-                and item["timing"] in TIMING_CODES and item["start_requires"] == "any" \
+        if len(lives) == 1 and item["timing"] in TIMING_CODES \
+                and item["start_requires"] == "any" \
                 and not item["measures"] and "spread" not in item \
                 and "survivorship" not in item:
-            sex = lives[0]["sex"]
+            life = lives[0]
+            sex = life["sex"]
             if sex not in table_of:
                 table_of[sex] = _table_of(basis, sex)
-            if table_of[sex] is not None:
-                plain.append(n)
-                continue
+            base = table_of[sex]
+            if base is not None:
+                at = _plain_place(basis, tables, base, life, item, valuation_date)
+                if at is not None:
+                    plain.append(n)
+                    placed.append(at)
+                    continue
         rest.append(n)
     if not plain:
         return None
@@ -342,7 +348,7 @@ def _column_items(basis, items, valuation_date):
     chosen = [items[n] for n in plain]
     cols |= {name: [item[name] for item in chosen] for name in
              ("timing", "frequency", "term", "deferral", "guarantee", "escalation")}
-    cols["table"] = [table_of[life["sex"]] for life in lives]
+    cols["table"] = placed
     columns = Columns.from_dict(cols)
     rated = columns.age + columns.age_adjustment
     first = np.array([t.first_age for t in tables.tables], dtype=float)[columns.table]
@@ -353,22 +359,45 @@ def _column_items(basis, items, valuation_date):
         rest = sorted(rest + np.asarray(plain)[outside].tolist())
         plain = np.asarray(plain)[keep].tolist()
         columns = columns.take(keep)
-    others, refused, _ = _engine_items(basis, [items[n] for n in rest], valuation_date)
+    others, refused, _ = _engine_items(basis, [items[n] for n in rest], valuation_date,
+                                       tables=tables)
     batch = ItemBatch(len(items), np.asarray(plain, dtype=np.intp), columns,
                       dict(zip(rest, others, strict=True)))
     return batch, {rest[k]: problems for k, problems in refused.items()}, tables.tables
 
 
-def _engine_items(basis, items, valuation_date, build=None):
+def _plain_place(basis, tables, base, life, item, valuation_date) -> int | None:
+    """The index in the request's ``tables`` of the table a plain life follows (its age from
+    its date of birth first, recorded in the item's ``ages`` as :func:`_engine_items` does),
+    or None where :func:`_engine_items` must word a problem with it."""
+    if life["date_of_birth"] is not None:
+        if valuation_date is None:
+            return None
+        try:
+            age = age_at(life["date_of_birth"], valuation_date, basis.age_definition)
+        except ValueError:
+            return None
+        life["age"] = age
+        item["ages"] = [age]
+        use_age_definition(basis)
+    try:
+        return tables.index(base, life["age"] + life["age_adjustment"])
+    except CohortError:
+        return None
+
+
+def _engine_items(basis, items, valuation_date, build=None, *, tables=None):
     """Turn loaded items into engine items; return them, ``{n: {path: messages}}`` for the
     items a basis cannot value as given (paths within the item), and the request's tables.
 
     A life given by date of birth gets its age by the basis' age definition (recorded in the
     item's ``ages`` for the result); under a generational improvement scale each life follows
     its cohort's table. ``build(item, lives)`` makes the engine item from a loaded item and
-    its engine lives (default: an annuity item).
+    its engine lives (default: an annuity item). ``tables``: the request's tables where some
+    of its items are already placed in them (else new ones).
     """
-    tables = RequestTables(basis, valuation_date)
+    if tables is None:
+        tables = RequestTables(basis, valuation_date)
     out = []
     refused: dict[int, dict[str, list[str]]] = {}
     for n, item in enumerate(items):

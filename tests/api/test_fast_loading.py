@@ -570,11 +570,37 @@ def test_plain_items_are_held_as_columns(app):
         objects, _, _ = views._engine_items(basis, copy.deepcopy(items), dated)
         batch, refused, _ = views._column_items(basis, items, dated)
     assert isinstance(batch, ItemBatch)
-    # (7 gave its term in months; 2 and 12 are continuous, their frequency ignored)
-    assert batch.rows.tolist() == [0, 1, 2, 7, 11, 12]
+    # (6 gave a date of birth; 7 its term in months; 2 and 12 are continuous, their frequency
+    # ignored)
+    assert batch.rows.tolist() == [0, 1, 2, 6, 7, 11, 12]
     assert sorted(refused) == [8, 9, 10]  # ages outside the table, no such table
-    # Each place gives the engine item the object path builds.
+    # Each place gives the engine item the object path builds, and the same ages recorded.
     assert list(batch) == objects and batch[-1] == objects[-1]
+    assert items[6]["ages"] == [objects[6].lives[0].age]
+
+
+def test_lives_on_a_generational_basis_are_held_as_columns_in_their_cohorts(app):
+    """Under a generational scale each life follows its cohort's table: the columns place
+    every life (by age or by date of birth) in the table the object path gives it."""
+    from service.engine.columns import ItemBatch
+
+    raw = [{"lives": [{"age": 50 + 0.7 * k, "sex": ("female", "male")[k % 2]}],
+            "timing": "advance", "frequency": 12} for k in range(30)]
+    raw += [{"lives": [{"date_of_birth": f"19{40 + k}-0{1 + k % 9}-1{k % 10}",
+                        "sex": ("female", "male")[k % 2]}], "timing": "arrears"}
+            for k in range(30)]
+    items = [fastload.load_items(_SCHEMA, [copy.deepcopy(x)])[0][0] for x in raw]
+    with app.test_request_context():
+        basis = app.extensions["registry"].resolve("fernhollow-pensioners@2026.1")
+        dated = datetime.date(2026, 12, 31)
+        objects, _, object_tables = views._engine_items(basis, copy.deepcopy(items), dated)
+        batch, refused, column_tables = views._column_items(basis, items, dated)
+    assert isinstance(batch, ItemBatch) and not refused
+    assert batch.rows.tolist() == list(range(60))
+    for got, want in zip(batch, objects, strict=True):
+        assert got.lives[0].age == want.lives[0].age
+        # The same cohort table (each request builds its own list, in its own order).
+        assert column_tables[got.lives[0].table] is object_tables[want.lives[0].table]
 
 
 @pytest.mark.parametrize("items", [[], [1], [None], [{}, None, 3], {"a": 1}, "x", None,
