@@ -44,24 +44,27 @@ def value(tables, cols, ages, anchor, dkey, growth, m, delta, slots, deadline):
     done = np.zeros(n, dtype=bool)
     t = cols.table
     mult, extra = cols.mortality_multiplier, cols.flat_extra
-    # Keys: (table, multiplier, flat extra, escalation); items sorted by key, so that each
-    # chunk builds the columns of its own keys only (memory bounded by the chunk).
-    order = np.lexsort((growth, extra, mult, t))
+    # Keys: (table, multiplier, flat extra, escalation), found per chunk of consecutive
+    # items (views, not copies), whose columns are built for its own keys only (memory
+    # bounded by the chunk).
     for start in range(0, n, _c._CHUNK_ITEMS):
         _c._on_time(deadline)
-        idx = order[start:start + _c._CHUNK_ITEMS]
-        new = np.zeros(idx.size, dtype=bool)
+        part = slice(start, min(start + _c._CHUNK_ITEMS, n))
+        keys = (t[part], mult[part], extra[part], growth[part])
+        order = np.lexsort(keys[::-1])
+        new = np.zeros(order.size, dtype=bool)
         new[0] = True
-        for column in (t, mult, extra, growth):
-            part = column[idx]
-            new[1:] |= part[1:] != part[:-1]
-        key = np.cumsum(new) - 1
-        rep = idx[new]
-        shared = _Shared.build(tables, t[rep], mult[rep], extra[rep], growth[rep] - delta)
-        got, ok = _value_chunk(tables, cols, idx, shared, key, ages[idx], anchor[idx],
-                               dkey[idx], growth[idx], m[idx], delta, slots)
-        values[idx] = got
-        done[idx] = ok
+        for column in keys:
+            ordered = column[order]
+            new[1:] |= ordered[1:] != ordered[:-1]
+        key = np.empty(order.size, dtype=np.intp)
+        key[order] = np.cumsum(new) - 1
+        rep = order[new]
+        shared = _Shared.build(tables, keys[0][rep], keys[1][rep], keys[2][rep],
+                               keys[3][rep] - delta)
+        values[part], done[part] = _value_chunk(
+            tables, cols, part, shared, key, ages[part], anchor[part], dkey[part],
+            growth[part], m[part], delta, slots)
     return values, done
 
 
@@ -104,7 +107,9 @@ class _Shared:
 
 def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth, m, delta,
                  slots):
-    size = idx.size
+    """Values of the items ``idx`` (an index or a slice of ``cols``), and which of them the
+    key columns could value."""
+    size = key.size
     t = cols.table[idx]
     last = sh.last[key]
     base = anchor - sh.first[key]  # the column index of the integer age
