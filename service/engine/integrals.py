@@ -34,12 +34,18 @@ _REACH = [(1e-19 * math.factorial(k)) ** (1 / k) if k else 0.0
 def phi(n: int, x):
     """Return phi_n(x) = integral_0^1 u^n e^(-x u) du, for n = 0, 1, 2.
 
-    Where |x| < 1/2 the power series sum_k (-x)^k / (k! (n + k + 1)) (by Horner's rule, no
-    cancellation); elsewhere the closed form. Each is evaluated only where it is used.
+    For n = 1, 2 where |x| < 1/2 the power series sum_k (-x)^k / (k! (n + k + 1)) (by
+    Horner's rule, no cancellation); elsewhere, and for n = 0 everywhere (1 at 0), the
+    closed form. Each is evaluated only where it is used.
     """
     if n not in _COEFFICIENTS:
         raise ValueError(n)
     x = np.asarray(x, dtype=float)
+    if n == 0:
+        # -expm1(-x) / x loses nothing as x goes to 0 (expm1 keeps its relative precision):
+        # no series is needed but at 0 itself.
+        with np.errstate(invalid="ignore", over="ignore"):
+            return np.where(x == 0, 1.0, -np.expm1(-x) / np.where(x == 0, 1.0, x))
     out = np.empty(x.shape)
     small = np.abs(x) < _SERIES_BELOW
     xs = x[small]

@@ -18,8 +18,6 @@ import operator
 from functools import lru_cache
 from itertools import accumulate
 
-from service.engine.integrals import _COEFFICIENTS, _SERIES_BELOW
-
 #: Batches up to this size are valued here (when every item is covered).
 SMALL_BATCH = 8
 _SNAP = 1e-9  # as service.engine.survival
@@ -28,13 +26,8 @@ _ILL = 1e-3  # as service.engine.columns
 
 
 def _phi0(x: float) -> float:
-    """integral_0^1 e^(-x u) du, as service.engine.integrals.phi(0, x) (series near 0)."""
-    if abs(x) < _SERIES_BELOW:
-        acc = 0.0
-        for c in _COEFFICIENTS[0].tolist():
-            acc = acc * x + c
-        return acc
-    return -math.expm1(-x) / x
+    """integral_0^1 e^(-x u) du, as service.engine.integrals.phi(0, x)."""
+    return 1.0 if x == 0 else -math.expm1(-x) / x
 
 
 def _annuity_certain(delta: float, n: float, m: int, advance: bool) -> float:
