@@ -71,7 +71,6 @@ from service.engine.batch import _expand, _on_time, _prepare
 from service.engine.checks import _check_item
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.integrals import phi
-from service.engine.interest import annuity_certain
 from service.engine.items import (
     EXACT_SUM,
     INTEGRAL,
@@ -895,23 +894,16 @@ def _guarantee(win: _Windows, m, growth, delta, alive):
     form, and of the part year."""
     out = np.zeros(win.guaranteed.size)
     g = np.flatnonzero(win.guaranteed > 0)
-    # The certain part depends only on (payments, m, timing, escalation): computed once for
-    # each distinct one (a batch has few).
-    rates, by_rate = np.unique(growth[g], return_inverse=True)
-    shape = (win.guaranteed[g] * (2 * MAX_FREQUENCY + 2) + m[g] * 2 + win.arr[g]) \
-        * rates.size + by_rate
-    _, first, back = np.unique(shape, return_index=True, return_inverse=True)
-    u = g[first]
-    whole, part = np.divmod(win.guaranteed[u], m[u])
-    lam = delta - growth[u]
-    i = math.expm1(delta)
-    advance = win.arr[u] == 0
-    mf = win.mf[u]
-    years = whole * phi(0, whole * lam) / phi(0, lam) * annuity_certain(
-        i, 1.0, m=mf, advance=advance)
-    tail = np.where(part > 0, np.exp(-lam * whole)
-                    * annuity_certain(i, part / mf, m=mf, advance=advance), 0.0)
-    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)[back]
+    whole, part = np.divmod(win.guaranteed[g], m[g])
+    lam = delta - growth[g]
+    advance = win.arr[g] == 0
+    mf = win.mf[g]
+    # a-due^(m) of n years is n phi(n delta) / phi(delta / m) (interest.annuity_certain),
+    # in arrears v^(1/m) times it; the whole years' sum is a geometric series.
+    step = np.where(advance, 1.0, np.exp(-delta / mf)) / phi(0, delta / mf)
+    years = whole * phi(0, whole * lam) / phi(0, lam) * (phi(0, delta) * step)
+    tail = np.exp(-lam * whole) * (part / mf) * phi(0, part / mf * delta) * step
+    out[g] = alive[g] * np.exp(-delta * win.u[g]) * (years + tail)
     return out
 
 
