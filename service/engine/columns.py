@@ -365,17 +365,15 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
     outside the table's ages, selected outside the select table, or dead at their age."""
     ages = cols.age + cols.age_adjustment
     t = cols.table
-    lo = np.array([tb.first_age for tb in tables])[t]
-    hi = np.array([tb.last_age for tb in tables])[t]
+    flat = _flat_rates(tuple(tables))
+    lo, hi = flat.first[t], flat.last[t]
     outside = ~((ages >= lo - _SNAP) & (ages <= hi + _SNAP))
     anchor = np.where(outside, lo, np.floor(ages + _SNAP).astype(np.int64))
     dkey = _select_key(tables, t, cols.duration)
-    suspect = outside.copy()
-    for ti, table in enumerate(tables):
-        rows = (t == ti) & (dkey >= 0)
-        if rows.any():
-            sel = anchor[rows] - dkey[rows]
-            suspect[rows] |= (sel < table.select_first_age) | (sel > table.select_last_age)
+    # Selected outside the select table's ages (select tables only have dkey >= 0).
+    sel = anchor - dkey
+    first = flat.select_first[t]
+    suspect = outside | ((dkey >= 0) & ((sel < first) | (sel >= first + flat.select_rows[t])))
     ok = ~suspect
     # (Under UDD no life is dead at its age: 1 - f q >= 1 - f > 0, the fraction f < 1.)
     if ok.any() and assumption != "udd":
@@ -388,10 +386,10 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
 
 def _select_key(tables, t, duration) -> np.ndarray:
     """The whole select duration where the life is in its select period, else -1."""
-    period = np.array([tb.select_period for tb in tables], dtype=float)[t]
+    period = _flat_rates(tuple(tables)).period[t]
     with np.errstate(invalid="ignore"):
-        selected = np.isfinite(duration) & (duration < period)
-    return np.where(selected, np.nan_to_num(duration), -1).astype(np.int64)
+        selected = (duration >= 0) & (duration < period)  # (False for NaN and inf)
+    return np.where(selected, duration, -1).astype(np.int64)
 
 
 def _year_rates(tables, t, anchor, dkey, mult, extra, k):
@@ -690,7 +688,8 @@ def _value_small(tables, rows, items, valuation: Valuation, max_work, deadline,
     return small.value_rows(tables, rows, valuation.curve.constant_force)
 
 
-def _slot_tables(ms, delta):
+@lru_cache(maxsize=64)
+def _slot_tables(ms: tuple, delta: float):
     """For each frequency m: P0[k] = sum_(i<k) x^i and P1[k] = sum_(i<k) i x^i, x = e^(-delta/m),
     k = 0..m, concatenated; return (offset by m, P0, P1)."""
     offset = {}
@@ -727,7 +726,7 @@ def _value(tables, cols: Columns, valuation: Valuation, deadline) -> np.ndarray:
     growth = np.log1p(cols.escalation)
     m_all = cols.frequency.astype(np.int64)
     delta = valuation.curve.constant_force
-    ms = np.unique(m_all).tolist()
+    ms = tuple(np.unique(m_all).tolist())
     slots = _slot_tables(ms, delta)
     done = None
     if valuation.fractional_age == "udd":
