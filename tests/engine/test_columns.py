@@ -28,6 +28,8 @@ from service.engine.annuity import (
 )
 from service.engine.columns import Columns, problems, value_columns
 from service.engine.errors import DeadlineError, ItemError, WorkLimitError
+from tests.engine.paths import assert_same as _assert_same
+from tests.engine.paths import valid as _valid
 from tests.reference import models
 
 ASSUMPTIONS = ("udd", "constant-force", "balducci")
@@ -83,33 +85,6 @@ def _random_items(rng, tables, n):
                                             deferral, guarantee,
                                             float(rng.choice([0.0, 0.02, -0.01, 0.05])))))
     return items
-
-
-def _valid(tables, items, valuation):
-    """Drop the items the general path refuses (ages moved outside the table, lives dead at
-    their adjusted age), checking first that both paths refuse the same ones."""
-    while True:
-        errors = []
-        for fast in (True, False):
-            try:
-                value_annuities(tables, items, valuation, fast=fast)
-                errors.append(None)
-            except ItemError as exc:
-                errors.append(exc.errors)
-        assert errors[0] == errors[1]
-        if errors[0] is None:
-            return items
-        bad = {int(path.split(".")[0]) for path in errors[0]}
-        items = [item for n, item in enumerate(items) if n not in bad]
-
-
-def _assert_same(tables, items, valuation):
-    fast = value_annuities(tables, items, valuation)
-    general = value_annuities(tables, items, valuation, fast=False)
-    np.testing.assert_allclose(fast.value, general.value, rtol=RTOL, atol=0)
-    assert fast.method_code.tolist() == general.method_code.tolist()
-    assert fast.methods == general.methods
-    return fast
 
 
 @pytest.mark.parametrize("assumption", ASSUMPTIONS)

@@ -18,7 +18,8 @@ from service.engine import small
 from service.engine.annuity import EXACT_SUM, Item, Life, Payments, Valuation, value_annuities
 from service.engine.columns import Columns, value_columns
 from service.engine.errors import DeadlineError, ItemError, WorkLimitError
-from tests.engine.test_columns import BAD, _random_items, _valid
+from tests.engine.paths import valid as _valid
+from tests.engine.test_columns import BAD, _random_items
 from tests.reference import models
 
 RTOL = 1e-12
