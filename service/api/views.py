@@ -370,20 +370,29 @@ def _plain_place(basis, tables, base, life, item, valuation_date) -> int | None:
     """The index in the request's ``tables`` of the table a plain life follows (its age from
     its date of birth first, recorded in the item's ``ages`` as :func:`_engine_items` does),
     or None where :func:`_engine_items` must word a problem with it."""
-    if life["date_of_birth"] is not None:
-        if valuation_date is None:
-            return None
-        try:
-            age = age_at(life["date_of_birth"], valuation_date, basis.age_definition)
-        except ValueError:
-            return None
-        life["age"] = age
-        item["ages"] = [age]
-        use_age_definition(basis)
+    if life["date_of_birth"] is not None and (
+            valuation_date is None or _age_from_birth(basis, item, 0, valuation_date)):
+        return None
     try:
         return tables.index(base, life["age"] + life["age_adjustment"])
     except CohortError:
         return None
+
+
+def _age_from_birth(basis, item, k, valuation_date) -> str | None:
+    """Give life ``k`` of ``item`` its age from its date of birth by the basis' age
+    definition, recorded in the item's ``ages`` for the result; return the problem with the
+    date (its age is then 0), or None."""
+    life = item["lives"][k]
+    problem = None
+    try:
+        life["age"] = age_at(life["date_of_birth"], valuation_date, basis.age_definition)
+    except ValueError as exc:
+        problem = f"{str(exc).capitalize()}."
+        life["age"] = 0.0
+    item.setdefault("ages", [None] * len(item["lives"]))[k] = life["age"]
+    use_age_definition(basis)
+    return problem
 
 
 def _engine_items(basis, items, valuation_date, build=None, *, tables=None):
@@ -409,14 +418,9 @@ def _engine_items(basis, items, valuation_date, build=None, *, tables=None):
                 problems[f"lives.{k}.sex"] = [_no_table(basis)]
                 index = 0
             if life["date_of_birth"] is not None:
-                try:
-                    life["age"] = age_at(life["date_of_birth"], valuation_date,
-                                         basis.age_definition)
-                except ValueError as exc:
-                    problems[f"lives.{k}.date_of_birth"] = [f"{str(exc).capitalize()}."]
-                    life["age"] = 0.0
-                item.setdefault("ages", [None] * len(item["lives"]))[k] = life["age"]
-                use_age_definition(basis)
+                problem = _age_from_birth(basis, item, k, valuation_date)
+                if problem is not None:
+                    problems[f"lives.{k}.date_of_birth"] = [problem]
             rated = life["age"] + life["age_adjustment"]
             try:
                 index = tables.index(index, rated)

@@ -82,11 +82,17 @@ def _survival_slope(p, mu):
     return np.where(alive, -np.where(alive, mu, 0.0) * p, 0.0)
 
 
-def _prepare(tables, items, valuation: Valuation) -> _Batch:
+def _check_items(items) -> dict[str, list[str]]:
+    """Every item's own problems (``_check_item``), by path in the batch ("3.lives.0.age")."""
     errors: dict[str, list[str]] = {}
     for n, item in enumerate(items):
         for path, msgs in _check_item(item).items():
             errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    return errors
+
+
+def _prepare(tables, items, valuation: Valuation) -> _Batch:
+    errors = _check_items(items)
     if errors:
         raise ItemError(errors)
 

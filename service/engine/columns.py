@@ -67,7 +67,7 @@ import numpy as np
 
 from service.engine import annuity, small
 from service.engine.annuity import Values
-from service.engine.batch import _expand, _on_time, _prepare
+from service.engine.batch import _check_items, _expand, _on_time, _prepare
 from service.engine.checks import _check_item
 from service.engine.errors import ItemError, WorkLimitError
 from service.engine.integrals import phi
@@ -522,20 +522,15 @@ def value_columns(tables, columns, valuation: Valuation, *, max_work: int | None
     mine = cols if not rest.size else cols.take(fast)
     fast_work = int(_work(tables, mine, valuation.fractional_age).sum())
     values = np.zeros(len(cols))
+    code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
     if rest.size:
-        left = None if max_work is None else max_work - fast_work
-        try:
-            got = annuity.value_annuities(tables, cols.take(rest).to_items(), valuation,
-                                          max_work=left, deadline=deadline, fast=False)
-        except WorkLimitError as exc:
-            raise WorkLimitError(exc.work + fast_work, max_work) from None
+        got = _within(fast_work, max_work, lambda left: annuity.value_annuities(
+            tables, cols.take(rest).to_items(), valuation, max_work=left, deadline=deadline,
+            fast=False))
         values[rest] = got.value
-        code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
         code[rest] = got.method_code
-    else:
-        if max_work is not None and fast_work > max_work:
-            raise WorkLimitError(fast_work, max_work)
-        code = np.full(len(cols), EXACT_SUM, dtype=np.int8)
+    elif max_work is not None and fast_work > max_work:
+        raise WorkLimitError(fast_work, max_work)
     if not rest.size:
         values = _value(tables, cols, valuation, deadline)
     elif len(mine):
@@ -615,23 +610,41 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     values = np.zeros(size)
     code = np.full(size, EXACT_SUM, dtype=np.int8)
     rest = np.setdiff1d(np.arange(size), which)
-    if rest.size:
-        left = None if max_work is None else max_work - fast_work
-        try:
-            got = joint_columns.value_general(tables, [items[n] for n in rest.tolist()],
-                                              valuation, max_work=left, deadline=deadline)
-        except ItemError:
-            _prepare(tables, items, valuation)  # the same problems, placed in the batch
-            raise
-        except WorkLimitError as exc:
-            raise WorkLimitError(exc.work + fast_work, max_work) from None
-        values[rest] = got.value
-        code[rest] = got.method_code
-    elif max_work is not None and fast_work > max_work:
-        raise WorkLimitError(fast_work, max_work)
+    _value_rest(joint_columns.value_general, tables, items, rest, valuation, values, code,
+                fast_work=fast_work, max_work=max_work, deadline=deadline)
     values[which] = _value(tables, cols, valuation, deadline)
     code[which] = np.where(cols.timing == CONTINUOUS, INTEGRAL, EXACT_SUM)
     return Values(values, code, methods(valuation))
+
+
+def _within(done: int, max_work: int | None, value):
+    """``value(left)``, ``left`` what ``max_work`` leaves after ``done`` work units (None for
+    no bound); a WorkLimitError it raises counts ``done`` too."""
+    left = None if max_work is None else max_work - done
+    try:
+        return value(left)
+    except WorkLimitError as exc:
+        raise WorkLimitError(exc.work + done, max_work) from None
+
+
+def _value_rest(general, tables, items, rest, valuation: Valuation, values, code, *,
+                fast_work: int, max_work, deadline) -> None:
+    """Value ``items[rest]`` by ``general`` (a value_annuities-like call) into ``values`` and
+    ``code``, within what the fast items' ``fast_work`` leaves of ``max_work``; an ItemError
+    is raised as the general path places it in the whole batch."""
+    if not rest.size:
+        if max_work is not None and fast_work > max_work:
+            raise WorkLimitError(fast_work, max_work)
+        return
+    try:
+        got = _within(fast_work, max_work, lambda left: general(
+            tables, [items[n] for n in rest.tolist()], valuation, max_work=left,
+            deadline=deadline))
+    except ItemError:
+        _prepare(tables, items, valuation)  # the same problems, placed in the batch
+        raise
+    values[rest] = got.value
+    code[rest] = got.method_code
 
 
 def _plain(item, exact: bool) -> bool:
@@ -668,10 +681,7 @@ def _value_small(tables, rows, items, valuation: Valuation, max_work, deadline,
     """Value a few covered rows in plain floats, after the checks the column path makes:
     each item's own (``_check_item``), then its table index, then its life under its table
     (where a row is suspect, ``find()`` words the problems, as the path it stands in for)."""
-    errors: dict[str, list[str]] = {}
-    for n, item in enumerate(items):
-        for path, msgs in _check_item(item).items():
-            errors.setdefault(f"{n}.{path}", []).extend(msgs)
+    errors = _check_items(items)
     if errors:
         raise ItemError(errors)
     bad = [n for n, row in enumerate(rows) if not 0 <= row[0] < len(tables)]
@@ -790,14 +800,8 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
 
     values = np.zeros(size)
     # The guarantee: P(alive at u) v^u sum over its years, in closed form.
-    has_g = guaranteed > 0
-    if has_g.any():
-        s = frac + u
-        ku = np.floor(s + _SNAP)
-        ru = np.clip(s - ku, 0.0, 1.0)
-        ku = np.clip(ku, 0, width).astype(np.intp)
-        alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
-                                                   assumption) / start
+    if (guaranteed > 0).any():
+        alive = _alive_at(q, cum, chain, frac + u, start, assumption)
         values += _guarantee(win, m, growth, delta, alive)
 
     live = win.live
@@ -885,6 +889,18 @@ def _windows(cols, idx, ages, anchor, growth, m, delta, last) -> _Windows:
     return _Windows(frac, u, mf, arr, big, phi_, guaranteed, count, first, n0, dm,
                     np.exp(delta * big / mf - dq * growth), np.exp(-growth), growth - delta,
                     live, np.where(live, ka, 0), ia, np.where(live, kb, 0), ib)
+
+
+def _alive_at(q, cum, chain, position, start, assumption):
+    """The probability that each life, alive at the fraction of its first year where its
+    chain starts (``start``: survival to it from the integer age), is alive at ``position``
+    years past its integer age (the deferral's end: f + u), from its chain's q and C."""
+    width = q.shape[1]
+    k = np.floor(position + _SNAP)
+    r = np.clip(position - k, 0.0, 1.0)
+    k = np.clip(k, 0, width).astype(np.intp)
+    return cum[chain, k] * fraction_survival(q[chain, np.minimum(k, width - 1)], r,
+                                             assumption) / start
 
 
 def _guarantee(win: _Windows, m, growth, delta, alive):

@@ -188,7 +188,7 @@ def _chains(tables, t, dkey, mult, extra, anchor, growth):
 
 
 def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, delta, assumption):
-    from service.engine.columns import _whole_years
+    from service.engine.columns import _alive_at, _whole_years
 
     t = cols.table[idx]
     chain, rep, q, cum = _chains(tables, t, dkey, cols.mortality_multiplier[idx],
@@ -204,12 +204,7 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, delta, assumptio
     values = np.zeros(idx.size)
     has_g = g > 0
     if has_g.any():
-        s = frac + u
-        ku = np.floor(s + _SNAP)
-        ru = np.clip(s - ku, 0.0, 1.0)
-        ku = np.clip(ku, 0, width).astype(np.intp)
-        alive = cum[chain, ku] * fraction_survival(q[chain, np.minimum(ku, width - 1)], ru,
-                                                   assumption) / start
+        alive = _alive_at(q, cum, chain, frac + u, start, assumption)
         whole = np.floor(g)
         part = g - whole
         lam = delta - growth

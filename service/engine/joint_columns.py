@@ -64,6 +64,7 @@ prepared by the general path (:func:`problems`).
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
+from functools import partial
 
 import numpy as np
 
@@ -82,7 +83,9 @@ from service.engine.columns import (
     _pair_chunks,
     _row_item,
     _select_key,
+    _value_rest,
     _whole_or_float,
+    _within,
     value_columns,
 )
 from service.engine.columns import _work as _column_work
@@ -286,20 +289,8 @@ def dispatch(tables, items, valuation, *, max_work, deadline) -> Values | None:
         others = np.ones(size, dtype=bool)
         others[which] = False
         rest = np.flatnonzero(others)
-    if rest.size:
-        left = None if max_work is None else max_work - fast_work
-        try:
-            got = annuity.value_annuities(tables, [items[n] for n in rest.tolist()], valuation,
-                                          max_work=left, deadline=deadline, fast=False)
-        except ItemError:
-            _prepare(tables, items, valuation)  # the same problems, placed in the list
-            raise
-        except WorkLimitError as exc:
-            raise WorkLimitError(exc.work + fast_work, max_work) from None
-        values[rest] = got.value
-        code[rest] = got.method_code
-    elif max_work is not None and fast_work > max_work:
-        raise WorkLimitError(fast_work, max_work)
+    _value_rest(partial(annuity.value_annuities, fast=False), tables, items, rest, valuation,
+                values, code, fast_work=fast_work, max_work=max_work, deadline=deadline)
     try:
         values[which] = _value(tables, pairs, count, guaranteed, valuation, deadline)
     except _Refused:
@@ -897,18 +888,15 @@ def value_joint_columns(tables, columns, valuation: Valuation, *, max_work: int 
     for rows, how in ((np.flatnonzero(~two), "columns"), (np.flatnonzero(two & ~fast), "items")):
         if not rows.size:
             continue
-        left = None if max_work is None else max_work - done
-        try:
-            if how == "columns":
-                got = value_columns(tables, cols.first.take(rows), valuation, max_work=left,
-                                    deadline=deadline)
-                done += int(_column_work(tables, cols.first.take(rows),
-                                         valuation.fractional_age).sum())
-            else:
-                got = annuity.value_annuities(tables, cols.take(rows).to_items(), valuation,
-                                              max_work=left, deadline=deadline, fast=False)
-        except WorkLimitError as exc:
-            raise WorkLimitError(exc.work + done, max_work) from None
+        if how == "columns":
+            got = _within(done, max_work, lambda left, rows=rows: value_columns(
+                tables, cols.first.take(rows), valuation, max_work=left, deadline=deadline))
+            done += int(_column_work(tables, cols.first.take(rows),
+                                     valuation.fractional_age).sum())
+        else:
+            got = _within(done, max_work, lambda left, rows=rows: annuity.value_annuities(
+                tables, cols.take(rows).to_items(), valuation, max_work=left,
+                deadline=deadline, fast=False))
         values[rows] = got.value
         code[rows] = got.method_code
     if pairs is not None:

@@ -17,9 +17,9 @@ from tests.reference import models
 
 
 def test_whole_life_annuity_due_is_n_over_d():
-    # Textbook commutation functions (e.g. Neill, Life Contingencies, ch. 3; common
-    # practice): D_x = v^x l_x, N_x = sum_(y >= x) D_y and a-due_x = N_x / D_x, computed here
-    # in plain Python from the table's rates.
+    # Textbook commutation functions (e.g. Neill, Life Contingencies, ch. 3, the chapter
+    # recalled from memory; common practice): D_x = v^x l_x, N_x = sum_(y >= x) D_y and
+    # a-due_x = N_x / D_x, computed here in plain Python from the table's rates.
     table = models.susm()
     q = table.q.tolist()
     v = 1 / 1.04
