@@ -18,11 +18,15 @@ import operator
 from functools import lru_cache
 from itertools import accumulate
 
+import numpy as np
+
 #: Batches up to this size are valued here (when every item is covered).
 SMALL_BATCH = 8
 _SNAP = 1e-9  # as service.engine.survival
 _EPS = 1e-9  # as service.engine.annuity
 _ILL = 1e-3  # as service.engine.columns
+_CANCELLATION = 64.0  # as service.engine.columns
+_TINY, _HUGE = 1e-290, 1e290  # as service.engine.commutation
 
 
 def _phi0(x: float) -> float:
@@ -138,15 +142,25 @@ def _value_row(tables, row, delta: float) -> float:
         ku = math.floor(s + _SNAP)
         ru = min(max(s - ku, 0.0), 1.0)
         ku = min(max(ku, 0), width)
-    # The chain as far as it is used: q_k for k < need, C_k for k <= need.
+    # Survival C_k (k <= need) and rates q_k (k < need), from the table-wide column of the
+    # life's key where it can stand in for the life's own chain, else from that chain.
     need = min(width, max(kb + 2 if count > first else 1, ku + 1))
-    q = _chain(table, anchor, _select_key(table, duration), mult, extra, need)
-    cum = [1.0, *accumulate([1.0 - rate for rate in q], operator.mul)]
-    start = 1.0 - frac * q[0]
+    dkey = _select_key(table, duration)
+    column = _column(table, mult, extra, lw) if dkey < 0 else None
+    base = anchor - table.first_age
+    if column is not None and column.ok and column.life[base] > 0:
+        lives, rates = column.life, column.q
+        at = 1.0 / lives[base]
+    else:
+        column, base, at = None, 0, 1.0
+        rates = _chain(table, anchor, dkey, mult, extra, need)
+        lives = [1.0, *accumulate([1.0 - rate for rate in rates], operator.mul)]
+    start = 1.0 - frac * rates[base]
 
     value = 0.0
     if guaranteed > 0:
-        alive = cum[ku] * (1.0 - ru * q[min(ku, width - 1)]) / start
+        alive = (lives[base + ku] * at * (1.0 - ru * rates[base + min(ku, width - 1)])
+                 / start)
         whole, part = divmod(guaranteed, m)
         lam = delta - growth
         advance = arr == 0
@@ -178,16 +192,78 @@ def _value_row(tables, row, delta: float) -> float:
         return a, b
 
     a1, b1 = weights(ia, ib + 1 if kb == ka else m)
-    life = math.exp(ka * lw) * (a1 * cum[ka] + b1 * cum[ka + 1])
+    life = math.exp(ka * lw) * (a1 * lives[base + ka] + b1 * lives[base + ka + 1])
     if kb > ka:
         a2, b2 = weights(0, ib + 1)
-        life += math.exp(kb * lw) * (a2 * cum[kb] + b2 * cum[kb + 1])
+        life += math.exp(kb * lw) * (a2 * lives[base + kb] + b2 * lives[base + kb + 1])
     if kb > ka + 1:
         af, bf = weights(0, m)
-        # w^K by repeated multiplication (relative error about K eps, K < 200)
-        w, wk, whole = math.exp(lw), math.exp((ka + 1) * lw), 0.0
-        for c0, c1 in zip(cum[ka + 1:kb], cum[ka + 2:kb + 1], strict=True):
-            whole += wk * (af * c0 + bf * c1)
-            wk *= w
-        life += whole
-    return value + life / (m * start)
+        life += _whole_years(column, lives, base, ka + 1, kb, lw, af, bf)
+    return value + life * at / (m * start)
+
+
+def _whole_years(column, lives, base: int, lo: int, hi: int, lw: float, af: float,
+                 bf: float) -> float:
+    """sum over lo <= K < hi of w^K (A S(K) + B S(K + 1)), S(k) = lives[base + k] (w = e^lw):
+    from the column's sums where it has them and the difference does not cancel badly
+    (as commutation._whole_years), else term by term."""
+    if column is not None:
+        i0, i1 = base + lo, base + hi
+        pre = af * column.pd[i0] + bf * column.pe[i0]
+        suf = af * column.sd[i1] + bf * column.se[i1]
+        if pre <= suf:
+            total = af * (column.pd[i1] - column.pd[i0]) + bf * (column.pe[i1] - column.pe[i0])
+        else:
+            total = af * (column.sd[i0] - column.sd[i1]) + bf * (column.se[i0] - column.se[i1])
+        if min(pre, suf) <= _CANCELLATION * total:
+            return total * math.exp(-base * lw)
+    # w^K by repeated multiplication (relative error about K eps, K < 200)
+    w, wk, whole = math.exp(lw), math.exp(lo * lw), 0.0
+    for c0, c1 in zip(lives[base + lo:base + hi], lives[base + lo + 1:base + hi + 1],
+                      strict=True):
+        whole += wk * (af * c0 + bf * c1)
+        wk *= w
+    return whole
+
+
+class _Column:
+    """One key's column over its table's ages j = age - first age (``_column``): q'(j),
+    L(j) (L(0) = 1), and the prefix and suffix sums of D(j) = w^j L(j) and E(j) = w^j L(j + 1)
+    (``pd[i]``: the sum over j < i; ``sd[i]``: over j >= i), as lists of floats; ``ok``
+    where every L and D lies within the bounds commutation keeps."""
+
+    __slots__ = ("q", "life", "pd", "sd", "pe", "se", "ok")
+
+    def __init__(self, q, life, pd, sd, pe, se, ok):
+        self.q, self.life, self.pd, self.sd, self.pe, self.se, self.ok = (
+            q, life, pd, sd, pe, se, ok)
+
+
+#: Columns kept (by table, multiplier, flat extra and escalation against the rate): a
+#: basis' tables at its own rate are a handful of keys.
+_COLUMNS_KEPT = 256
+
+
+@lru_cache(maxsize=_COLUMNS_KEPT)
+def _column(table, mult: float, extra: float, lw: float) -> _Column:
+    """The column of lives of ``table`` with rates q' = min(q x mult + extra, 1) (q' = 1 from
+    the last age, as on a chain) at w = e^lw. (Tables compare by identity.)"""
+    span = table.last_age - table.first_age
+    width = span + 4
+    q = np.ones(width)
+    base = table.q[:span]
+    q[:span] = base if mult == 1.0 and extra == 0.0 else np.minimum(base * mult + extra, 1.0)
+    life = np.ones(width + 1)
+    life[1:] = np.cumprod(1.0 - q)
+    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
+        w = np.exp(np.arange(width + 1) * lw)
+        d = w * life
+        e = np.append(w[:-1] * life[1:], 0.0)
+    ok = bool(math.isfinite(lw) and np.all(np.isfinite(d) & (d < _HUGE) & ((d == 0) | (d > _TINY)))
+              and np.all((life == 0) | (life > _TINY)))
+    zero = np.zeros(1)
+    pd, pe = np.concatenate([zero, np.cumsum(d)]), np.concatenate([zero, np.cumsum(e)])
+    sd = np.concatenate([np.cumsum(d[::-1])[::-1], zero])
+    se = np.concatenate([np.cumsum(e[::-1])[::-1], zero])
+    return _Column(q.tolist(), life.tolist(), pd.tolist(), sd.tolist(), pe.tolist(),
+                   se.tolist(), ok)

@@ -18,6 +18,7 @@ from service.engine import small
 from service.engine.annuity import EXACT_SUM, Item, Life, Payments, Valuation, value_annuities
 from service.engine.columns import Columns, value_columns
 from service.engine.errors import DeadlineError, ItemError, WorkLimitError
+from service.engine.tables import MortalityTable
 from tests.engine.paths import valid as _valid
 from tests.engine.test_columns import BAD, _random_items
 from tests.reference import models
@@ -130,3 +131,65 @@ def test_a_life_with_little_of_its_last_year_left_keeps_its_digits():
     batch = value_annuities(tables, [item] * (small.SMALL_BATCH + 1), valuation).value
     assert alone == pytest.approx(expected, rel=1e-12)
     np.testing.assert_allclose(batch, expected, rtol=1e-12)
+
+
+def _chains_only(monkeypatch):
+    """Make small._value_row value every life from its own chain (no table-wide column)."""
+    monkeypatch.setattr(small, "_column", lambda *args: None)
+
+
+@pytest.mark.parametrize("rate", [0.04, -0.01, 0.5])
+def test_the_table_wide_column_and_each_life_s_own_chain_agree(bases, rate, monkeypatch):
+    # A one-item batch is valued from the column of its (table, multiplier, flat extra,
+    # escalation), kept between calls; with the columns switched off, from the life's own
+    # chain. Both agree with the general path to 1e-12 relative.
+    rng = np.random.default_rng(4300 + int(rate * 100))
+    valuation = Valuation(rate)
+    for basis in bases:
+        items = _valid(basis.tables, _random_items(rng, basis.tables, 40), valuation)
+        general = value_annuities(basis.tables, items, valuation, fast=False).value
+        small._column.cache_clear()
+        by_column = [value_annuities(basis.tables, [item], valuation).value[0]
+                     for item in items]
+        assert small._column.cache_info().hits > 0  # the columns were used, and kept
+        with monkeypatch.context() as patch:
+            _chains_only(patch)
+            by_chain = [value_annuities(basis.tables, [item], valuation).value[0]
+                        for item in items]
+        np.testing.assert_allclose(by_column, general, rtol=RTOL, atol=0)
+        np.testing.assert_allclose(by_chain, general, rtol=RTOL, atol=0)
+
+
+def test_a_column_that_died_before_the_life_s_age_leaves_the_life_to_its_chain():
+    # An invented table whose rate at 62 is 0.6: with a multiplier of 2 the column of
+    # (table, 2, 0) is dead from 63, but a life aged 64 (rate 0.1 x 2) is alive. Its value
+    # is the definition, summed here year by year: sum_k v^k prod_(j<k) (1 - q'(64 + j)).
+    q = [0.01, 0.02, 0.6, 0.05, 0.1, 0.2, 0.3, 1.0]  # ages 60 to 67
+    table = MortalityTable.of(60, q)
+    item = Item((Life(64.0, mortality_multiplier=2.0),), Payments("advance", 1))
+    v = 1 / 1.05
+    expected, alive = 0.0, 1.0
+    for k, rate in enumerate(q[4:]):
+        expected += v**k * alive
+        alive *= 1 - min(2 * rate, 1.0)
+    small._column.cache_clear()
+    got = value_annuities([table], [item], Valuation(0.05)).value[0]
+    assert small._column(table, 2.0, 0.0, -math.log(1.05)).life[64 - 60] == 0.0
+    assert got == pytest.approx(expected, rel=1e-14)
+
+
+def test_whole_years_from_the_column_agree_with_the_sum_term_by_term():
+    # _whole_years takes a difference of prefix or suffix sums (or sums directly where that
+    # would cancel): against the sum term by term over the same lives, for every span of
+    # years, at rates that make the early or the late years dominate.
+    table = models.susm()
+    span = table.last_age - table.first_age
+    for lw in (-0.7, -0.05, 0.0, 0.03, 0.4):
+        column = small._column(table, 1.0, 0.0, lw)
+        assert column.ok
+        for base in range(0, span, 7):
+            for lo in range(1, span - base, 5):
+                for hi in range(lo + 1, min(span - base + 2, lo + 60), 3):
+                    got = small._whole_years(column, column.life, base, lo, hi, lw, 0.4, 0.6)
+                    want = small._whole_years(None, column.life, base, lo, hi, lw, 0.4, 0.6)
+                    assert got == pytest.approx(want, rel=1e-12, abs=0)
