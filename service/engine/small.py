@@ -4,9 +4,15 @@ On a batch of a few items the column path (:mod:`service.engine.columns`) spends
 the fixed cost of a hundred-odd numpy calls on arrays of one element. Here the same
 derivation (see that module's docstring: a year of age K contributes
 w^K (A C_K + B C_(K+1)) under UDD, A and B sums over the year's payment slots) is evaluated
-item by item in Python floats, a year of age at a time: O(years) an item, the slot sums
-taken from the same prefix tables. The results are the column path's to rounding (the
-whole years are summed directly rather than as differences of cumulative columns).
+item by item in Python floats, the slot sums taken from the same prefix tables.
+
+A life past any select period takes its survival from the table-wide column of its key
+(table, multiplier, flat extra, escalation against the rate), as
+:mod:`service.engine.commutation` builds them, kept between calls (a basis' tables at its
+own rate are a few keys): its whole years are a difference of the column's prefix or suffix
+sums, so an item costs the same at any term. A life in its select period, or one whose
+column died before its age, is valued on its own chain a year of age at a time. The results
+are the column path's to rounding.
 
 Covered: one life, in advance or in arrears, any frequency, under UDD and one flat rate,
 items already checked (:func:`value_rows` takes what :func:`service.engine.columns.problems`
