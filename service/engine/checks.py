@@ -32,50 +32,51 @@ def _not_whole_periods(value: float, m: int, *, least: int = 0) -> str:
 
 
 def _check_item(item: Item) -> dict[str, list[str]]:
+    """The item's own problems, by path within it (empty when it has none). Each check is
+    a comparison or two where the value is valid; messages are composed only for errors."""
     errors: dict[str, list[str]] = {}
-
-    def add(path, message):
-        errors.setdefault(path, []).append(message)
-
     p = item.payments
-    if not 1 <= len(item.lives) <= 2:
-        add("lives", "an item has one or two lives")
+    lives = item.lives
+    if not 1 <= len(lives) <= 2:
+        errors["lives"] = ["an item has one or two lives"]
     if p.timing not in TIMINGS:
-        add("timing", f"must be one of {', '.join(TIMINGS)}")
+        errors["timing"] = [f"must be one of {', '.join(TIMINGS)}"]
     discrete = p.timing != "continuous"
-    if discrete and not (isinstance(p.frequency, int) and 1 <= p.frequency <= MAX_FREQUENCY):
-        add("frequency", f"must be a whole number from 1 to {MAX_FREQUENCY}")
-    for name in ("deferral", "guarantee"):
-        v = getattr(p, name)
-        if not (math.isfinite(v) and v >= 0):
-            add(name, "must be a finite number of years, zero or more")
-    if p.term is not None and not (math.isfinite(p.term) and p.term > 0):
-        add("term", "must be a positive number of years, or null for life")
+    m = p.frequency
+    if discrete and not (isinstance(m, int) and 1 <= m <= MAX_FREQUENCY):
+        errors["frequency"] = [f"must be a whole number from 1 to {MAX_FREQUENCY}"]
+    term, deferral, guarantee = p.term, p.deferral, p.guarantee
+    if not (math.isfinite(deferral) and deferral >= 0):
+        errors["deferral"] = ["must be a finite number of years, zero or more"]
+    if not (math.isfinite(guarantee) and guarantee >= 0):
+        errors["guarantee"] = ["must be a finite number of years, zero or more"]
+    if term is not None and not (math.isfinite(term) and term > 0):
+        errors["term"] = ["must be a positive number of years, or null for life"]
     if not (math.isfinite(p.escalation) and p.escalation > -1):
-        add("escalation", "must be a finite rate above -1")
-    if ("term" not in errors and p.term is not None and math.isfinite(p.guarantee)
-            and p.guarantee > p.term * (1 + 1e-12)):
-        add("guarantee", f"a guarantee of {p.guarantee:g} years is longer than the term "
-                         f"of {p.term:g} years")
+        errors["escalation"] = ["must be a finite rate above -1"]
+    if ("term" not in errors and term is not None and math.isfinite(guarantee)
+            and guarantee > term * (1 + 1e-12)):
+        errors.setdefault("guarantee", []).append(
+            f"a guarantee of {guarantee:g} years is longer than the term of {term:g} years")
     if discrete and "frequency" not in errors:
-        for name in ("term", "deferral", "guarantee"):
-            v = getattr(p, name)
-            if v is not None and name not in errors and not _multiple_of(v, p.frequency):
-                add(name, _not_whole_periods(v, p.frequency, least=int(name == "term")))
+        for name, v in (("term", term), ("deferral", deferral), ("guarantee", guarantee)):
+            # (0 is a whole number of periods)
+            if v is not None and v != 0 and name not in errors and not _multiple_of(v, m):
+                errors[name] = [_not_whole_periods(v, m, least=int(name == "term"))]
     if item.start_requires not in START_REQUIREMENTS:
-        add("start_requires", f"must be one of {', '.join(START_REQUIREMENTS)}")
+        errors["start_requires"] = [f"must be one of {', '.join(START_REQUIREMENTS)}"]
     for k, amount in enumerate(item.survivorship):
         if not (math.isfinite(amount) and 0 <= amount <= 1):
-            add(f"survivorship.{k}", "amounts must lie between 0 and 1")
-    for n, life in enumerate(item.lives):
+            errors[f"survivorship.{k}"] = ["amounts must lie between 0 and 1"]
+    for n, life in enumerate(lives):
         if not math.isfinite(life.age + life.age_adjustment):
-            add(f"lives.{n}.age", "must be a finite age")
-        m = life.mortality_multiplier
-        if not (math.isfinite(m) and m >= 0):
-            add(f"lives.{n}.mortality_multiplier", "must be a finite number, zero or more")
+            errors[f"lives.{n}.age"] = ["must be a finite age"]
+        mult = life.mortality_multiplier
+        if not (math.isfinite(mult) and mult >= 0):
+            errors[f"lives.{n}.mortality_multiplier"] = ["must be a finite number, zero or more"]
         if not (math.isfinite(life.flat_extra) and 0 <= life.flat_extra <= 1):
-            add(f"lives.{n}.flat_extra", "must be a number from 0 to 1")
+            errors[f"lives.{n}.flat_extra"] = ["must be a number from 0 to 1"]
         if life.duration is not None and not (isinstance(life.duration, int)
                                               and life.duration >= 0):
-            add(f"lives.{n}.duration", "must be a whole number of years, zero or more")
+            errors[f"lives.{n}.duration"] = ["must be a whole number of years, zero or more"]
     return errors

@@ -569,7 +569,7 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         if all(row is not None and row[6] != CONTINUOUS for row in rows):  # (discrete)
             values = _value_small(tables, rows, items, valuation, max_work, deadline,
                                   lambda: _found(tables, items, valuation))
-            return Values(np.array(values), np.full(len(items), EXACT_SUM, dtype=np.int8),
+            return Values(np.array(values), np.array([EXACT_SUM] * len(items), dtype=np.int8),
                           methods(valuation))
     rows, which = [], []
     given = None

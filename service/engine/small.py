@@ -64,7 +64,8 @@ def _prefix(m: int, delta: float) -> tuple[list[float], list[float]]:
 def _chain(table, anchor: int, dkey: int, mult: float, extra: float, width: int) -> list[float]:
     """q_k, k < width, of a life at whole age ``anchor`` (as columns._year_rates)."""
     last = table.last_age
-    ultimate = table.q[anchor - table.first_age:last - table.first_age].tolist()[:width]
+    lo = anchor - table.first_age
+    ultimate = table.q[lo:min(last - table.first_age, lo + width)].tolist()
     base = ultimate + [1.0] * (width - len(ultimate))
     period = table.select_period
     if period and dkey >= 0:
