@@ -1,8 +1,8 @@
 """The WSGI entry that gunicorn serves: ``gunicorn 'service.wsgi:create_app()'``."""
 
 import os
+import queue
 import sys
-import threading
 
 from service.app import create_app as _create_app
 
@@ -23,15 +23,39 @@ class ValuationSlots:
 
     def __init__(self, app, slots: int):
         self.app = app
-        self.slots = threading.BoundedSemaphore(slots)
+        self.slots = Slots(slots)
 
     def __call__(self, environ, start_response):
         if environ.get("REQUEST_METHOD") != "POST":
             return self.app(environ, start_response)
-        with self.slots:
+        tokens = self.slots.tokens
+        tokens.get()
+        try:
             # Flask builds the whole response before returning it: the valuation is done
             # when this call returns, and sending the bytes needs no slot.
             return self.app(environ, start_response)
+        finally:
+            tokens.put(None)
+
+
+class Slots:
+    """A counting semaphore held as a queue of tokens: taking and giving back a slot are
+    one C call each (threading.Semaphore takes a Python-level condition for each)."""
+
+    def __init__(self, slots: int):
+        self.tokens = queue.SimpleQueue()
+        for _ in range(slots):
+            self.tokens.put(None)
+
+    def acquire(self, blocking: bool = True) -> bool:
+        try:
+            self.tokens.get(block=blocking)
+        except queue.Empty:
+            return False
+        return True
+
+    def release(self) -> None:
+        self.tokens.put(None)
 
 
 def create_app(config: dict | None = None):

@@ -1,7 +1,7 @@
 """The audit block and request id that every response carries."""
 
 import re
-import uuid
+import secrets
 import weakref
 from datetime import UTC, datetime
 from importlib import metadata
@@ -29,7 +29,7 @@ def request_id(state=None) -> str:
     if state.request_id is None:
         # (request.headers.get("X-Request-ID", ""), read where the headers live)
         incoming = request.environ.get("HTTP_X_REQUEST_ID", "")
-        state.request_id = incoming if _REQUEST_ID.match(incoming) else uuid.uuid4().hex
+        state.request_id = incoming if _REQUEST_ID.match(incoming) else secrets.token_hex(16)
     return state.request_id
 
 

@@ -17,6 +17,7 @@ from flask import request
 from marshmallow import RAISE, Schema, ValidationError, fields, utils
 from marshmallow.decorators import PRE_LOAD, VALIDATES_SCHEMA
 from werkzeug.exceptions import RequestEntityTooLarge
+from werkzeug.wsgi import get_content_length
 
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
 
@@ -52,14 +53,15 @@ def _finite_float(text):
 
 def _read_body() -> bytes:
     """Return the raw body; 413 when it is over the limit, however it is framed."""
-    limit = request.max_content_length
     # With a Content-Length over the limit this raises 413 before reading anything.
     raw = request.get_data(cache=False)
-    if limit is not None and request.content_length is None and len(raw) >= limit:
+    environ = request.environ
+    if get_content_length(environ) is None:  # (request.content_length, from the environ)
         # A chunked body has no Content-Length: the stream stops quietly at the limit, so
         # one more byte from the server's stream is what tells a body over the limit from
         # one exactly at it.
-        if request.environ["wsgi.input"].read(1):
+        limit = request.max_content_length
+        if limit is not None and len(raw) >= limit and environ["wsgi.input"].read(1):
             raise RequestEntityTooLarge()
     return raw
 

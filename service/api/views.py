@@ -85,7 +85,28 @@ _life_table_query = LifeTableQuerySchema()
 
 def _respond(schema, body: dict) -> Response:
     """A JSON answer, dumped through the schema the contract documents for it."""
-    return jsonify(dump(schema, body))
+    return _jsonify(dump(schema, body))
+
+
+def _jsonify(body) -> Response:
+    """``jsonify(body)``, byte for byte; out of debug mode (compact JSON) by an encoder kept on
+    the JSON provider for its options (``json.dumps`` with Flask's options makes one per
+    call)."""
+    app = current_app._get_current_object()
+    provider = app.json
+    if provider.compact is False or (provider.compact is None and app.debug):
+        return jsonify(body)  # indented
+    options = (provider.default, provider.ensure_ascii, provider.sort_keys)
+    kept = provider.__dict__.get(_ENCODER)
+    if kept is None or kept[0] != options:
+        kept = (options, json.JSONEncoder(separators=(",", ":"), default=options[0],
+                                          ensure_ascii=options[1], sort_keys=options[2]))
+        setattr(provider, _ENCODER, kept)
+    return app.response_class(f"{kept[1].encode(body)}\n", mimetype=provider.mimetype)
+
+
+#: The attribute of a JSON provider that keeps its compact encoder and the options it has.
+_ENCODER = "_annuity_service_compact_encoder"
 
 
 def _registry():
@@ -291,12 +312,14 @@ def _life_table_of(basis, index: int, query: dict):
 def _wants_csv() -> bool:
     """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV."""
     header = request.environ.get("HTTP_ACCEPT")
-    best = _BEST_OF_ACCEPT.get(header, _UNSEEN) if header is not None else _UNSEEN
+    if header is None:
+        return False  # no Accept header: JSON
+    best = _BEST_OF_ACCEPT.get(header, _UNSEEN)
     if best is _UNSEEN:
         if not request.accept_mimetypes:
-            return False  # no Accept header: JSON
+            return False  # an empty Accept header: JSON
         best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
-        if header is not None and len(header) <= 200:
+        if len(header) <= 200:
             if len(_BEST_OF_ACCEPT) >= 256:
                 _BEST_OF_ACCEPT.clear()
             _BEST_OF_ACCEPT[header] = best
@@ -317,9 +340,9 @@ def _column_items(basis, items, valuation_date):
     start_requires 'any', no measures or spread, a table the basis has for the life (its
     cohort's under a generational scale) and an age inside it) held as engine columns rather
     than objects; the others go through :func:`_engine_items` (which words any problem)."""
-    tables = RequestTables(basis, valuation_date)
     if len(items) < 2:
         return None
+    tables = RequestTables(basis, valuation_date)
     plain, rest, placed = [], [], []
     table_of: dict = {}
     for n, item in enumerate(items):
@@ -602,7 +625,7 @@ def _results_json(body: dict) -> Response:
     placed, the body is encoded plainly), the rest encoded as jsonify does, and the
     placeholders' JSON replaced by the blocks' JSON."""
     if len(body["results"]) < _SHARED_BLOCKS_FROM:
-        return jsonify(body)  # a few blocks encode faster than their placeholders are swapped
+        return _jsonify(body)  # a few blocks encode faster than their placeholders are swapped
     provider = current_app.json
     if provider.compact is False or (provider.compact is None and current_app.debug):
         return jsonify(body)  # indented: the blocks would need the indentation of their place
@@ -654,7 +677,7 @@ def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
 
 def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
                 columns: bool) -> "_Request":
-    if request.args and not from_csv:
+    if not from_csv and request.environ.get("QUERY_STRING") and request.args:
         raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
             name: ["Not read with a JSON body: give it in the body."]
             for name in sorted(request.args)[:MAX_ERROR_PATHS]})

@@ -10,6 +10,7 @@ answer that may differ between two requests.
 """
 
 import copy
+import datetime
 import hashlib
 import json
 import logging
@@ -273,6 +274,24 @@ def test_many_results_with_shared_method_blocks_still_encode_as_jsonify_does(app
                 assert views._results_json(body).get_data() == \
                     views.jsonify(body).get_data()
     assert len(base * 10) >= views._SHARED_BLOCKS_FROM
+
+
+def test_a_json_answer_is_jsonify_s_byte_for_byte_whatever_the_provider_s_options(app):
+    # views._jsonify keeps a compact encoder on the app's JSON provider for its options; it
+    # must give what flask.jsonify gives (text, mimetype), also after an option changes and
+    # in debug mode (indented, by jsonify itself).
+    body = {"b": datetime.date(2026, 12, 31), "a": "\u00e9 \"q\"", "n": [1.5, -0.0, None]}
+    provider = app.json
+    try:
+        for sort_keys, debug in ((False, False), (True, False), (False, True)):
+            provider.sort_keys = sort_keys
+            app.debug = debug
+            with app.test_request_context():
+                mine, theirs = views._jsonify(body), views.jsonify(body)
+                assert mine.get_data() == theirs.get_data()
+                assert mine.mimetype == theirs.mimetype
+    finally:
+        provider.sort_keys, app.debug = False, False
 
 
 # ---- the access log -------------------------------------------------------------------------
