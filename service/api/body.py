@@ -16,7 +16,7 @@ import weakref
 from flask import request
 from marshmallow import RAISE, Schema, ValidationError, fields, utils
 from marshmallow.decorators import PRE_LOAD, VALIDATES_SCHEMA
-from werkzeug.exceptions import RequestEntityTooLarge
+from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
 from werkzeug.wsgi import get_content_length
 
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
@@ -53,16 +53,25 @@ def _finite_float(text):
 
 def _read_body() -> bytes:
     """Return the raw body; 413 when it is over the limit, however it is framed."""
-    # With a Content-Length over the limit this raises 413 before reading anything.
-    raw = request.get_data(cache=False)
     environ = request.environ
-    if get_content_length(environ) is None:  # (request.content_length, from the environ)
-        # A chunked body has no Content-Length: the stream stops quietly at the limit, so
-        # one more byte from the server's stream is what tells a body over the limit from
-        # one exactly at it.
-        limit = request.max_content_length
-        if limit is not None and len(raw) >= limit and environ["wsgi.input"].read(1):
+    length = get_content_length(environ)  # (request.content_length, from the environ)
+    limit = request.max_content_length
+    if length is not None:
+        # As request.get_data() reads it, without its stream wrapper: 413 over the limit
+        # before reading anything; a body shorter than its Content-Length is a client that
+        # went away (400).
+        if limit is not None and length > limit:
             raise RequestEntityTooLarge()
+        raw = environ["wsgi.input"].read(length) if length else b""
+        if len(raw) != length:
+            raise ClientDisconnected()
+        return raw
+    raw = request.get_data(cache=False)
+    # A chunked body has no Content-Length: the stream stops quietly at the limit, so one
+    # more byte from the server's stream is what tells a body over the limit from one
+    # exactly at it.
+    if limit is not None and len(raw) >= limit and environ["wsgi.input"].read(1):
+        raise RequestEntityTooLarge()
     return raw
 
 

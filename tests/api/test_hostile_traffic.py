@@ -281,3 +281,19 @@ class TestChunkedBodies:
                                           content_type="application/json")
         assert_problem(response, 413)
 
+
+    def test_with_content_length_at_the_limit_is_served_as_a_server_passes_it(self, small):
+        # As gunicorn passes a body with a Content-Length: the input terminated too.
+        body = VALID_BODY + b" " * (4096 - len(VALID_BODY))
+        environ = EnvironBuilder(path=URL, method="POST", data=body,
+                                 content_type="application/json").get_environ()
+        environ["wsgi.input_terminated"] = True
+        response = small.response_class.from_app(small, environ)
+        assert response.status_code == 200, response.get_data(as_text=True)
+
+    def test_a_body_shorter_than_its_content_length_is_400(self, small):
+        # The client went away before sending what it announced.
+        environ = EnvironBuilder(path=URL, method="POST", data=VALID_BODY,
+                                 content_type="application/json").get_environ()
+        environ["CONTENT_LENGTH"] = str(len(VALID_BODY) + 10)
+        assert_problem(small.response_class.from_app(small, environ), 400)
