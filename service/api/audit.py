@@ -5,6 +5,7 @@ import secrets
 import weakref
 from datetime import UTC, datetime
 from importlib import metadata
+from types import MappingProxyType
 
 from flask import current_app, request
 
@@ -39,9 +40,10 @@ def interest_block(curve, source: str) -> dict:
     return curve.describe() | {"digest": curve.digest(), "source": source}
 
 
-#: Each loaded basis' own audit blocks (what it is; its interest), made once: a basis is
-#: immutable after loading. Keyed by the basis object itself, so two bases (or two versions
-#: of one) never share an entry, and an entry goes with its basis.
+#: Each loaded basis' own audit blocks (what it is; its interest), made once and read-only
+#: (requests share them): a basis is immutable after loading. Keyed by the basis object
+#: itself, so two bases (or two versions of one) never share an entry, and an entry goes
+#: with its basis.
 _BASIS_BLOCKS: "weakref.WeakKeyDictionary[object, tuple[dict, dict]]" = \
     weakref.WeakKeyDictionary()
 #: Interest blocks of request structures, by what the block is made of (kind and the reprs
@@ -57,7 +59,8 @@ def _basis_blocks(basis) -> tuple[dict, dict]:
                  "status": basis.status}
         if basis.improvement is not None:
             block["improvement"] = improvement_block(basis.improvement)
-        found = _BASIS_BLOCKS[basis] = (block, interest_block(basis.interest, "basis"))
+        found = _BASIS_BLOCKS[basis] = (MappingProxyType(block), MappingProxyType(
+            interest_block(basis.interest, "basis")))
     return found
 
 
@@ -65,24 +68,26 @@ def _request_interest_block(curve) -> dict:
     key = (curve.kind, tuple(map(repr, curve.knots)), tuple(map(repr, curve.rates)))
     found = _CURVE_BLOCKS.get(key)
     if found is None:
-        found = interest_block(curve, "request")
+        found = MappingProxyType(interest_block(curve, "request"))
         if len(_CURVE_BLOCKS) >= _CURVE_BLOCKS_KEPT:
             _CURVE_BLOCKS.clear()
         _CURVE_BLOCKS[key] = found
     return found
 
 
-def use_basis(basis, curve=None) -> None:
+def use_basis(basis, curve=None, state=None) -> None:
     """Record which basis and interest this request used, for its audit block.
 
     ``curve`` is the request's own interest structure; None means the basis' interest.
-    The blocks are copies of ones made once per basis (or per request structure), so a
-    request may add to its own (as :func:`use_age_definition` does).
+    ``state``: this request's state, where the caller holds it already. The blocks are the
+    ones made once per basis (or per request structure), shared and never changed: a request
+    that adds to its own replaces it by a copy (as :func:`use_age_definition` does).
     """
-    state = current()
+    if state is None:
+        state = current()
     block, interest = _basis_blocks(basis)
-    state.basis = block.copy()
-    state.interest = (interest if curve is None else _request_interest_block(curve)).copy()
+    state.basis = block
+    state.interest = interest if curve is None else _request_interest_block(curve)
 
 
 def improvement_block(improvement) -> dict:
@@ -98,16 +103,18 @@ def use_age_definition(basis) -> None:
     """Record that the request derived ages from dates of birth by the basis' definition."""
     state = current()
     if state.basis is not None:
-        state.basis["age_definition"] = basis.age_definition
+        state.basis = state.basis | {"age_definition": basis.age_definition}  # (shared)
 
 
-def use_valuation_date(date) -> None:
+def use_valuation_date(date, state=None) -> None:
     """Record the request's valuation date (None: it gave none) for its audit block."""
-    current().valuation_date = date
+    (current() if state is None else state).valuation_date = date
 
 
-def audit_block() -> dict:
-    state = current()
+def audit_block(state=None) -> dict:
+    """This request's audit block (``state``: its state, where the caller holds it)."""
+    if state is None:
+        state = current()
     dated = state.valuation_date
     config = current_app.config
     return {

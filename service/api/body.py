@@ -17,6 +17,7 @@ from flask import request
 from marshmallow import RAISE, Schema, ValidationError, fields, utils
 from marshmallow.decorators import PRE_LOAD, VALIDATES_SCHEMA
 from werkzeug.exceptions import ClientDisconnected, RequestEntityTooLarge
+from werkzeug.http import parse_options_header
 from werkzeug.wsgi import get_content_length
 
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
@@ -132,11 +133,31 @@ def _parse_fully(text: str):
     return value
 
 
+def media_type() -> tuple[str, dict[str, str]]:
+    """``(request.mimetype, request.mimetype_params)``, the Content-Type header parsed once
+    per distinct header (most clients send one of a few); the parameters are not to be
+    changed."""
+    header = request.environ.get("CONTENT_TYPE", "")
+    found = _MEDIA_TYPES.get(header)
+    if found is None:
+        kind, params = parse_options_header(header)
+        found = (kind.lower(), params)
+        if len(header) <= 200:
+            if len(_MEDIA_TYPES) >= 256:
+                _MEDIA_TYPES.clear()
+            _MEDIA_TYPES[header] = found
+    return found
+
+
+_MEDIA_TYPES: dict[str, tuple[str, dict[str, str]]] = {}
+
+
 def json_body():
     """Return the parsed JSON body, or raise a 4xx problem saying what is wrong with it."""
-    if request.mimetype != "application/json":
+    kind, params = media_type()
+    if kind != "application/json":
         raise ProblemError(415, "Send the body as application/json.")
-    charset = request.mimetype_params.get("charset", "utf-8").lower()
+    charset = params.get("charset", "utf-8").lower()
     if charset not in ("utf-8", "utf8"):
         raise ProblemError(415, f"Send the body as UTF-8 JSON, not {charset}.")
     raw = _read_body()

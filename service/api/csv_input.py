@@ -23,7 +23,7 @@ import io
 from flask import request
 from marshmallow import Schema, missing
 
-from service.api.body import _read_body
+from service.api.body import _read_body, media_type
 from service.api.problems import ProblemError
 
 LIFE_FIELDS = ("age", "date_of_birth", "sex", "duration", "age_adjustment",
@@ -99,7 +99,7 @@ def csv_batch(max_rows: int) -> tuple[dict, list[str]]:
     Raises a 400 for a body that is not UTF-8, a 422 for one that is not CSV with a header
     and rows, 413 beyond ``max_rows``.
     """
-    charset = request.mimetype_params.get("charset", "utf-8").lower()
+    charset = media_type()[1].get("charset", "utf-8").lower()
     if charset not in ("utf-8", "utf8"):
         raise ProblemError(415, f"Send the CSV as UTF-8, not {charset}.")
     try:

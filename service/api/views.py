@@ -22,7 +22,14 @@ from service.api.audit import (
     use_basis,
     use_valuation_date,
 )
-from service.api.body import RawItems, flatten_errors, json_body, load, validate_capped
+from service.api.body import (
+    RawItems,
+    flatten_errors,
+    json_body,
+    load,
+    media_type,
+    validate_capped,
+)
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
 from service.api.dump import dump
@@ -517,17 +524,20 @@ def _assurance(item, lives) -> Assurance:
                                   on=item.get("on", "first-death")))
 
 
-def _valuation(basis, data):
+def _valuation(basis, data, state=None):
     """The valuation settings of a request: the basis' methods, and its interest unless the
-    request gives ``interest`` or ``interest_rate``."""
+    request gives ``interest`` or ``interest_rate`` (recorded in the request's ``state``,
+    where the caller holds it)."""
     curve = data.get("interest")
     if data["interest_rate"] is not None:
         if curve is not None:
             raise ProblemError(422, "The request has invalid fields.", errors={
                 "interest": ["Give interest or interest_rate, not both."]})
         curve = _flat_curve(data["interest_rate"])
-    use_basis(basis, curve)
-    use_valuation_date(data.get("valuation_date"))
+    if state is None:
+        state = current()
+    use_basis(basis, curve, state)
+    use_valuation_date(data.get("valuation_date"), state)
     return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
                      basis.approximation)
 
@@ -573,6 +583,7 @@ class _Request:
     limit: int
     deadline: float
     from_csv: bool = False
+    state: object = None  # this request's state (service.api.state), None: look it up
 
     def drop(self, errors: dict[str, list[str]]) -> None:
         """Refuse the items named by engine error paths (``"3.lives.0.age"``, 3 counting the
@@ -608,7 +619,7 @@ class _Request:
             return _results_csv(placed, self.warnings)
         return _results_json(dump(schema, {
             "results": placed, "valued": len(results), "refused": len(self.refused),
-            "warnings": self.warnings, "audit": audit_block()}))
+            "warnings": self.warnings, "audit": audit_block(self.state)}))
 
 
 #: Results from which method blocks are encoded once (fewer encode faster as they are: about
@@ -666,7 +677,7 @@ def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
     others, else refuse the whole batch at the first problem found (all of them listed)."""
     limit = current_app.config["MAX_ITEMS"]
-    from_csv = request.mimetype == "text/csv"
+    from_csv = media_type()[0] == "text/csv"
     try:
         return _read_batch(schema, item_schema, build, limit, from_csv, columns)
     except ProblemError as exc:
@@ -698,9 +709,10 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
         data = _load_whole(schema, item_schema, body, build)
         raw = data["items"]
         places = list(range(len(raw)))
-    current().item_count = len(raw)
+    state = current()
+    state.item_count = len(raw)
     basis = _basis(data["basis"])
-    valuation = _valuation(basis, data)
+    valuation = _valuation(basis, data, state)
     _dates_needed(basis, data, data["items"])
     held = _column_items(basis, data["items"], data["valuation_date"]) if columns else None
     engine, unknown, tables = held or _engine_items(basis, data["items"],
@@ -713,7 +725,8 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
                if isinstance(item, dict) and isinstance(item.get("id"), str)}
     req = _Request(data, basis, tables, valuation, len(raw), places, data["items"], engine,
                    refused, raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
-                   time.monotonic() + current_app.config["DEADLINE_SECONDS"], from_csv)
+                   time.monotonic() + current_app.config["DEADLINE_SECONDS"], from_csv,
+                   state)
     if unknown:
         req.drop({f"{n}.{path}": msgs for n, item in unknown.items()
                   for path, msgs in item.items()})

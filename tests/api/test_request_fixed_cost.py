@@ -77,9 +77,12 @@ def test_every_basis_gets_its_own_blocks_equal_to_the_definition(app, registry):
         {"2025.1", "2026.1"}
     blocks = [(basis, block, interest) for basis, pairs in made.items()
               for block, interest in pairs]
-    # Each request holds its own copies (a request may add to its block).
-    assert len({id(block) for _, block, _ in blocks}) == len(blocks)
-    assert len({id(interest) for _, _, interest in blocks}) == len(blocks)
+    # Requests under one basis share its blocks (made once; a request that adds to its block
+    # takes a copy, below); no two bases share one.
+    for pairs in made.values():
+        assert len({id(block) for block, _ in pairs}) == len({id(i) for _, i in pairs}) == 1
+    assert len({id(block) for _, block, _ in blocks}) == len(made)
+    assert len({id(interest) for _, _, interest in blocks}) == len(made)
     for basis, block, _ in blocks:
         for other, other_block, _ in blocks:
             if other is not basis:
@@ -93,7 +96,8 @@ def test_a_request_adding_to_its_block_leaves_the_next_requests_alone(app, regis
         audit.use_basis(basis)
         audit.use_age_definition(basis)
         assert current().basis["age_definition"] == basis.age_definition
-        current().interest["source"] = "changed by this request"
+        with pytest.raises(TypeError):  # the shared blocks are read-only
+            current().interest["source"] = "changed by this request"
     with app.test_request_context():
         audit.use_basis(basis)
         assert current().basis == _basis_block(basis)
