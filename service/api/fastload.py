@@ -27,6 +27,7 @@ import numpy as np
 from marshmallow import RAISE, Schema, ValidationError, fields, missing, validate
 from marshmallow.decorators import POST_LOAD, PRE_LOAD, VALIDATES, VALIDATES_SCHEMA
 
+from service.api.body import RawItems
 from service.api.schemas import StrictFloat
 
 #: "Not sure": the value is not one this module can vouch for.
@@ -190,6 +191,14 @@ def _converter(field: fields.Field, name: str | None):
     elif kind is fields.Nested and isinstance(field.schema, Schema) and not field.many \
             and field.unknown is None:
         base = _none_ok(_compile(field.schema).load_or_no, allow_none)
+    elif kind is RawItems:
+        # Its own _deserialize: a list without nulls is taken whole (the elements are Raw).
+        def raw(v):
+            if type(v) is list and not any(each is None for each in v):
+                return list(v)
+            return _NO
+
+        base = _none_ok(raw, allow_none)
     elif kind is fields.List:
         inner, _ = _converter(field.inner, None)
 

@@ -11,15 +11,15 @@ from flask import Flask, request
 from service.api import metrics
 from service.api.audit import request_id
 from service.api.auth import CHALLENGE, check_token
-from service.api.state import current
+from service.api.state import current, start
 
 access_log = logging.getLogger("service.access")
 #: ``json.dumps(..., separators=(",", ":"))`` made once (dumps builds an encoder per call).
 _LINE = json.JSONEncoder(separators=(",", ":")).encode
 
 
-def _route() -> str:
-    rule = request.url_rule
+def _route(req=None) -> str:
+    rule = (request if req is None else req).url_rule
     return rule.rule if rule is not None else metrics.UNMATCHED
 
 
@@ -29,7 +29,7 @@ def init_app(app: Flask) -> None:
 
     @app.before_request
     def _start():
-        request_id(current())  # (current() starts the clock)
+        request_id(start())  # (the state starts the clock)
         check_token(app)
 
     @app.after_request
@@ -37,12 +37,14 @@ def init_app(app: Flask) -> None:
         state = current()
         rid = request_id(state)
         response.headers["X-Request-ID"] = rid
-        if response.status_code == 401:
+        status = response.status_code
+        if status == 401:
             response.headers["WWW-Authenticate"] = CHALLENGE
         seconds = time.perf_counter() - state.started
-        route = _route()
-        method = request.method
-        metrics.observe(route, method, response.status_code, seconds)
+        req = request._get_current_object()  # (one look-up for what follows)
+        route = _route(req)
+        method = req.method
+        metrics.observe(route, method, status, seconds)
         if not access_log.isEnabledFor(logging.INFO):
             return response  # no line is written: none is composed
         basis = state.basis
@@ -51,7 +53,7 @@ def init_app(app: Flask) -> None:
             "request_id": rid,
             "method": method,
             "route": route,
-            "status": response.status_code,
+            "status": status,
             "duration_ms": round(seconds * 1000, 3),
             "basis": f"{basis['id']}@{basis['version']}" if basis else None,
             "basis_version": basis["version"] if basis else None,

@@ -44,12 +44,19 @@ def _months_checked(data: dict, original, names) -> tuple[dict, dict]:
     """Refuse a period given both in years and in months; return (errors, years by name)."""
     errors = {}
     given = original if isinstance(original, dict) else {}
-    for name in names:
-        if name in given and f"{name}_months" in given:
-            errors[f"{name}_months"] = [f"Give {name} or {name}_months, not both."]
-    years = {name: data[f"{name}_months"] / 12 if f"{name}_months" in data else data.get(name)
-             for name in names}
+    pairs = _MONTH_KEYS.get(names)
+    if pairs is None:
+        pairs = _MONTH_KEYS[names] = tuple((name, f"{name}_months") for name in names)
+    for name, months in pairs:
+        if name in given and months in given:
+            errors[months] = [f"Give {name} or {months}, not both."]
+    years = {name: data[months] / 12 if months in data else data.get(name)
+             for name, months in pairs}
     return errors, years
+
+
+#: (name, its months key) for each tuple of names met.
+_MONTH_KEYS: dict[tuple, tuple] = {}
 
 
 def _months_to_years(data: dict, names) -> dict:

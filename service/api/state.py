@@ -33,3 +33,9 @@ def current() -> RequestState:
     if state is None:
         state = g.request_state = RequestState()
     return state
+
+
+def start() -> RequestState:
+    """A new state for this request (its clock started now), replacing any."""
+    state = g.request_state = RequestState()
+    return state

@@ -676,23 +676,27 @@ def _results_json(body: dict) -> Response:
 def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
     others, else refuse the whole batch at the first problem found (all of them listed)."""
-    limit = current_app.config["MAX_ITEMS"]
-    from_csv = media_type()[0] == "text/csv"
+    config = current_app.config
+    media = media_type()
+    from_csv = media[0] == "text/csv"
     try:
-        return _read_batch(schema, item_schema, build, limit, from_csv, columns)
+        return _read_batch(schema, item_schema, build, config, media, columns)
     except ProblemError as exc:
         if from_csv and exc.errors:
             exc.errors = {row_path(path): msgs for path, msgs in exc.errors.items()}
         raise
 
 
-def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
+def _read_batch(schema, item_schema, build, config, media: tuple,
                 columns: bool) -> "_Request":
-    if not from_csv and request.environ.get("QUERY_STRING") and request.args:
+    limit = config["MAX_ITEMS"]
+    from_csv = media[0] == "text/csv"
+    http = request._get_current_object()  # (one look-up for what follows)
+    if not from_csv and http.environ.get("QUERY_STRING") and http.args:
         raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
             name: ["Not read with a JSON body: give it in the body."]
-            for name in sorted(request.args)[:MAX_ERROR_PATHS]})
-    body = csv_batch(limit)[0] if from_csv else json_body()
+            for name in sorted(http.args)[:MAX_ERROR_PATHS]})
+    body = csv_batch(limit)[0] if from_csv else json_body(media)
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
         body.get("items"), list) else 0
     if count > limit:
@@ -724,9 +728,8 @@ def _read_batch(schema, item_schema, build, limit: int, from_csv: bool,
     raw_ids = {n: item["id"] for n, item in enumerate(raw)
                if isinstance(item, dict) and isinstance(item.get("id"), str)}
     req = _Request(data, basis, tables, valuation, len(raw), places, data["items"], engine,
-                   refused, raw_ids, [], current_app.config["MAX_EVALUATION_POINTS"],
-                   time.monotonic() + current_app.config["DEADLINE_SECONDS"], from_csv,
-                   state)
+                   refused, raw_ids, [], config["MAX_EVALUATION_POINTS"],
+                   time.monotonic() + config["DEADLINE_SECONDS"], from_csv, state)
     if unknown:
         req.drop({f"{n}.{path}": msgs for n, item in unknown.items()
                   for path, msgs in item.items()})
