@@ -561,8 +561,6 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         return None
     if measure is not None and np.any(measure):
         return None  # sensitivities come from the general path's payments
-    from service.engine import joint_columns  # (it builds on this module)
-
     exact = valuation.approximation == "exact"
     if _small_covered(valuation, len(items)):
         rows = [_item_row(item) if _plain(item, exact) else None for item in items]
@@ -571,6 +569,8 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
                                   lambda: _found(tables, items, valuation))
             return Values(np.array(values), np.array([EXACT_SUM] * len(items), dtype=np.int8),
                           methods(valuation))
+    from service.engine import joint_columns  # (it builds on this module)
+
     rows, which = [], []
     given = None
     if isinstance(items, ItemBatch):

@@ -92,7 +92,8 @@ def suspect(tables, row) -> bool:
     dkey = _select_key(table, duration)
     if dkey >= 0 and not (table.select_first_age <= anchor - dkey <= table.select_last_age):
         return True
-    q0 = _chain(table, anchor, dkey, mult, extra, 1)[0]
+    q0 = (_rates(table, mult, extra)[anchor - table.first_age] if dkey < 0
+          else _chain(table, anchor, dkey, mult, extra, 1)[0])
     return 1.0 - max(x - anchor, 0.0) * q0 <= 0
 
 
@@ -252,14 +253,24 @@ _COLUMNS_KEPT = 256
 
 
 @lru_cache(maxsize=_COLUMNS_KEPT)
-def _column(table, mult: float, extra: float, lw: float) -> _Column:
-    """The column of lives of ``table`` with rates q' = min(q x mult + extra, 1) (q' = 1 from
-    the last age, as on a chain) at w = e^lw. (Tables compare by identity.)"""
+def _rates(table, mult: float, extra: float) -> list[float]:
+    """q'(j) = min(q x mult + extra, 1) at the ages j = age - first age of ``table``, with
+    q' = 1 from the last age (as on a chain) and for three ages past it. (Tables compare by
+    identity.)"""
     span = table.last_age - table.first_age
-    width = span + 4
-    q = np.ones(width)
+    q = np.ones(span + 4)
     base = table.q[:span]
     q[:span] = base if mult == 1.0 and extra == 0.0 else np.minimum(base * mult + extra, 1.0)
+    return q.tolist()
+
+
+@lru_cache(maxsize=_COLUMNS_KEPT)
+def _column(table, mult: float, extra: float, lw: float) -> _Column:
+    """The column of lives of ``table`` with rates ``_rates(table, mult, extra)`` at
+    w = e^lw."""
+    rates = _rates(table, mult, extra)
+    width = len(rates)
+    q = np.array(rates)
     life = np.ones(width + 1)
     life[1:] = np.cumprod(1.0 - q)
     with np.errstate(over="ignore", under="ignore", invalid="ignore"):
@@ -272,5 +283,5 @@ def _column(table, mult: float, extra: float, lw: float) -> _Column:
     pd, pe = np.concatenate([zero, np.cumsum(d)]), np.concatenate([zero, np.cumsum(e)])
     sd = np.concatenate([np.cumsum(d[::-1])[::-1], zero])
     se = np.concatenate([np.cumsum(e[::-1])[::-1], zero])
-    return _Column(q.tolist(), life.tolist(), pd.tolist(), sd.tolist(), pe.tolist(),
-                   se.tolist(), ok)
+    return _Column(rates, life.tolist(), pd.tolist(), sd.tolist(), pe.tolist(), se.tolist(),
+                   ok)
