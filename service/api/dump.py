@@ -14,6 +14,7 @@ more than valuing them. The contract tests (schemathesis) check the values' type
 import logging
 from collections.abc import Callable
 from contextvars import ContextVar
+from types import MappingProxyType
 
 from marshmallow import Schema, fields
 
@@ -54,6 +55,12 @@ def dump(schema: type[Schema] | Schema, body: dict) -> dict:
 
 #: The nested objects dumped so far in the current ``dump`` call: id -> (object, its dump).
 _SEEN: ContextVar[dict | None] = ContextVar("dump_seen", default=None)
+#: Read-only nested objects (``types.MappingProxyType``: the blocks the service makes once and
+#: shares, as each basis' audit blocks) dumped so far by any call, as ``_SEEN`` (the object
+#: is kept, so its id is not reused while it is here). Their dumps are shared too: nothing
+#: changes a dump after it is made (it is encoded as it is).
+_READ_ONLY: dict[int, tuple] = {}
+_READ_ONLY_KEPT = 1024
 
 
 def _nested(field: fields.Field):
@@ -73,11 +80,16 @@ def _lazy(field: fields.Nested) -> Callable[[dict], dict]:
         if not compiled:
             compiled.append(dumper(field.nested if isinstance(field.nested, type)
                                    else type(field.schema)))
-        seen = _SEEN.get()
-        if seen is None:
-            return compiled[0](value)
+        if type(value) is MappingProxyType:
+            seen = _READ_ONLY  # (kept from one call to the next)
+        else:
+            seen = _SEEN.get()
+            if seen is None:
+                return compiled[0](value)
         found = seen.get(id(value))
         if found is None or found[0] is not value or found[1] is not compiled[0]:
+            if seen is _READ_ONLY and len(seen) >= _READ_ONLY_KEPT:
+                seen.clear()
             found = seen[id(value)] = (value, compiled[0], compiled[0](value))
         return found[2]
 

@@ -106,8 +106,11 @@ def _jsonify(body) -> Response:
     options = (provider.default, provider.ensure_ascii, provider.sort_keys)
     kept = provider.__dict__.get(_ENCODER)
     if kept is None or kept[0] != options:
+        # (check_circular off: an answer is a tree built by the views, never circular; on,
+        # the encoder keeps a set of the objects it is inside. The text is the same.)
         kept = (options, json.JSONEncoder(separators=(",", ":"), default=options[0],
-                                          ensure_ascii=options[1], sort_keys=options[2]))
+                                          ensure_ascii=options[1], sort_keys=options[2],
+                                          check_circular=False))
         setattr(provider, _ENCODER, kept)
     return app.response_class(f"{kept[1].encode(body)}\n", mimetype=provider.mimetype)
 

@@ -36,22 +36,22 @@ def request_warnings(basis, data: dict, items: list[tuple[str, dict]]) -> list[d
                                 "given as 0.045."))
     for path, item in items:
         for k, life in enumerate(item["lives"]):
-            where = f"{path}.lives.{k}"
             if life["sex"] is not None and not basis.sex_distinct:
-                found.append((f"{where}.sex", "Ignored: this basis is unisex."))
-            index = basis.table_index(life["sex"])
-            select = index is not None and basis.tables[index].select_period > 0
-            if life["duration"] is not None and index is not None and not select:
-                found.append((f"{where}.duration", "Ignored: this basis has no select rates; "
-                                                   "the life follows the ultimate rates."))
+                found.append((f"{path}.lives.{k}.sex", "Ignored: this basis is unisex."))
+            if life["duration"] is not None:
+                index = basis.table_index(life["sex"])
+                if index is not None and not basis.tables[index].select_period > 0:
+                    found.append((f"{path}.lives.{k}.duration",
+                                  "Ignored: this basis has no select rates; the life follows "
+                                  "the ultimate rates."))
             extra = life.get("flat_extra", 0.0)
             if extra > _PLAUSIBLE_EXTRA:
-                found.append((f"{where}.flat_extra",
+                found.append((f"{path}.lives.{k}.flat_extra",
                               f"{extra:g} is added to q at every age ({extra * 1000:g} per "
                               "mille); 5 per mille is given as 0.005."))
             multiplier = life["mortality_multiplier"]
             if multiplier > _PLAUSIBLE_MULTIPLIER:
-                found.append((f"{where}.mortality_multiplier",
+                found.append((f"{path}.lives.{k}.mortality_multiplier",
                               f"{multiplier:g} is read as {multiplier:g} times the table's "
                               f"rates ({multiplier:.0%}); 125% is given as 1.25."))
     warnings = [{"path": path, "message": message} for path, message in found[:MAX_WARNINGS]]

@@ -102,3 +102,28 @@ def test_a_shared_block_is_dumped_once_per_call(monkeypatch):
         assert len(calls) == 3  # not remembered across calls
     finally:
         dump_module._DUMPERS.pop(Outer, None)
+
+
+def test_a_read_only_block_is_dumped_once_across_calls(monkeypatch):
+    # A MappingProxyType (the blocks the service makes once and shares, as a basis' audit
+    # blocks) is dumped once and its dump reused by later calls; a plain dict is not.
+    from types import MappingProxyType
+
+    calls = []
+    inner = dump_module.dumper(Inner)
+    monkeypatch.setitem(dump_module._DUMPERS, Inner, lambda body: calls.append(1) or
+                        inner(body))
+    monkeypatch.setattr(dump_module, "_READ_ONLY", {})
+    dump_module._DUMPERS.pop(Outer, None)  # recompiled against the counting dumper
+    try:
+        block = MappingProxyType({"bee": "x", "a": 2.0})
+        first = dump(Outer, {"inner": block, "many": [block]})
+        again = dump(Outer, {"inner": block})
+        assert len(calls) == 1
+        assert first["inner"] == again["inner"] == {"a": 2.0, "bee": "x"}
+        assert list(again["inner"]) == ["a", "bee"]
+        other = MappingProxyType({"a": 3.0})  # another object: its own dump
+        assert dump(Outer, {"inner": other})["inner"] == {"a": 3.0}
+        assert len(calls) == 2
+    finally:
+        dump_module._DUMPERS.pop(Outer, None)
