@@ -121,10 +121,24 @@ def audit_block(state=None) -> dict:
         "basis": state.basis,
         "interest": state.interest,
         **({"valuation_date": dated.isoformat()} if dated is not None else {}),
-        "service": {"name": config["SERVICE_NAME"], "version": config["SERVICE_VERSION"]},
+        "service": _service_block(config["SERVICE_NAME"], config["SERVICE_VERSION"]),
         "request_id": request_id(state),
         "computed_at": computed_at(datetime.now(UTC)),
     }
+
+
+def _service_block(name: str, version: str) -> MappingProxyType:
+    """The service's audit block, made once per name and version and shared read-only."""
+    found = _SERVICE_BLOCKS.get((name, version))
+    if found is None:
+        if len(_SERVICE_BLOCKS) >= 64:
+            _SERVICE_BLOCKS.clear()
+        found = _SERVICE_BLOCKS[name, version] = MappingProxyType(
+            {"name": name, "version": version})
+    return found
+
+
+_SERVICE_BLOCKS: dict[tuple, MappingProxyType] = {}
 
 
 def computed_at(moment: datetime) -> str:
