@@ -106,7 +106,8 @@ import math
 import numbers
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
-from functools import cached_property
+from functools import cached_property, lru_cache
+from types import MappingProxyType
 
 import numpy as np
 
@@ -408,23 +409,7 @@ class Curve:
 
     def method(self) -> dict:
         """Return how discount factors and continuous integrals are computed, in words."""
-        discounting = {
-            "flat": "(1 + i)^-t",
-            "spot": "exp(-t r(t)), r the continuously compounded spot rate, linear in t between "
-                    "the terms and flat outside them",
-            "segments": "(1 + s)^-t, s the rate of the band in which the time t falls",
-            "forward": "product over the bands of (1 + f)^-(years of [0, t] in the band)",
-        }[self.kind]
-        continuous = "closed form per piece at the piece's constant force of interest"
-        if self.kind != "flat":
-            continuous += ", pieces cut at " + ("the curve's terms" if self.kind == "spot"
-                                                else "the band edges")
-        if self.curved:
-            continuous += ("; between two terms t r(t) is quadratic in t, so the closed form "
-                           "is taken at the chord force and the rest, "
-                           "D(t) - chord exp(-force h), is integrated by a Gauss-Legendre "
-                           "rule exact to rounding")
-        return {"discounting": discounting, "continuous": continuous}
+        return dict(method_words(self.kind, self.curved))
 
     # ---- discounting -----------------------------------------------------------------------
 
@@ -726,3 +711,26 @@ def _legendre(order: int):
 
 
 _LEGENDRE = {n: _legendre(n) for n in RULE_REACH}
+
+
+@lru_cache(maxsize=16)
+def method_words(kind: str, curved: bool) -> MappingProxyType:
+    """How discount factors and continuous integrals are computed for a structure of ``kind``
+    (``curved``: a spot curve that moves, see :attr:`Curve.curved`), in words (read-only)."""
+    discounting = {
+        "flat": "(1 + i)^-t",
+        "spot": "exp(-t r(t)), r the continuously compounded spot rate, linear in t between "
+                "the terms and flat outside them",
+        "segments": "(1 + s)^-t, s the rate of the band in which the time t falls",
+        "forward": "product over the bands of (1 + f)^-(years of [0, t] in the band)",
+    }[kind]
+    continuous = "closed form per piece at the piece's constant force of interest"
+    if kind != "flat":
+        continuous += ", pieces cut at " + ("the curve's terms" if kind == "spot"
+                                            else "the band edges")
+    if curved:
+        continuous += ("; between two terms t r(t) is quadratic in t, so the closed form "
+                       "is taken at the chord force and the rest, "
+                       "D(t) - chord exp(-force h), is integrated by a Gauss-Legendre "
+                       "rule exact to rounding")
+    return MappingProxyType({"discounting": discounting, "continuous": continuous})

@@ -19,10 +19,12 @@ continuous payments as the exact integral of the same product within each year o
 
 import math
 import numbers
+from collections.abc import Mapping
 from dataclasses import dataclass
-from functools import cached_property
+from functools import cached_property, lru_cache
+from types import MappingProxyType
 
-from service.engine.curves import Curve
+from service.engine.curves import Curve, method_words
 from service.engine.survival import ASSUMPTIONS
 
 TIMINGS = ("advance", "arrears", "continuous")
@@ -108,15 +110,21 @@ _FORCE_ESTIMATE = (
     "rate for the year before), and between whole ages the fractional-age assumption's force")
 
 
-def methods(valuation: Valuation) -> tuple[dict, ...]:
+def methods(valuation: Valuation) -> tuple[Mapping, ...]:
     """Return the method blocks of exact sums, Woolhouse sums, closed-form integrals and
     integrals by a Gauss-Legendre rule (items valued with their sensitivities).
 
     The engine decides per item which one it used (``Values.method_code``); these describe
-    them for the audit trail.
+    them for the audit trail. They are read-only mappings, made once per kind of valuation
+    (assumption, approximation, kind of interest structure) and shared.
     """
-    frac = valuation.fractional_age
-    words = valuation.curve.method()
+    curve = valuation.curve
+    return _methods(valuation.fractional_age, valuation.approximation, curve.kind, curve.curved)
+
+
+@lru_cache(maxsize=64)
+def _methods(frac: str, approximation: str, kind: str, curved: bool) -> tuple[Mapping, ...]:
+    words = method_words(kind, curved)
     exact = {"evaluation": "sum of payment x discount factor x probability of payment",
              "fractional_age": frac, "approximation": "exact",
              "discounting": words["discounting"]}
@@ -127,9 +135,9 @@ def methods(valuation: Valuation) -> tuple[dict, ...]:
             "years and any year whose Woolhouse value falls outside 0 and the value of its "
             "payments made for certain (or across which segment rates change) are summed "
             "exactly"),
-        "fractional_age": frac, "approximation": valuation.approximation,
+        "fractional_age": frac, "approximation": approximation,
         "discounting": words["discounting"]}
-    if valuation.approximation == "woolhouse-3":
+    if approximation == "woolhouse-3":
         woolhouse["force_of_mortality"] = _FORCE_ESTIMATE
     if frac == "balducci":
         # Balducci's curve has a pole; see integrals.balducci and integrals.balducci_pair.
@@ -145,4 +153,4 @@ def methods(valuation: Valuation) -> tuple[dict, ...]:
     by_rule = integral | {"evaluation": (
         "integral of payment rate x discount x survival per segment of age by a "
         "Gauss-Legendre rule exact to rounding (the same points give the sensitivities)")}
-    return exact, woolhouse, integral, by_rule
+    return tuple(map(MappingProxyType, (exact, woolhouse, integral, by_rule)))
