@@ -60,12 +60,33 @@ def value(tables, cols, ages, anchor, dkey, growth, m, delta, slots, deadline):
         key = np.empty(order.size, dtype=np.intp)
         key[order] = np.cumsum(new) - 1
         rep = order[new]
-        shared = _Shared.build(tables, keys[0][rep], keys[1][rep], keys[2][rep],
-                               keys[3][rep] - delta)
+        shared = _shared(tables, keys[0][rep], keys[1][rep], keys[2][rep],
+                         keys[3][rep] - delta)
         values[part], done[part] = _value_chunk(
             tables, cols, part, shared, key, ages[part], anchor[part], dkey[part],
             growth[part], m[part], delta, slots)
     return values, done
+
+
+#: Key columns kept (``_shared``), and how many sets of keys.
+_SHARED: dict[tuple, "_Shared"] = {}
+_SHARED_KEPT = 16
+
+
+def _shared(tables, t, mult, extra, lw) -> "_Shared":
+    """``_Shared.build(tables, t, mult, extra, lw)``, kept by the tables (compared by identity)
+    and the keys: a batch's chunks mostly share one set of keys, and so do successive
+    batches under one basis at one rate. The columns depend on nothing else (tables are
+    immutable) and are read-only."""
+    found_key = (tuple(tables), t.dtype.str, t.tobytes(), mult.tobytes(), extra.tobytes(),
+                 lw.tobytes())
+    found = _SHARED.get(found_key)
+    if found is None:
+        found = _Shared.build(tables, t, mult, extra, lw)
+        if len(_SHARED) >= _SHARED_KEPT:
+            _SHARED.clear()
+        _SHARED[found_key] = found
+    return found
 
 
 class _Shared:
@@ -102,6 +123,8 @@ class _Shared:
 
         pd, sd = sums(d)
         pe, se = sums(e)
+        for array in (first, last, q, life, lw, pd, sd, pe, se, ok):
+            array.setflags(write=False)  # (kept and shared: see _shared)
         return cls(first, last, q, life, lw, pd, sd, pe, se, ok)
 
 

@@ -32,7 +32,6 @@ _SNAP = 1e-9  # as service.engine.survival
 _EPS = 1e-9  # as service.engine.annuity
 _ILL = 1e-3  # as service.engine.columns
 _CANCELLATION = 64.0  # as service.engine.columns
-_TINY, _HUGE = 1e-290, 1e290  # as service.engine.commutation
 
 
 def _phi0(x: float) -> float:
@@ -255,33 +254,18 @@ _COLUMNS_KEPT = 256
 @lru_cache(maxsize=_COLUMNS_KEPT)
 def _rates(table, mult: float, extra: float) -> list[float]:
     """q'(j) = min(q x mult + extra, 1) at the ages j = age - first age of ``table``, with
-    q' = 1 from the last age (as on a chain) and for three ages past it. (Tables compare by
-    identity.)"""
-    span = table.last_age - table.first_age
-    q = np.ones(span + 4)
-    base = table.q[:span]
-    q[:span] = base if mult == 1.0 and extra == 0.0 else np.minimum(base * mult + extra, 1.0)
-    return q.tolist()
+    q' = 1 from the last age (as on a chain) and for three ages past it: the rates of
+    :func:`_column`, whatever the rate of interest. (Tables compare by identity.)"""
+    return _column(table, mult, extra, 0.0).q
 
 
 @lru_cache(maxsize=_COLUMNS_KEPT)
 def _column(table, mult: float, extra: float, lw: float) -> _Column:
-    """The column of lives of ``table`` with rates ``_rates(table, mult, extra)`` at
-    w = e^lw."""
-    rates = _rates(table, mult, extra)
-    width = len(rates)
-    q = np.array(rates)
-    life = np.ones(width + 1)
-    life[1:] = np.cumprod(1.0 - q)
-    with np.errstate(over="ignore", under="ignore", invalid="ignore"):
-        w = np.exp(np.arange(width + 1) * lw)
-        d = w * life
-        e = np.append(w[:-1] * life[1:], 0.0)
-    ok = bool(math.isfinite(lw) and np.all(np.isfinite(d) & (d < _HUGE) & ((d == 0) | (d > _TINY)))
-              and np.all((life == 0) | (life > _TINY)))
-    zero = np.zeros(1)
-    pd, pe = np.concatenate([zero, np.cumsum(d)]), np.concatenate([zero, np.cumsum(e)])
-    sd = np.concatenate([np.cumsum(d[::-1])[::-1], zero])
-    se = np.concatenate([np.cumsum(e[::-1])[::-1], zero])
-    return _Column(rates, life.tolist(), pd.tolist(), sd.tolist(), pe.tolist(), se.tolist(),
-                   ok)
+    """The column of lives of ``table`` with rates q' = min(q x mult + extra, 1) at w = e^lw:
+    the key's row of :class:`service.engine.commutation._Shared`, as lists."""
+    from service.engine.commutation import _Shared  # (it builds on columns, which uses this)
+
+    one = _Shared.build([table], np.zeros(1, dtype=np.int64), np.array([float(mult)]),
+                        np.array([float(extra)]), np.array([float(lw)]))
+    return _Column(one.q[0].tolist(), one.life[0].tolist(), one.pd[0].tolist(),
+                   one.sd[0].tolist(), one.pe[0].tolist(), one.se[0].tolist(), bool(one.ok[0]))
