@@ -109,3 +109,30 @@ def test_select_lives_with_escalation_agree(rate):
     fast = value_annuities([table], items, valuation).value
     general = value_annuities([table], items, valuation, fast=False).value
     np.testing.assert_allclose(fast, general, rtol=1e-12, atol=0)
+
+
+def test_key_columns_are_kept_by_tables_and_keys_and_read_only(monkeypatch):
+    # commutation._shared keeps each set of keys' columns: the same tables and keys give the
+    # same (read-only) object, equal to a fresh build; other tables or keys their own.
+    monkeypatch.setattr(commutation, "_SHARED", {})
+    tables = [models.susm(), models.susm_select()]
+    t = np.array([0, 1], dtype=np.int64)
+    mult, extra = np.array([1.0, 1.5]), np.array([0.0, 0.002])
+    lw = np.array([-0.04, -0.02])
+    first = commutation._shared(tables, t, mult, extra, lw)
+    assert commutation._shared(tables, t.copy(), mult.copy(), extra.copy(), lw.copy()) is first
+    fresh = commutation._Shared.build(tables, t, mult, extra, lw)
+    for name in ("q", "life", "pd", "sd", "pe", "se", "ok"):
+        assert np.array_equal(getattr(first, name), getattr(fresh, name))
+        assert not getattr(first, name).flags.writeable
+    assert commutation._shared(tables[::-1], t, mult, extra, lw) is not first
+    assert commutation._shared(tables, t, mult, extra, lw + 0.01) is not first
+    # And a batch valued twice gives the same values, the second time from the kept columns.
+    items = [Item((Life(60.0 + k, table=k % 2, mortality_multiplier=1.0 + k / 10),),
+                  Payments("advance", 12, 20.0)) for k in range(12)]  # (past small batches)
+    valuation = Valuation(0.04)
+    once = value_columns(tables, Columns.from_items(items), valuation).value
+    kept = len(commutation._SHARED)
+    assert kept == 3  # the two above, and the batch's
+    again = value_columns(tables, Columns.from_items(items), valuation).value
+    assert len(commutation._SHARED) == kept and np.array_equal(once, again)
