@@ -133,6 +133,6 @@ def test_key_columns_are_kept_by_tables_and_keys_and_read_only(monkeypatch):
     valuation = Valuation(0.04)
     once = value_columns(tables, Columns.from_items(items), valuation).value
     kept = len(commutation._SHARED)
-    assert kept == 3  # the two above, and the batch's
+    assert kept == 4  # the three above, and the batch's
     again = value_columns(tables, Columns.from_items(items), valuation).value
     assert len(commutation._SHARED) == kept and np.array_equal(once, again)
