@@ -5,6 +5,7 @@ chunks that bound memory and honour a deadline."""
 import math
 import time
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 
@@ -41,10 +42,19 @@ class _Batch:
     # down from p1 and p2; 1 where nothing is required of it.
     reach: np.ndarray
 
+    @cached_property
+    def one_life_each(self) -> bool:
+        """Whether no item has a second life: then no second survival is looked up, and the
+        states are what the general formulas give with it 0 (both and second-only 0)."""
+        return bool((self.second < 0).all())
+
     def state_probabilities(self, own, t):
         """Return the probabilities, at times ``t`` at or after the deferral, that both lives,
         only the first and only the second are alive and the start requirement was met."""
         p1 = self.lives.survival(self.first[own], t)
+        if self.one_life_each:
+            zero = np.zeros_like(p1)
+            return zero, self.reach[own, 0] * p1, zero
         has2 = self.second[own] >= 0
         p2 = np.where(has2, self.lives.survival(np.maximum(self.second[own], 0), t), 0.0)
         both = p1 * p2
@@ -53,6 +63,8 @@ class _Batch:
 
     def weight(self, own, both, one, two):
         """Return the expected fraction of the full amount payable, given the states."""
+        if self.one_life_each:  # (both and second-only are 0)
+            return self.amounts[own, 1] * one
         a = self.amounts[own]
         return a[:, 0] * both + a[:, 1] * one + a[:, 2] * two
 
@@ -63,6 +75,10 @@ class _Batch:
     def life_weight_slope(self, own, t):
         """Return d/dt of :meth:`life_weight`."""
         lives = self.lives
+        if self.one_life_each:
+            d1 = _survival_slope(lives.survival(self.first[own], t),
+                                 lives.force(self.first[own], t))
+            return self.weight(own, None, self.reach[own, 0] * d1, None)
         p1 = lives.survival(self.first[own], t)
         has2 = self.second[own] >= 0
         s2 = np.maximum(self.second[own], 0)

@@ -564,9 +564,11 @@ class Curve:
         owner = np.asarray(owner, dtype=np.intp)
         t = np.asarray(time, dtype=float)
         pv = np.asarray(present_value, dtype=float)
-        value = np.bincount(owner, pv, minlength=size).astype(float)
-        first = np.bincount(owner, pv * t, minlength=size).astype(float)
-        second = np.bincount(owner, pv * t * t, minlength=size).astype(float)
+        value = np.bincount(owner, pv, minlength=size).astype(float, copy=False)
+        pvt = pv * t
+        first = np.bincount(owner, pvt, minlength=size).astype(float, copy=False)
+        pvt *= t
+        second = np.bincount(owner, pvt, minlength=size).astype(float, copy=False)
         if not key_rates:
             key = None
         elif self.kind == "flat":  # one factor, whose exposure is t: the first moment

@@ -13,7 +13,9 @@ from service.engine.annuity import (
     Valuation,
     annuity_values,
     cash_flow_schedule,
+    value_annuities,
 )
+from service.engine.curves import Curve
 from service.engine.tables import table_from_law
 from tests.reference import models
 from tests.reference.direct import DirectLife, continuous_value, discrete_value
@@ -233,3 +235,31 @@ class TestTwoLivesAgainstDirectComputation:
         assert_allclose(schedule.both, p1 * p2, rtol=1e-12, atol=1e-300)
         assert_allclose(schedule.first_only, p1 * (1 - p2), rtol=1e-12, atol=1e-300)
         assert_allclose(schedule.second_only, (1 - p1) * p2, rtol=1e-12, atol=1e-300)
+
+
+@pytest.mark.parametrize("approximation", ["exact", "woolhouse-3"])
+@pytest.mark.parametrize("interest", [0.04, Curve.from_mapping(
+    {"kind": "forward", "edges": [10], "rates": [0.03, 0.05]})])
+def test_single_life_items_are_valued_alike_with_or_without_a_two_life_item_beside(
+        interest, approximation):
+    # A batch of single lives skips the second life's survival (its states are what the
+    # general formulas give with it 0); next to a two-life item the same items take the
+    # general formulas. Both give the same values and measures (general path).
+    tables = [models.susm()]
+    singles = [Item((Life(55.0 + 3.7 * k),),
+                    Payments(("advance", "arrears", "continuous")[k % 3], (1, 4, 12)[k % 3],
+                             term=None if k % 2 else 15.0, deferral=float(k % 4),
+                             guarantee=5.0 if k % 5 == 0 else 0.0,
+                             escalation=0.01 * (k % 3)))
+               for k in range(12)]
+    pair = Item((Life(60.0), Life(57.0)), Payments("advance", 12), (1.0, 0.0, 0.0))  # joint
+    valuation = Valuation(interest, "udd", approximation)
+    alone = value_annuities(tables, singles, valuation, fast=False,
+                            measure=[True] * len(singles))
+    beside = value_annuities(tables, singles + [pair], valuation, fast=False,
+                             measure=[True] * (len(singles) + 1))
+    assert_allclose(alone.value, beside.value[:-1], rtol=1e-15, atol=0)
+    assert alone.method_code.tolist() == beside.method_code[:-1].tolist()
+    for name in ("duration", "convexity"):
+        assert_allclose(getattr(alone.measures, name), getattr(beside.measures, name)[:-1],
+                        rtol=1e-14, atol=0)
