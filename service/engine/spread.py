@@ -80,13 +80,13 @@ def annuity_spread(tables, items, valuation: Valuation, levels, *,
     mean = np.zeros(len(items))
     sd = np.zeros(len(items))
     pct = []
+    continuous, count = batch.continuous.tolist(), count.tolist()
     for n in range(len(items)):
         _on_time(deadline)
-        if batch.continuous[n]:
+        if continuous[n]:
             values, probs = _continuous_outcomes(batch, n, curve, items[n].start_requires)
         else:
-            values, probs = _outcomes(batch, n, int(count[n]), curve,
-                                      items[n].start_requires)
+            values, probs = _outcomes(batch, n, count[n], curve, items[n].start_requires)
         order = np.argsort(values, kind="stable")
         values, probs = values[order], probs[order]
         mean[n] = np.dot(probs, values)
@@ -111,10 +111,10 @@ def _outcomes(batch, n: int, count: int, curve, requires: str):
     life = np.where(j >= g, pv, 0.0)
     checkpoints = np.concatenate([[u], t])
     lives = batch.lives
-    first = lives.survival(np.full(count + 1, batch.first[n]), checkpoints)
+    first = lives.survival(batch.first[n], checkpoints)  # (one life, broadcast)
     if batch.second[n] < 0:
         return _one_life(first, certain, life)
-    second = lives.survival(np.full(count + 1, batch.second[n]), checkpoints)
+    second = lives.survival(batch.second[n], checkpoints)
     return _two_lives(first, second, certain, life, batch.amounts[n], requires)
 
 
@@ -129,7 +129,7 @@ def _made(life, k):
     dates j <= k - 2 (payment j is at checkpoint j + 1; checkpoint 0 is the deferral). For
     continuous blocks: the blocks before block k (block k ends at checkpoint k)."""
     paid = np.concatenate([[0.0], np.cumsum(life)])
-    return paid[np.clip(k - 1, 0, life.size)]
+    return paid[np.minimum(np.maximum(k - 1, 0), life.size)]  # (np.clip, faster)
 
 
 def _one_life(survival, certain, life):
@@ -185,15 +185,14 @@ def _continuous_outcomes(batch, n: int, curve, requires: str):
     guaranteed = full[certain].sum()
     life = np.where(certain, 0.0, full)
     checkpoints = np.concatenate([[u], b])
-    count = checkpoints.size
     lives = batch.lives
-    first = lives.survival(np.full(count, batch.first[n]), checkpoints)
+    first = lives.survival(batch.first[n], checkpoints)  # (one life, broadcast)
     if batch.second[n] < 0:
         probs = _distribution(first)  # K = 0 dead at u; K = k: dies in block k (1-based)
         k = np.arange(probs.size)
         made = _made(life, k) + 0.5 * _block(life, k)  # blocks before k, half of block k
         return np.where(k >= 1, guaranteed + made, 0.0), probs
-    second = lives.survival(np.full(count, batch.second[n]), checkpoints)
+    second = lives.survival(batch.second[n], checkpoints)
     p1, p2 = _distribution(first), _distribution(second)
     k1 = np.arange(p1.size)[:, None]
     k2 = np.arange(p2.size)[None, :]
@@ -220,4 +219,4 @@ def _continuous_outcomes(batch, n: int, curve, requires: str):
 def _block(life, k):
     """The value of block k (1-based: block k ends at checkpoint k); 0 outside."""
     padded = np.concatenate([[0.0], life, [0.0]])
-    return padded[np.clip(k, 0, life.size + 1)]
+    return padded[np.minimum(np.maximum(k, 0), life.size + 1)]  # (np.clip, faster)

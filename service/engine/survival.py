@@ -107,8 +107,9 @@ class Lives:
     def _locate(self, idx, t):
         s = self.frac[idx] + np.asarray(t, dtype=float)
         k = np.floor(s + _SNAP)
-        r = np.clip(s - k, 0.0, 1.0)
-        k = np.clip(k, 0, self.q.shape[1]).astype(np.intp)
+        # (np.minimum of np.maximum is np.clip, without its Python-level wrapper)
+        r = np.minimum(np.maximum(s - k, 0.0), 1.0)
+        k = np.minimum(np.maximum(k, 0), self.q.shape[1]).astype(np.intp)
         return k, r
 
     def survival(self, idx, t):
