@@ -529,10 +529,13 @@ class Curve:
             return np.bincount(owner, pv * t, minlength=size)[:, None]
         if self.kind == "forward":
             b = self._band(t)
-            cell = owner * K + b
+            cell = owner * K
+            cell += b
             mass = np.bincount(cell, pv, minlength=size * K).reshape(size, K)
-            part = np.bincount(cell, pv * (t - self._start[b]),
-                               minlength=size * K).reshape(size, K)
+            exposed = self._start[b]  # then pv x (t - the band's start), in place
+            np.subtract(t, exposed, out=exposed)
+            exposed *= pv
+            part = np.bincount(cell, exposed, minlength=size * K).reshape(size, K)
             # Payments in later bands are exposed to the whole width of band k.
             later = np.cumsum(mass[:, ::-1], axis=1)[:, ::-1] - mass
             width = np.append(np.diff(self._start), 0.0)

@@ -121,9 +121,13 @@ def _death_discrete(batch, which, curves, deadline):
         inner = np.flatnonzero(j < count[o])  # a period starts here; the next point ends it
         died = w[inner] - w[inner + 1]
         year = (j[inner] // mo[inner]) * batch.growth[own[inner]]
+        escalating = year.any()  # (else every escalation factor is e^0 = 1)
+        ends, owners = t[inner + 1], o[inner]
         for value, curve, power in zip(values, curves, _POWERS, strict=True):
-            pv = np.exp(power * year) * curve.discount(t[inner + 1]) * died
-            value += np.bincount(o[inner], weights=pv, minlength=which.size)
+            pv = curve.discount(ends)
+            if escalating:
+                pv = np.exp(power * year) * pv
+            value += np.bincount(owners, weights=pv * died, minlength=which.size)
     return values
 
 
