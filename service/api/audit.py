@@ -102,7 +102,7 @@ def improvement_block(improvement) -> dict:
 def use_age_definition(basis) -> None:
     """Record that the request derived ages from dates of birth by the basis' definition."""
     state = current()
-    if state.basis is not None:
+    if state.basis is not None and "age_definition" not in state.basis:
         state.basis = state.basis | {"age_definition": basis.age_definition}  # (shared)
 
 

@@ -395,6 +395,11 @@ class _Column:
             self.kind, self.ranges, self.types = "float", ranges, (float, int, _MISSING)
         elif kind is fields.Integer and field.strict and ranges is not None:
             self.kind, self.ranges, self.types = "int", ranges, (int, _MISSING)
+        elif kind is fields.Date and not field.validators:
+            # A date: each distinct string read once by the field itself (an ISO date as
+            # marshmallow reads it), the items given the dates it gives.
+            self.kind, self.types = "date", (str, _MISSING)
+            self.convert = _by_field(field, None)
         elif kind is fields.String:
             self.kind, self.types = "str", (str, _MISSING)
             self.convert = _converter(field, key)[0]
@@ -442,6 +447,16 @@ class _Column:
             sizes = np.fromiter(map(len, values), dtype=np.int64, count=size)
             for lo, hi in self.lengths:
                 bad |= (sizes < lo) | (sizes > hi)
+            return values, bad
+        if self.kind == "date":
+            read = {v: self.convert(v) for v in set(values) if type(v) is str}
+            for n, v in enumerate(values):
+                if type(v) is str:
+                    x = read[v]
+                    if x is _NO:
+                        bad[n] = True
+                        x = None
+                    values[n] = x
             return values, bad
         if self.kind == "str":
             verdict = {v: self.convert(v) is not _NO for v in set(values) if type(v) is str}

@@ -151,10 +151,11 @@ class LifeSchema(_Strict):
 
     @staticmethod
     def _age_or_date_suspects(columns: dict, size: int):
-        """For a batch loaded as columns: the lives ``_age_or_date`` could refuse."""
+        """For a batch loaded as columns: the lives ``_age_or_date`` refuses (neither an age
+        nor a date of birth, or both)."""
         ages = columns.get("age", [None] * size)
         born = columns.get("date_of_birth", [None] * size)
-        return [a is None or b is not None for a, b in zip(ages, born, strict=True)]
+        return [(a is None) == (b is None) for a, b in zip(ages, born, strict=True)]
 
     _age_or_date.batch_suspects = _age_or_date_suspects
 

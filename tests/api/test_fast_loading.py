@@ -302,8 +302,9 @@ def test_the_batch_loader_checks_plain_items_as_columns():
     and every bad item is sent one by one."""
     plain = [item for item in GOOD if len(item["lives"]) == 1 and not {
         "measures", "spread", "term_months", "deferral_months", "guarantee_months"} & set(
-        item) and "date_of_birth" not in item["lives"][0]]
+        item)]
     assert len(plain) >= 10
+    assert any("date_of_birth" in item["lives"][0] for item in plain)  # (dates as columns)
     bad = _batch_agrees(ItemSchema(), copy.deepcopy(plain))
     assert not bad.any()
     dicts = [item for item in BAD if type(item) is dict]
@@ -311,6 +312,22 @@ def test_the_batch_loader_checks_plain_items_as_columns():
     assert fastload.fields_plan(ProjectionItemSchema()) is not None
     # A schema-level rule without a batch form keeps its schema out of the column path.
     assert fastload.fields_plan(InsuranceItemSchema()) is None
+
+
+def test_dates_of_birth_are_read_as_a_column_as_marshmallow_reads_them():
+    # Each distinct date string is read once by the field itself; the good ones are vouched
+    # for as columns, the bad ones (no such day, not ISO, not a string, with an age too,
+    # neither) sent one by one, where marshmallow words them.
+    dates = ["1958-03-14", "1958-03-14", "1960-02-29", "1958-02-30", "14/03/1958", 1958,
+             "1958-3-4", None]
+    items = [{"lives": [{"date_of_birth": d, "sex": "male"}], "timing": "advance"}
+             for d in dates]
+    items += [{"lives": [{"age": 65.0, "date_of_birth": "1958-03-14"}], "timing": "advance"},
+              {"lives": [{"age": 65.0}], "timing": "advance"}]
+    one_by_one = _batch_agrees(ItemSchema(), items).tolist()  # (True: not vouched for)
+    assert one_by_one[:3] == [False, False, False]
+    assert one_by_one[3:6] == [True, True, True] and one_by_one[7:9] == [True, True]
+    assert one_by_one[9] is False
 
 
 def test_the_batch_loader_stops_at_the_first_refusal_as_before():
