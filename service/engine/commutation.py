@@ -165,7 +165,7 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
         """q_k of each item at its k."""
         if top:
             inside = kk < s
-            sel = sq[rows, np.clip(kk, 0, top - 1)]
+            sel = sq[rows, _c._between(kk, 0, top - 1)]
             return np.where(inside, sel, sh.q[key, np.minimum(base + kk, sh.width - 1)])
         return sh.q[key, np.minimum(base + kk, sh.width - 1)]
 
@@ -176,8 +176,8 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
     if (win.guaranteed > 0).any():
         pos = win.frac + win.u
         ku = np.floor(pos + _c._SNAP)
-        ru = np.clip(pos - ku, 0.0, 1.0)
-        ku = np.clip(ku, 0, width).astype(np.int64)
+        ru = _c._between(pos - ku, 0.0, 1.0)
+        ku = _c._between(ku, 0, width).astype(np.int64)
         alive = chain(ku) * (1.0 - ru * rate(np.minimum(ku, width - 1))) / start
         values += _c._guarantee(win, m, growth, delta, alive)
     live = win.live
