@@ -19,15 +19,63 @@ _LINE = json.JSONEncoder(separators=(",", ":")).encode
 
 
 def _write_line(text: str) -> None:
-    """``access_log.info(text)`` (the caller has checked that INFO is enabled), with the
-    record made directly: its place in the source is this function's, not looked up on the
-    stack for every request."""
-    access_log.handle(access_log.makeRecord(access_log.name, logging.INFO, _HERE[0], _HERE[1],
-                                            text, None, None, "_finish"))
+    """``access_log.info(text)`` (the caller has checked that INFO is enabled).
+
+    Where logging is set up as the service sets it up (``logging.basicConfig`` in
+    create_app: one plain stream handler on the root logger writing the message alone, and
+    nothing else on the way), the line is written to that handler's stream under its lock,
+    as its ``emit`` would write it: the same bytes, without a LogRecord and a formatting
+    pass for every request. Any other set-up (another handler or format, a filter, pytest's
+    capture) gets the record through ``logging``, made directly: its place in the source is
+    this function's, not looked up on the stack."""
+    handler = _plain_handler()
+    if handler is None:
+        access_log.handle(_record(text))
+        return
+    handler.acquire()
+    try:
+        stream = handler.stream
+        stream.write(text + handler.terminator)
+        stream.flush()
+    except RecursionError:  # (as StreamHandler.emit)
+        raise
+    except Exception:
+        handler.handleError(_record(text))
+    finally:
+        handler.release()
+
+
+def _record(text: str) -> logging.LogRecord:
+    return access_log.makeRecord(access_log.name, logging.INFO, _HERE[0], _HERE[1], text,
+                                 None, None, "_finish")
 
 
 #: Where the access line is written from (for the record's pathname and line number).
 _HERE = (__file__, _write_line.__code__.co_firstlineno)
+
+
+def _plain_handler() -> logging.StreamHandler | None:
+    """The one handler an INFO record of the access logger would reach, where it writes the
+    message alone to a stream and nothing on the way filters or changes a record; else
+    None."""
+    if access_log.disabled:
+        return None
+    logger = access_log
+    while logger.parent is not None:  # (the access logger and those above it, bar the root)
+        if logger.handlers or logger.filters or not logger.propagate:
+            return None
+        logger = logger.parent
+    handlers = logger.handlers
+    if len(handlers) != 1 or logger.filters:
+        return None
+    (handler,) = handlers
+    formatter = handler.formatter
+    if (type(handler) is not logging.StreamHandler or handler.filters
+            or handler.level > logging.INFO or type(formatter) is not logging.Formatter
+            or getattr(formatter, "_fmt", None) != "%(message)s"
+            or type(getattr(formatter, "_style", None)) is not logging.PercentStyle):
+        return None
+    return handler
 
 
 def _route(req=None) -> str:

@@ -12,6 +12,7 @@ answer that may differ between two requests.
 import copy
 import datetime
 import hashlib
+import io
 import json
 import logging
 
@@ -319,6 +320,45 @@ def test_without_info_logging_no_line_is_composed_and_metrics_still_count(client
     (record,) = [r for r in caplog.records if r.name == "service.access"]
     assert json.loads(record.getMessage()) == composed[0]
     assert record.getMessage() == json.dumps(composed[0], separators=(",", ":"))
+
+
+def test_the_access_line_is_written_as_logging_writes_it(monkeypatch, caplog):
+    # Under the service's own logging set-up (basicConfig: one stream handler on the root
+    # writing the message alone) observe._write_line writes to that handler's stream itself;
+    # the bytes are the ones logging writes for the same line. Any other set-up (here:
+    # pytest's capture, a filter, another format) gets a record through logging.
+    from service.api import observe
+
+    line = json.dumps({"event": "request", "status": 200}, separators=(",", ":"))
+
+    def written(handler, *, through_logging: bool) -> str:
+        stream = io.StringIO()
+        handler.setStream(stream)
+        if through_logging:
+            observe.access_log.handle(observe._record(line))
+        else:
+            observe._write_line(line)
+        return stream.getvalue()
+
+    plain = logging.StreamHandler()
+    plain.setFormatter(logging.Formatter("%(message)s"))
+    monkeypatch.setattr(logging.root, "handlers", [plain])
+    assert observe._plain_handler() is plain
+    assert written(plain, through_logging=False) == written(plain, through_logging=True) \
+        == line + "\n"
+    # Not plain: a filter on the way, another format, a second handler.
+    plain.addFilter(lambda record: True)
+    assert observe._plain_handler() is None
+    plain.filters.clear()
+    plain.setFormatter(logging.Formatter("%(levelname)s %(message)s"))
+    assert observe._plain_handler() is None
+    assert written(plain, through_logging=False) == "INFO " + line + "\n"
+    plain.setFormatter(logging.Formatter("%(message)s"))
+    with caplog.at_level(logging.INFO, logger="service.access"):
+        monkeypatch.setattr(logging.root, "handlers", [plain, caplog.handler])
+        assert observe._plain_handler() is None
+        observe._write_line(line)
+    assert [r.getMessage() for r in caplog.records if r.name == "service.access"] == [line]
 
 
 # ---- the body's parse -----------------------------------------------------------------------
