@@ -281,6 +281,17 @@ def _nice_size(limit: float) -> int:
 # The suite
 
 
+def _against_general(what: str, got, tables, items, valuation, failures: list) -> float:
+    """The largest relative difference of ``got`` from the general path's values of
+    ``items``; beyond COLUMNS_AGREEMENT a failure naming ``what`` is added."""
+    between = relative_difference(
+        got, value_annuities(tables, items, valuation, fast=False).value)
+    if not between <= COLUMNS_AGREEMENT:
+        failures.append(f"{what}: the engine differs from the general path by {between:.3g} "
+                        f"(tolerance {COLUMNS_AGREEMENT:g})")
+    return between
+
+
 def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Section:
     registry = create_app().extensions["registry"]
     basis, valuation = _basis(registry, BASIS)
@@ -360,12 +371,9 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
     continuous_cols = simple_columns(ages, sexes, "continuous", 1)
     continuous = engine.prepare(continuous_cols)
     continuous_items = to_items(continuous_cols)
-    continuous_between = relative_difference(
-        engine.value(continuous),
-        value_annuities(tables, continuous_items, valuation, fast=False).value)
-    if not continuous_between <= COLUMNS_AGREEMENT:
-        failures.append(f"continuous payments: the engine differs from the general path by "
-                        f"{continuous_between:.3g} (tolerance {COLUMNS_AGREEMENT:g})")
+    continuous_between = _against_general(
+        "continuous payments", engine.value(continuous), tables, continuous_items, valuation,
+        failures)
     partner = np.clip(ages + rng.uniform(-5, 5, BATCH), 40, 110)
     pairs = [Item((Life(float(a), int(s)), Life(float(b), 1 - int(s))), Payments("advance", 1))
              for a, b, s in zip(ages, partner, sexes, strict=True)]
@@ -379,12 +387,8 @@ def run(repeats: int = 5, plots: Path | None = None, large: int = LARGE) -> Sect
     if engine.api == "value_columns" and _JointColumns is not None:
         pair_columns = _JointColumns.from_dict(simple_columns(ages, sexes, "advance", 1)
                                                | {"table2": 1 - sexes, "age2": partner})
-        pairs_between = relative_difference(
-            engine.value(pair_columns),
-            value_annuities(tables, pairs, valuation, fast=False).value)
-        if not pairs_between <= COLUMNS_AGREEMENT:
-            failures.append(f"two lives as columns: the engine differs from the general path "
-                            f"by {pairs_between:.3g} (tolerance {COLUMNS_AGREEMENT:g})")
+        pairs_between = _against_general("two lives as columns", engine.value(pair_columns),
+                                         tables, pairs, valuation, failures)
         tasks6["two lives"] = lambda: engine.value(pair_columns)
         tasks6["two lives, Item objects"] = lambda: value_annuities(tables, pairs, valuation)
     items_annual = None

@@ -256,21 +256,11 @@ def profile(repeats: int = 5) -> str:
     spent: dict[str, float] = {}
     inside: set[str] = set()  # a stage called within its own label is counted once
 
+    timed = _timer(spent, inside)
+
     def timed_stage(name, label):
         original = getattr(views, name)
-
-        def stage(*args, **kwargs):
-            if label in inside:
-                return original(*args, **kwargs)
-            inside.add(label)
-            t0 = time.perf_counter()
-            try:
-                return original(*args, **kwargs)
-            finally:
-                inside.discard(label)
-                spent[label] = spent.get(label, 0.0) + time.perf_counter() - t0
-
-        setattr(views, name, stage)
+        setattr(views, name, timed(original, label))
         return original
 
     stages = {"json_body": "parse the body", "_load_whole": "load and validate the items",
@@ -310,17 +300,9 @@ def profile(repeats: int = 5) -> str:
                       *table(["stage", "seconds", "share"], rows)])
 
 
-def profile_single(requests: int = 500, blocks: int = 7) -> str:
-    """Time the stages of a single-factor request (``SINGLE``) through the Flask test client,
-    the access log on (written to stderr) as in production; the least of ``blocks`` blocks of
-    ``requests`` requests, beside the echo app's request through the same client."""
-    from flask import Flask, jsonify, request
-
-    from service import create_app
-    from service.api import views
-
-    spent: dict[str, float] = {}
-    inside: set[str] = set()
+def _timer(spent: dict[str, float], inside: set[str]):
+    """``timed(original, label)``: ``original`` wrapped to add its seconds to
+    ``spent[label]`` (a stage called within its own label is counted once)."""
 
     def timed(original, label):
         def stage(*args, **kwargs):
@@ -335,6 +317,23 @@ def profile_single(requests: int = 500, blocks: int = 7) -> str:
                 spent[label] = spent.get(label, 0.0) + time.perf_counter() - t0
 
         return stage
+
+    return timed
+
+
+def profile_single(requests: int = 500, blocks: int = 7) -> str:
+    """Time the stages of a single-factor request (``SINGLE``) through the Flask test client,
+    the access log on (written to stderr) as in production; the least of ``blocks`` blocks of
+    ``requests`` requests, beside the echo app's request through the same client."""
+    from flask import Flask, jsonify, request
+
+    from service import create_app
+    from service.api import views
+
+    spent: dict[str, float] = {}
+    inside: set[str] = set()
+
+    timed = _timer(spent, inside)
 
     stages = {"json_body": "parse the body", "_load_whole": "load and validate",
               "_basis": "basis, interest, audit record", "_valuation":

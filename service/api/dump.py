@@ -11,11 +11,13 @@ and converting 10,000 results field by field through marshmallow's own ``dump`` 
 more than valuing them. The contract tests (schemathesis) check the values' types.
 """
 
+import json
 import logging
 from collections.abc import Callable
 from contextvars import ContextVar
 from types import MappingProxyType
 
+from flask import Response, current_app, jsonify
 from marshmallow import Schema, fields
 
 log = logging.getLogger(__name__)
@@ -151,3 +153,27 @@ def _undeclared(schema: str, keys: set) -> None:
     if schema not in _WARNED:
         _WARNED.add(schema)
         log.error("response drift: %s (dropped)", message)
+
+
+def json_response(body) -> Response:
+    """``jsonify(body)``, byte for byte; out of debug mode (compact JSON) by an encoder kept on
+    the JSON provider for its options (``json.dumps`` with Flask's options makes one per
+    call)."""
+    app = current_app._get_current_object()
+    provider = app.json
+    if provider.compact is False or (provider.compact is None and app.debug):
+        return jsonify(body)  # indented
+    options = (provider.default, provider.ensure_ascii, provider.sort_keys)
+    kept = provider.__dict__.get(_ENCODER)
+    if kept is None or kept[0] != options:
+        # (check_circular off: an answer is a tree built by the views, never circular; on,
+        # the encoder keeps a set of the objects it is inside. The text is the same.)
+        kept = (options, json.JSONEncoder(separators=(",", ":"), default=options[0],
+                                          ensure_ascii=options[1], sort_keys=options[2],
+                                          check_circular=False))
+        setattr(provider, _ENCODER, kept)
+    return app.response_class(f"{kept[1].encode(body)}\n", mimetype=provider.mimetype)
+
+
+#: The attribute of a JSON provider that keeps its compact encoder and the options it has.
+_ENCODER = "_annuity_service_compact_encoder"

@@ -2,11 +2,11 @@
 
 import logging
 
-from flask import Flask, jsonify
+from flask import Flask
 from werkzeug.exceptions import HTTPException
 
 from service.api.audit import audit_block, request_id
-from service.api.dump import dump
+from service.api.dump import dump, json_response
 from service.api.metrics import DEADLINES
 from service.api.schemas import ProblemSchema
 from service.engine.errors import DeadlineError
@@ -66,7 +66,7 @@ def problem_response(status: int, detail: str, *, title: str | None = None,
     if errors_omitted:
         body["errors_omitted"] = errors_omitted
     body["audit"] = audit_block()
-    response = jsonify(dump(ProblemSchema, body))
+    response = json_response(dump(ProblemSchema, body))
     response.status_code = status
     response.mimetype = "application/problem+json"
     return response

@@ -32,7 +32,7 @@ from service.api.body import (
 )
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
-from service.api.dump import dump
+from service.api.dump import dump, json_response
 from service.api.fastload import load_batch, load_items
 from service.api.metrics import count_factors
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
@@ -92,31 +92,7 @@ _life_table_query = LifeTableQuerySchema()
 
 def _respond(schema, body: dict) -> Response:
     """A JSON answer, dumped through the schema the contract documents for it."""
-    return _jsonify(dump(schema, body))
-
-
-def _jsonify(body) -> Response:
-    """``jsonify(body)``, byte for byte; out of debug mode (compact JSON) by an encoder kept on
-    the JSON provider for its options (``json.dumps`` with Flask's options makes one per
-    call)."""
-    app = current_app._get_current_object()
-    provider = app.json
-    if provider.compact is False or (provider.compact is None and app.debug):
-        return jsonify(body)  # indented
-    options = (provider.default, provider.ensure_ascii, provider.sort_keys)
-    kept = provider.__dict__.get(_ENCODER)
-    if kept is None or kept[0] != options:
-        # (check_circular off: an answer is a tree built by the views, never circular; on,
-        # the encoder keeps a set of the objects it is inside. The text is the same.)
-        kept = (options, json.JSONEncoder(separators=(",", ":"), default=options[0],
-                                          ensure_ascii=options[1], sort_keys=options[2],
-                                          check_circular=False))
-        setattr(provider, _ENCODER, kept)
-    return app.response_class(f"{kept[1].encode(body)}\n", mimetype=provider.mimetype)
-
-
-#: The attribute of a JSON provider that keeps its compact encoder and the options it has.
-_ENCODER = "_annuity_service_compact_encoder"
+    return json_response(dump(schema, body))
 
 
 def _registry():
@@ -639,7 +615,7 @@ def _results_json(body: dict) -> Response:
     placed, the body is encoded plainly), the rest encoded as jsonify does, and the
     placeholders' JSON replaced by the blocks' JSON."""
     if len(body["results"]) < _SHARED_BLOCKS_FROM:
-        return _jsonify(body)  # a few blocks encode faster than their placeholders are swapped
+        return json_response(body)  # a few blocks encode faster than their placeholders are swapped
     provider = current_app.json
     if provider.compact is False or (provider.compact is None and current_app.debug):
         return jsonify(body)  # indented: the blocks would need the indentation of their place

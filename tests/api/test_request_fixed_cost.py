@@ -20,6 +20,7 @@ import pytest
 
 from service.api import audit, fastload, views
 from service.api.body import load
+from service.api.dump import json_response
 from service.api.problems import ProblemError
 from service.api.schemas import (
     FactorRequestSchema,
@@ -282,9 +283,9 @@ def test_many_results_with_shared_method_blocks_still_encode_as_jsonify_does(app
 
 
 def test_a_json_answer_is_jsonify_s_byte_for_byte_whatever_the_provider_s_options(app):
-    # views._jsonify keeps a compact encoder on the app's JSON provider for its options; it
-    # must give what flask.jsonify gives (text, mimetype), also after an option changes and
-    # in debug mode (indented, by jsonify itself).
+    # dump.json_response (every JSON answer, problems too) keeps a compact encoder on the
+    # app's JSON provider for its options; it must give what flask.jsonify gives (text,
+    # mimetype), also after an option changes and in debug mode (indented, by jsonify).
     body = {"b": datetime.date(2026, 12, 31), "a": "\u00e9 \"q\"", "n": [1.5, -0.0, None]}
     provider = app.json
     try:
@@ -292,7 +293,7 @@ def test_a_json_answer_is_jsonify_s_byte_for_byte_whatever_the_provider_s_option
             provider.sort_keys = sort_keys
             app.debug = debug
             with app.test_request_context():
-                mine, theirs = views._jsonify(body), views.jsonify(body)
+                mine, theirs = json_response(body), views.jsonify(body)
                 assert mine.get_data() == theirs.get_data()
                 assert mine.mimetype == theirs.mimetype
     finally:

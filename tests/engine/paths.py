@@ -13,17 +13,24 @@ from service.engine.errors import ItemError
 RTOL = 1e-12
 
 
+def errors_both_ways(tables, items, valuation) -> list:
+    """[the fast path's ItemError errors, the general path's] for ``items`` (None where the
+    path values them)."""
+    got = []
+    for fast in (True, False):
+        try:
+            value_annuities(tables, items, valuation, fast=fast)
+            got.append(None)
+        except ItemError as exc:
+            got.append(exc.errors)
+    return got
+
+
 def valid(tables, items, valuation):
     """Drop the items the general path refuses (ages moved outside the table, lives dead at
     their adjusted age), checking first that both paths refuse the same ones."""
     while True:
-        errors = []
-        for fast in (True, False):
-            try:
-                value_annuities(tables, items, valuation, fast=fast)
-                errors.append(None)
-            except ItemError as exc:
-                errors.append(exc.errors)
+        errors = errors_both_ways(tables, items, valuation)
         assert errors[0] == errors[1]
         if errors[0] is None:
             return items

@@ -29,6 +29,7 @@ from service.engine.annuity import (
 from service.engine.columns import Columns, problems, value_columns
 from service.engine.errors import DeadlineError, ItemError, WorkLimitError
 from tests.engine.paths import assert_same as _assert_same
+from tests.engine.paths import errors_both_ways
 from tests.engine.paths import valid as _valid
 from tests.reference import models
 
@@ -249,13 +250,7 @@ def test_the_same_errors_as_the_general_path(assumption):
     # Each bad item alone among good ones, in the middle of a batch, with a two-life item.
     for bad in BAD:
         batch = [good, Item((Life(60.0), Life(61.0)), Payments()), bad, good]
-        got = []
-        for fast in (True, False):
-            try:
-                value_annuities(tables, batch, valuation, fast=fast)
-                got.append(None)
-            except ItemError as exc:
-                got.append(exc.errors)
+        got = errors_both_ways(tables, batch, valuation)
         assert got[0] == got[1]
         single = [item for item in batch if len(item.lives) == 1]
         if got[1] is not None:

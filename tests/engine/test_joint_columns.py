@@ -34,6 +34,7 @@ from service.engine.annuity import (
 from service.engine.errors import DeadlineError, ItemError, WorkLimitError
 from service.engine.tables import MortalityTable
 from tests.engine.paths import assert_same as _assert_same
+from tests.engine.paths import errors_both_ways
 from tests.engine.paths import valid as _valid
 from tests.reference import models
 
@@ -317,16 +318,21 @@ def test_deferred_last_survivor_requiring_both_is_geometric(assumption):
 # Batches, errors and limits
 
 
+#: One and two lives, discrete and continuous, every survivorship shape (used by the tests
+#: of JointColumns too).
+MIXED = [Item((Life(60.0),), Payments("advance", 12)),
+         Item((Life(60.0), Life(55.0)), Payments("advance", 12), (1, 1, 0.5)),
+         Item((Life(70.25),), Payments("continuous")),
+         Item((Life(66.0), Life(64.5)), Payments("continuous"), JOINT),
+         Item((Life(65.0),), Payments("arrears", 4, term=10.0)),
+         Item((Life(71.5), Life(69.0)), Payments(), LAST_SURVIVOR, "first"),
+         Item((Life(80.0),), Payments(guarantee=5.0)),
+         Item((Life(58.0), Life(61.0)), Payments("arrears", 1, guarantee=10.0), REVERSIONARY)]
+
+
 def test_mixed_batches_keep_places_codes_and_methods():
     tables = [models.susm()]
-    items = [Item((Life(60.0),), Payments("advance", 12)),
-             Item((Life(60.0), Life(55.0)), Payments("advance", 12), (1, 1, 0.5)),
-             Item((Life(70.25),), Payments("continuous")),
-             Item((Life(66.0), Life(64.5)), Payments("continuous"), JOINT),
-             Item((Life(65.0),), Payments("arrears", 4, term=10.0)),
-             Item((Life(71.5), Life(69.0)), Payments(), LAST_SURVIVOR, "first"),
-             Item((Life(80.0),), Payments(guarantee=5.0)),
-             Item((Life(58.0), Life(61.0)), Payments("arrears", 1, guarantee=10.0), REVERSIONARY)]
+    items = MIXED
     for approximation in ("exact", "woolhouse-2", "woolhouse-3"):
         valuation = Valuation(0.04, approximation=approximation)
         got = _assert_same(tables, items, valuation)
@@ -389,13 +395,7 @@ def test_the_same_errors_as_the_general_path(assumption):
     refused = 0
     for bad in BAD:
         for batch in ([good, single, bad, good], [good, bad], [bad]):
-            got = []
-            for fast in (True, False):
-                try:
-                    value_annuities(tables, batch, valuation, fast=fast)
-                    got.append(None)
-                except ItemError as exc:
-                    got.append(exc.errors)
+            got = errors_both_ways(tables, batch, valuation)
             assert got[0] == got[1]
             refused += got[1] is not None
     # (under UDD a life half a year past its integer age with q = 1 is alive: 1 - 0.5 q)

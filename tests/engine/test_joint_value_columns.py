@@ -32,10 +32,8 @@ from service.engine.errors import DeadlineError, ItemError, WorkLimitError
 from service.engine.joint_columns import JOINT_FIELDS, JointColumns, problems
 from tests.engine.test_joint_columns import (
     BAD,
-    JOINT,
-    LAST_SURVIVOR,
+    MIXED,
     REQUIREMENTS,
-    REVERSIONARY,
     SHAPES,
     _constant_tables,
     _geometric,
@@ -165,14 +163,7 @@ def test_each_shape_and_start_requirement(assumption, requires, shape):
 
 def test_rows_with_one_and_two_lives_keep_places_codes_and_methods():
     tables = [models.susm()]
-    items = [Item((Life(60.0),), Payments("advance", 12)),
-             Item((Life(60.0), Life(55.0)), Payments("advance", 12), (1, 1, 0.5)),
-             Item((Life(70.25),), Payments("continuous")),
-             Item((Life(66.0), Life(64.5)), Payments("continuous"), JOINT),
-             Item((Life(65.0),), Payments("arrears", 4, term=10.0)),
-             Item((Life(71.5), Life(69.0)), Payments(), LAST_SURVIVOR, "first"),
-             Item((Life(80.0),), Payments(guarantee=5.0)),
-             Item((Life(58.0), Life(61.0)), Payments("arrears", 1, guarantee=10.0), REVERSIONARY)]
+    items = MIXED
     for approximation in ("exact", "woolhouse-2", "woolhouse-3"):
         valuation = Valuation(0.04, approximation=approximation)
         got = _assert_same(tables, items, valuation)

@@ -17,8 +17,9 @@ from service.bases.registry import load_registry
 from service.engine import small
 from service.engine.annuity import EXACT_SUM, Item, Life, Payments, Valuation, value_annuities
 from service.engine.columns import Columns, value_columns
-from service.engine.errors import DeadlineError, ItemError, WorkLimitError
+from service.engine.errors import DeadlineError, WorkLimitError
 from service.engine.tables import MortalityTable
+from tests.engine.paths import errors_both_ways
 from tests.engine.paths import valid as _valid
 from tests.engine.test_columns import BAD, _random_items
 from tests.reference import models
@@ -85,14 +86,7 @@ def test_small_batches_refuse_what_the_general_path_refuses():
     valuation = Valuation(0.05)
     good = Item((Life(65.5),), Payments("advance", 12))
     for bad in BAD:
-        batch = [good, bad]
-        got = []
-        for fast in (True, False):
-            try:
-                value_annuities(tables, batch, valuation, fast=fast)
-                got.append(None)
-            except ItemError as exc:
-                got.append(exc.errors)
+        got = errors_both_ways(tables, [good, bad], valuation)
         assert got[0] == got[1]
     # A life dead at its age (a flat extra of 1 kills it within its first year under UDD:
     # alive at 60.5 with probability 0.5, so accepted; at 61 exactly it is fine too).
