@@ -2,6 +2,7 @@
 
 import logging
 import os
+from types import FunctionType
 
 from flask import Flask
 
@@ -13,9 +14,26 @@ from service.serving import SHIPPED_TABLES
 DEFAULT_TABLES = SHIPPED_TABLES
 
 
+class ServiceApp(Flask):
+    """Flask, which asks of each hook and view it calls whether it is a coroutine function
+    (three ``inspect`` calls a request here); a plain function's answer is kept."""
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._sync: dict = {}
+
+    def ensure_sync(self, func):
+        if type(func) is not FunctionType:  # (bound methods, partials: a new object each time)
+            return super().ensure_sync(func)
+        found = self._sync.get(func)
+        if found is None:
+            found = self._sync[func] = super().ensure_sync(func)
+        return found
+
+
 def create_app(config: dict | None = None) -> Flask:
     """Create the service: defaults, then the environment, then ``config`` (tests)."""
-    app = Flask(__name__)
+    app = ServiceApp(__name__)
     app.config.from_mapping(
         TABLES_DIR=str(DEFAULT_TABLES),
         MAX_ITEMS=10_000,

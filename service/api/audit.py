@@ -1,13 +1,11 @@
 """The audit block and request id that every response carries."""
 
+import os
 import re
-import secrets
 import weakref
 from datetime import UTC, datetime
 from importlib import metadata
 from types import MappingProxyType
-
-from flask import current_app, request
 
 from service.api.state import current
 
@@ -29,8 +27,8 @@ def request_id(state=None) -> str:
         state = current()
     if state.request_id is None:
         # (request.headers.get("X-Request-ID", ""), read where the headers live)
-        incoming = request.environ.get("HTTP_X_REQUEST_ID", "")
-        state.request_id = incoming if _REQUEST_ID.match(incoming) else secrets.token_hex(16)
+        incoming = state.http.environ.get("HTTP_X_REQUEST_ID", "")
+        state.request_id = incoming if _REQUEST_ID.match(incoming) else os.urandom(16).hex()
     return state.request_id
 
 
@@ -116,7 +114,7 @@ def audit_block(state=None) -> dict:
     if state is None:
         state = current()
     dated = state.valuation_date
-    config = current_app.config
+    config = state.app.config
     return {
         "basis": state.basis,
         "interest": state.interest,

@@ -52,11 +52,19 @@ def _finite_float(text):
     return value
 
 
-def _read_body() -> bytes:
-    """Return the raw body; 413 when it is over the limit, however it is framed."""
-    environ = request.environ
-    length = get_content_length(environ)  # (request.content_length, from the environ)
-    limit = request.max_content_length
+def _read_body(http=None) -> bytes:
+    """Return the raw body; 413 when it is over the limit, however it is framed (``http``:
+    the request, where the caller holds it)."""
+    if http is None:
+        http = request._get_current_object()
+    environ = http.environ
+    text = environ.get("CONTENT_LENGTH")
+    if text is not None and text.isdigit() and text.isascii() \
+            and "HTTP_TRANSFER_ENCODING" not in environ:
+        length = int(text)  # (a plain length, read as werkzeug reads it)
+    else:
+        length = get_content_length(environ)  # (request.content_length, from the environ)
+    limit = http.max_content_length
     if length is not None:
         # As request.get_data() reads it, without its stream wrapper: 413 over the limit
         # before reading anything; a body shorter than its Content-Length is a client that
@@ -67,7 +75,7 @@ def _read_body() -> bytes:
         if len(raw) != length:
             raise ClientDisconnected()
         return raw
-    raw = request.get_data(cache=False)
+    raw = http.get_data(cache=False)
     # A chunked body has no Content-Length: the stream stops quietly at the limit, so one
     # more byte from the server's stream is what tells a body over the limit from one
     # exactly at it.
@@ -133,11 +141,11 @@ def _parse_fully(text: str):
     return value
 
 
-def media_type() -> tuple[str, dict[str, str]]:
+def media_type(environ=None) -> tuple[str, dict[str, str]]:
     """``(request.mimetype, request.mimetype_params)``, the Content-Type header parsed once
     per distinct header (most clients send one of a few); the parameters are not to be
-    changed."""
-    header = request.environ.get("CONTENT_TYPE", "")
+    changed. ``environ``: the request's, where the caller holds it."""
+    header = (request.environ if environ is None else environ).get("CONTENT_TYPE", "")
     found = _MEDIA_TYPES.get(header)
     if found is None:
         kind, params = parse_options_header(header)
@@ -152,16 +160,16 @@ def media_type() -> tuple[str, dict[str, str]]:
 _MEDIA_TYPES: dict[str, tuple[str, dict[str, str]]] = {}
 
 
-def json_body(media: tuple | None = None):
+def json_body(media: tuple | None = None, http=None):
     """Return the parsed JSON body, or raise a 4xx problem saying what is wrong with it
-    (``media``: :func:`media_type`, where the caller has it)."""
+    (``media``: :func:`media_type`, and ``http``: the request, where the caller has them)."""
     kind, params = media_type() if media is None else media
     if kind != "application/json":
         raise ProblemError(415, "Send the body as application/json.")
     charset = params.get("charset", "utf-8").lower()
     if charset not in ("utf-8", "utf8"):
         raise ProblemError(415, f"Send the body as UTF-8 JSON, not {charset}.")
-    raw = _read_body()
+    raw = _read_body(http)
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:

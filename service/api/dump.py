@@ -155,11 +155,12 @@ def _undeclared(schema: str, keys: set) -> None:
         log.error("response drift: %s (dropped)", message)
 
 
-def json_response(body) -> Response:
+def json_response(body, app=None) -> Response:
     """``jsonify(body)``, byte for byte; out of debug mode (compact JSON) by an encoder kept on
     the JSON provider for its options (``json.dumps`` with Flask's options makes one per
-    call)."""
-    app = current_app._get_current_object()
+    call). ``app``: the app answering, where the caller holds it."""
+    if app is None:
+        app = current_app._get_current_object()
     provider = app.json
     if provider.compact is False or (provider.compact is None and app.debug):
         return jsonify(body)  # indented

@@ -89,7 +89,7 @@ def init_app(app: Flask) -> None:
 
     @app.before_request
     def _start():
-        request_id(start())  # (the state starts the clock)
+        request_id(start(request._get_current_object(), app))  # (it starts the clock)
         check_token(app)
 
     @app.after_request
@@ -101,7 +101,7 @@ def init_app(app: Flask) -> None:
         if status == 401:
             response.headers["WWW-Authenticate"] = CHALLENGE
         seconds = time.perf_counter() - state.started
-        req = request._get_current_object()  # (one look-up for what follows)
+        req = state.http
         route = _route(req)
         method = req.method
         metrics.observe(route, method, status, seconds)

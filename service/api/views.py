@@ -95,13 +95,13 @@ def _respond(schema, body: dict) -> Response:
     return json_response(dump(schema, body))
 
 
-def _registry():
-    return current_app.extensions["registry"]
+def _registry(app=None):
+    return (current_app if app is None else app).extensions["registry"]
 
 
-def _basis(ref: str):
+def _basis(ref: str, app=None):
     try:
-        return _registry().resolve(ref)
+        return _registry(app).resolve(ref)
     except UnknownBasisError:
         raise ProblemError(404, f"No loaded basis answers to '{ref}'. GET /v1/bases lists "
                                 "them.", title="Unknown basis") from None
@@ -295,16 +295,19 @@ def _life_table_of(basis, index: int, query: dict):
     return table, cohort_of(dated, query["age"])
 
 
-def _wants_csv() -> bool:
-    """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV."""
-    header = request.environ.get("HTTP_ACCEPT")
+def _wants_csv(http=None) -> bool:
+    """Whether the client asked for CSV; 406 when it accepts neither JSON nor CSV (``http``:
+    the request, where the caller holds it)."""
+    if http is None:
+        http = request._get_current_object()
+    header = http.environ.get("HTTP_ACCEPT")
     if header is None:
         return False  # no Accept header: JSON
     best = _BEST_OF_ACCEPT.get(header, _UNSEEN)
     if best is _UNSEEN:
-        if not request.accept_mimetypes:
+        if not http.accept_mimetypes:
             return False  # an empty Accept header: JSON
-        best = request.accept_mimetypes.best_match(["application/json", "text/csv"])
+        best = http.accept_mimetypes.best_match(["application/json", "text/csv"])
         if len(header) <= 200:
             if len(_BEST_OF_ACCEPT) >= 256:
                 _BEST_OF_ACCEPT.clear()
@@ -598,7 +601,8 @@ class _Request:
             return _results_csv(placed, self.warnings)
         return _results_json(dump(schema, {
             "results": placed, "valued": len(results), "refused": len(self.refused),
-            "warnings": self.warnings, "audit": audit_block(self.state)}))
+            "warnings": self.warnings, "audit": audit_block(self.state)}),
+            self.state.app)
 
 
 #: Results from which method blocks are encoded once (fewer encode faster as they are: about
@@ -606,7 +610,7 @@ class _Request:
 _SHARED_BLOCKS_FROM = 32
 
 
-def _results_json(body: dict) -> Response:
+def _results_json(body: dict, app=None) -> Response:
     """``jsonify(body)``, byte for byte, with each distinct ``method`` block of the results
     (most items share one: the engine makes one per kind of valuation) encoded once.
 
@@ -615,7 +619,8 @@ def _results_json(body: dict) -> Response:
     placed, the body is encoded plainly), the rest encoded as jsonify does, and the
     placeholders' JSON replaced by the blocks' JSON."""
     if len(body["results"]) < _SHARED_BLOCKS_FROM:
-        return json_response(body)  # a few blocks encode faster than their placeholders are swapped
+        # (a few blocks encode faster than their placeholders are swapped)
+        return json_response(body, app)
     provider = current_app.json
     if provider.compact is False or (provider.compact is None and current_app.debug):
         return jsonify(body)  # indented: the blocks would need the indentation of their place
@@ -652,30 +657,33 @@ def _results_json(body: dict) -> Response:
     return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
 
 
-def _batch(schema, item_schema, build=None, columns: bool = False) -> _Request:
+def _batch(schema, item_schema, build=None, columns: bool = False, state=None) -> _Request:
     """Read a batch request; with on_error 'per-item' keep the valid items and set aside the
-    others, else refuse the whole batch at the first problem found (all of them listed)."""
-    config = current_app.config
-    media = media_type()
+    others, else refuse the whole batch at the first problem found (all of them listed).
+    ``state``: the request's state, where the caller holds it."""
+    if state is None:
+        state = current()
+    media = media_type(state.http.environ)
     from_csv = media[0] == "text/csv"
     try:
-        return _read_batch(schema, item_schema, build, config, media, columns)
+        return _read_batch(schema, item_schema, build, state, media, columns)
     except ProblemError as exc:
         if from_csv and exc.errors:
             exc.errors = {row_path(path): msgs for path, msgs in exc.errors.items()}
         raise
 
 
-def _read_batch(schema, item_schema, build, config, media: tuple,
+def _read_batch(schema, item_schema, build, state, media: tuple,
                 columns: bool) -> "_Request":
+    config = state.app.config
     limit = config["MAX_ITEMS"]
     from_csv = media[0] == "text/csv"
-    http = request._get_current_object()  # (one look-up for what follows)
+    http = state.http
     if not from_csv and http.environ.get("QUERY_STRING") and http.args:
         raise ProblemError(422, "Query parameters are options of a CSV body.", errors={
             name: ["Not read with a JSON body: give it in the body."]
             for name in sorted(http.args)[:MAX_ERROR_PATHS]})
-    body = csv_batch(limit)[0] if from_csv else json_body(media)
+    body = csv_batch(limit)[0] if from_csv else json_body(media, http)
     count = len(body["items"]) if isinstance(body, dict) and isinstance(
         body.get("items"), list) else 0
     if count > limit:
@@ -692,9 +700,8 @@ def _read_batch(schema, item_schema, build, config, media: tuple,
         data = _load_whole(schema, item_schema, body, build)
         raw = data["items"]
         places = list(range(len(raw)))
-    state = current()
     state.item_count = len(raw)
-    basis = _basis(data["basis"])
+    basis = _basis(data["basis"], state.app)
     valuation = _valuation(basis, data, state)
     _dates_needed(basis, data, data["items"])
     held = _column_items(basis, data["items"], data["valuation_date"]) if columns else None
@@ -852,12 +859,13 @@ def _placed(exc: ItemError, req: _Request) -> ItemError:
                                  "headers.", csv=(*AUDIT_CSV, "X-Warnings"))})
 def annuity_factors():
     """One or many annuity factors under one basis."""
-    wants_csv = _wants_csv()
-    req = _batch(_factor_request, _item_schema, columns=True)
+    state = current()
+    wants_csv = _wants_csv(state.http)
+    req = _batch(_factor_request, _item_schema, columns=True, state=state)
     valuation = req.valuation
     asked = [item["measures"] for item in req.items]
     key_rates = sum("key_rate_durations" in measures for measures in asked)
-    entries, cap = key_rates * valuation.curve.size, current_app.config["MAX_KEY_RATE_ENTRIES"]
+    entries, cap = key_rates * valuation.curve.size, state.app.config["MAX_KEY_RATE_ENTRIES"]
     if entries > cap:
         raise ProblemError(413, f"{key_rates} items ask for key-rate durations on "
                                 f"{valuation.curve.size} factors: {entries} entries, more "
