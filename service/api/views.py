@@ -520,8 +520,25 @@ def _valuation(basis, data, state=None):
         state = current()
     use_basis(basis, curve, state)
     use_valuation_date(data.get("valuation_date"), state)
-    return Valuation(basis.interest if curve is None else curve, basis.fractional_age,
-                     basis.approximation)
+    return _valuation_of(basis.interest if curve is None else curve, basis.fractional_age,
+                         basis.approximation)
+
+
+#: Valuations made so far, by the id of their interest structure and their methods, with
+#: the structure itself (so that its id is not reused while it is here). A Valuation is
+#: immutable, and most requests use their basis' own or one of a few flat rates.
+_VALUATIONS: dict[tuple, tuple] = {}
+_VALUATIONS_KEPT = 1024
+
+
+def _valuation_of(curve: Curve, fractional_age: str, approximation: str) -> Valuation:
+    key = (id(curve), fractional_age, approximation)
+    found = _VALUATIONS.get(key)
+    if found is None or found[0] is not curve:
+        if len(_VALUATIONS) >= _VALUATIONS_KEPT:
+            _VALUATIONS.clear()
+        found = _VALUATIONS[key] = (curve, Valuation(curve, fractional_age, approximation))
+    return found[1]
 
 
 #: Flat request structures by the repr of their rate (a Curve is immutable, and equal reprs

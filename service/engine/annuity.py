@@ -89,6 +89,19 @@ class Values:
         return self.methods[int(self.method_code[n])]
 
 
+def _columns():
+    """:mod:`service.engine.columns` (which builds on this module), imported on first use."""
+    global _COLUMNS
+    if _COLUMNS is None:
+        from service.engine import columns
+
+        _COLUMNS = columns
+    return _COLUMNS
+
+
+_COLUMNS = None
+
+
 def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None,
                     deadline: float | None = None, measure=None,
                     key_rates: bool = False, fast: bool = True) -> Values:
@@ -122,9 +135,7 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
         When the deadline passes.
     """
     if fast:
-        from service.engine import columns  # (it builds on this module)
-
-        done = columns.dispatch(tables, items, valuation, max_work=max_work,
+        done = _columns().dispatch(tables, items, valuation, max_work=max_work,
                                 deadline=deadline, measure=measure, key_rates=key_rates)
         if done is not None:
             return done

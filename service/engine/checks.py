@@ -2,7 +2,14 @@
 
 import math
 
-from service.engine.items import _EPS, MAX_FREQUENCY, START_REQUIREMENTS, TIMINGS, Item
+from service.engine.items import (
+    _EPS,
+    LAST_SURVIVOR,
+    MAX_FREQUENCY,
+    START_REQUIREMENTS,
+    TIMINGS,
+    Item,
+)
 
 
 def _multiple_of(value: float, m: int) -> bool:
@@ -65,9 +72,10 @@ def _check_item(item: Item) -> dict[str, list[str]]:
                 errors[name] = [_not_whole_periods(v, m, least=int(name == "term"))]
     if item.start_requires not in START_REQUIREMENTS:
         errors["start_requires"] = [f"must be one of {', '.join(START_REQUIREMENTS)}"]
-    for k, amount in enumerate(item.survivorship):
-        if not (math.isfinite(amount) and 0 <= amount <= 1):
-            errors[f"survivorship.{k}"] = ["amounts must lie between 0 and 1"]
+    if item.survivorship != LAST_SURVIVOR:  # (the usual amounts are valid)
+        for k, amount in enumerate(item.survivorship):
+            if not (math.isfinite(amount) and 0 <= amount <= 1):
+                errors[f"survivorship.{k}"] = ["amounts must lie between 0 and 1"]
     for n, life in enumerate(lives):
         if not math.isfinite(life.age + life.age_adjustment):
             errors[f"lives.{n}.age"] = ["must be a finite age"]

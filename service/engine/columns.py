@@ -74,6 +74,7 @@ from service.engine.integrals import phi
 from service.engine.items import (
     EXACT_SUM,
     INTEGRAL,
+    LAST_SURVIVOR,
     MAX_FREQUENCY,
     START_REQUIREMENTS,
     Item,
@@ -665,7 +666,8 @@ def _plain(item, exact: bool) -> bool:
             and (item.lives[0].duration is None or type(item.lives[0].duration) is int)
             and type(item.lives[0].table) is int
             and item.start_requires in START_REQUIREMENTS
-            and all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship))
+            and (item.survivorship == LAST_SURVIVOR  # (the usual amounts: no loop)
+                 or all(math.isfinite(a) and 0 <= a <= 1 for a in item.survivorship)))
 
 
 def _small_covered(valuation: Valuation, size: int) -> bool:
