@@ -115,7 +115,13 @@ def _finite(values, path: str):
 
 
 def _finite_items(values, places):
-    """Refuse a batch whose value for some item is not finite, naming the first such item."""
+    """Refuse a batch whose value for some item is not finite, naming the first such item
+    (``values``: an array, or a list of floats)."""
+    if type(values) is list:
+        if not all(map(math.isfinite, values)):
+            first = next(n for n, v in enumerate(values) if not math.isfinite(v))
+            _finite(values[first], f"items.{places[first]}")
+        return
     if len(values) <= _FEW and all(map(math.isfinite, values.tolist())):
         return  # (a few values: checked as floats faster than as an array)
     bad = np.flatnonzero(~np.isfinite(values))
@@ -895,7 +901,7 @@ def annuity_factors():
         return value_annuities(req.tables, engine, valuation, max_work=req.limit,
                                deadline=req.deadline,
                                measure=asked_now if any(asked_now) else None,
-                               key_rates=key_rates > 0)
+                               key_rates=key_rates > 0, listed=True)
 
     valued = _value_batch(req, value)
     if valued is None:
@@ -903,8 +909,8 @@ def annuity_factors():
     _finite_items(valued.value, req.places)
     count_factors(req.basis.ref, "factor", len(req.engine))
     results = [_with_id(item, {"value": v, "method": valued.methods[code]}, req.basis)
-               for item, v, code in zip(req.items, valued.value.tolist(),
-                                        valued.method_code.tolist(), strict=True)]
+               for item, v, code in zip(req.items, valued.value, valued.method_code,
+                                        strict=True)]
     if valued.measures is not None:
         _add_measures(results, [item["measures"] for item in req.items], valued.measures,
                       valuation.curve.factors())

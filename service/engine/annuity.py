@@ -77,11 +77,12 @@ class Values:
     """Present values of a batch and how each was computed.
 
     ``method_code[n]`` indexes ``methods`` (see :func:`methods`): the one decision that
-    valued item n, so the audit trail cannot say otherwise.
+    valued item n, so the audit trail cannot say otherwise. Both are arrays, or lists of
+    floats and ints where the caller asked for lists (``value_annuities(listed=True)``).
     """
 
-    value: np.ndarray
-    method_code: np.ndarray
+    value: np.ndarray | list
+    method_code: np.ndarray | list
     methods: tuple[dict, ...]
     measures: Measures | None = None  # for the items asked for (indexed like the batch)
 
@@ -104,7 +105,8 @@ _COLUMNS = None
 
 def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None = None,
                     deadline: float | None = None, measure=None,
-                    key_rates: bool = False, fast: bool = True) -> Values:
+                    key_rates: bool = False, fast: bool = True,
+                    listed: bool = False) -> Values:
     """Return the present value of 1 p.a. for each item, and the method that valued it.
 
     Parameters
@@ -124,6 +126,8 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
         Gauss-Legendre rule (method ``INTEGRAL_BY_RULE``).
     fast : value the items :mod:`service.engine.columns` covers there (the same values to
         rounding, on shared chains); False values every item here.
+    listed : give ``value`` and ``method_code`` as lists (for a caller that reads them one
+        by one): a few items are then valued without building an array.
 
     Raises
     ------
@@ -136,9 +140,10 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
     """
     if fast:
         done = _columns().dispatch(tables, items, valuation, max_work=max_work,
-                                deadline=deadline, measure=measure, key_rates=key_rates)
+                                   deadline=deadline, measure=measure, key_rates=key_rates,
+                                   listed=listed)
         if done is not None:
-            return done
+            return _as_lists(done) if listed else done
     if not isinstance(items, list | tuple):
         items = list(items)  # (a batch held as columns: its items, built)
     batch = _prepare(tables, items, valuation)
@@ -168,7 +173,15 @@ def value_annuities(tables, items, valuation: Valuation, *, max_work: int | None
                             deadline).measures()
         values[together] = measures.value[together]
         code[together] = np.where(batch.continuous[together], INTEGRAL_BY_RULE, EXACT_SUM)
-    return Values(values, code, methods(valuation), measures)
+    done = Values(values, code, methods(valuation), measures)
+    return _as_lists(done) if listed else done
+
+
+def _as_lists(done: Values) -> Values:
+    """``done`` with its values and method codes as lists."""
+    if type(done.value) is list:
+        return done
+    return Values(done.value.tolist(), done.method_code.tolist(), done.methods, done.measures)
 
 
 def annuity_measures(tables, items, valuation: Valuation, *, key_rates: bool = True,

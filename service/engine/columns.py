@@ -558,9 +558,11 @@ def _as_columns(columns) -> Columns:
 
 
 def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure,
-             key_rates) -> Values | None:
+             key_rates, listed: bool = False) -> Values | None:
     """Value ``items`` with the covered ones here and the others by the general path, or
     return None where nothing is covered (the caller then values them all itself).
+    ``listed``: a few items valued in floats are given as lists (else as arrays; any other
+    batch is given as arrays either way).
 
     Errors are the general path's: on any problem the whole batch is prepared by it, which
     raises the same ItemError as without this module.
@@ -575,8 +577,10 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
         if all(row is not None and row[6] != CONTINUOUS for row in rows):  # (discrete)
             values = _value_small(tables, rows, items, valuation, max_work, deadline,
                                   lambda: _found(tables, items, valuation))
-            return Values(np.array(values), np.array([EXACT_SUM] * len(items), dtype=np.int8),
-                          methods(valuation))
+            codes = [EXACT_SUM] * len(items)
+            if listed:
+                return Values(values, codes, methods(valuation))
+            return Values(np.array(values), np.array(codes, dtype=np.int8), methods(valuation))
     from service.engine import joint_columns  # (it builds on this module)
 
     rows, which = [], []
