@@ -58,12 +58,7 @@ def _read_body(http=None) -> bytes:
     if http is None:
         http = request._get_current_object()
     environ = http.environ
-    text = environ.get("CONTENT_LENGTH")
-    if text is not None and text.isdigit() and text.isascii() \
-            and "HTTP_TRANSFER_ENCODING" not in environ:
-        length = int(text)  # (a plain length, read as werkzeug reads it)
-    else:
-        length = get_content_length(environ)  # (request.content_length, from the environ)
+    length = content_length(environ)
     limit = http.max_content_length
     if length is not None:
         # As request.get_data() reads it, without its stream wrapper: 413 over the limit
@@ -82,6 +77,16 @@ def _read_body(http=None) -> bytes:
     if limit is not None and len(raw) >= limit and environ["wsgi.input"].read(1):
         raise RequestEntityTooLarge()
     return raw
+
+
+def content_length(environ) -> int | None:
+    """``werkzeug.wsgi.get_content_length(environ)`` (what ``request.content_length`` reads):
+    a header of plain ASCII digits, with no Transfer-Encoding, is read directly."""
+    text = environ.get("CONTENT_LENGTH")
+    if text is not None and text.isdigit() and text.isascii() \
+            and "HTTP_TRANSFER_ENCODING" not in environ:
+        return int(text)
+    return get_content_length(environ)
 
 
 class _Oversized(Exception):

@@ -15,6 +15,7 @@ import hashlib
 import io
 import json
 import logging
+import math
 
 import pytest
 
@@ -584,3 +585,101 @@ def test_a_plain_schedule_body_is_loaded_fast():
     body = copy.deepcopy(SCHEDULE_BODIES[1])
     assert loader is not None
     assert loader.load(body) == views._schedule_request.load(copy.deepcopy(body))
+
+
+@pytest.mark.parametrize("length", ["0", "107", "4194304", "007", " 12", "12 ", "+12", "-3",
+                                    "1_000", "1.5", "", "abc", "\u0661\u0662", "\u00b2",
+                                    "99999999999999999999"])
+@pytest.mark.parametrize("encoding", [None, "chunked", "gzip", "gzip, chunked"])
+def test_the_content_length_is_read_as_werkzeug_reads_it(length, encoding):
+    # werkzeug.wsgi.get_content_length is the definition; a run of ASCII digits is read
+    # directly, everything else by werkzeug itself.
+    from werkzeug.wsgi import get_content_length
+
+    from service.api.body import content_length
+
+    environ = {"CONTENT_LENGTH": length}
+    if encoding is not None:
+        environ["HTTP_TRANSFER_ENCODING"] = encoding
+    assert content_length(environ) == get_content_length(environ)
+    assert content_length({}) is None
+
+
+def test_the_request_state_holds_the_request_and_the_app_however_it_is_made(app, client):
+    from flask import current_app, request, request_finished
+
+    with app.test_request_context("/v1/annuity-factors", method="POST"):
+        state = current()  # made on first use (no before_request ran)
+        assert state.http is request._get_current_object()
+        assert state.app is current_app._get_current_object()
+        assert current() is state
+    seen = []
+
+    def _look(sender, response, **extra):
+        state = current()
+        seen.append((state.http is request._get_current_object(),
+                     state.app is current_app._get_current_object()))
+
+    with request_finished.connected_to(_look, app):
+        assert client.get("/livez").status_code == 200
+    assert seen == [(True, True)]
+
+
+def test_each_plain_function_s_sync_check_is_made_once_and_agrees_with_flask_s(app):
+    from flask import Flask
+
+    def plain():
+        return "plain"
+
+    async def coroutine():
+        return "coroutine"
+
+    assert app.ensure_sync(plain) is plain
+    assert app.ensure_sync(plain) is plain
+    # A coroutine function gets what Flask gives it (a wrapper, or Flask's own error when
+    # the async extra is not installed), each time.
+    for _ in range(2):
+        try:
+            expected = Flask.ensure_sync(app, coroutine)
+        except RuntimeError as exc:
+            with pytest.raises(RuntimeError, match=str(exc)[:40]):
+                app.ensure_sync(coroutine)
+        else:
+            assert app.ensure_sync(coroutine) is not coroutine
+            assert expected is not coroutine
+    bound = _Holder().method
+    assert app.ensure_sync(bound) == bound  # (a bound method is made anew: not kept)
+
+
+class _Holder:
+    def method(self):
+        return None
+
+
+def test_a_valuation_is_made_once_per_interest_structure_and_methods():
+    curve = Curve.flat(0.0375)
+    same = views._valuation_of(curve, "udd", "exact")
+    assert views._valuation_of(curve, "udd", "exact") is same
+    assert (same.interest, same.fractional_age, same.approximation) == (curve, "udd", "exact")
+    assert same.curve is curve
+    other = views._valuation_of(curve, "constant-force", "exact")
+    assert other is not same and other.fractional_age == "constant-force"
+    twin = Curve.flat(0.0375)  # an equal structure, another object: its own entry
+    assert views._valuation_of(twin, "udd", "exact").interest is twin
+
+
+def test_values_given_as_a_list_are_checked_as_an_array_is(app):
+    import numpy as np
+
+    for size in (1, 3, views._FEW + 2):
+        for bad in {0, size - 1}:
+            values = [1.0] * size
+            values[bad] = math.inf
+            places = list(range(7, 7 + size))
+            problems = []
+            for given in (values, np.array(values)):
+                with app.test_request_context(), pytest.raises(ProblemError) as exc:
+                    views._finite_items(given, places)
+                problems.append(exc.value.errors)
+            assert problems[0] == problems[1] == {f"items.{7 + bad}": ["The value is not finite."]}
+        views._finite_items([1.0] * size, list(range(size)))

@@ -187,3 +187,25 @@ def test_whole_years_from_the_column_agree_with_the_sum_term_by_term():
                     got = small._whole_years(column, column.life, base, lo, hi, lw, 0.4, 0.6)
                     want = small._whole_years(None, column.life, base, lo, hi, lw, 0.4, 0.6)
                     assert got == pytest.approx(want, rel=1e-12, abs=0)
+
+
+def test_values_given_as_lists_are_the_arrays_values(bases):
+    # value_annuities(listed=True) gives value and method_code as lists: the same numbers
+    # as the arrays (tolist) on each path, a few items in floats, a batch on columns, a
+    # curve on the general path.
+    from service.engine.curves import Curve
+
+    rng = np.random.default_rng(4177)
+    basis = bases[0]
+    flat = Valuation(0.035)
+    curve = Curve.from_mapping({"kind": "spot", "terms": [1.0, 10.0], "rates": [0.02, 0.04]})
+    for valuation in (flat, Valuation(curve)):
+        items = _valid(basis.tables, _random_items(rng, basis.tables, 40), valuation)
+        for batch in (items[:1], items[:small.SMALL_BATCH], items):
+            arrays = value_annuities(basis.tables, batch, valuation)
+            lists = value_annuities(basis.tables, batch, valuation, listed=True)
+            assert type(lists.value) is list and type(lists.method_code) is list
+            assert lists.value == arrays.value.tolist()
+            assert lists.method_code == arrays.method_code.tolist()
+            assert lists.methods == arrays.methods
+            assert lists.method(0) == arrays.method(0)
