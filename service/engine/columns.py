@@ -822,7 +822,7 @@ def _value_chunk(tables, cols, idx, ages, anchor, dkey, growth, m, delta, assump
         return values
     ka, ia, ib = win.ka, win.ia, win.ib
     kb = np.where(live, np.minimum(win.kb, width - 1), 0)
-    ctx = _Slots(m, mf, win.dm, rho, kappa, phi_, slots, delta)
+    ctx = _Slots.of(m, mf, win.dm, rho, kappa, phi_, slots, delta)
     life = np.zeros(size)
     if assumption == "udd":
         cum2 = np.concatenate([cum, np.zeros((rep.size, 1))], axis=1)  # C up to width + 1
@@ -937,7 +937,8 @@ def _guarantee(win: _Windows, m, growth, delta, alive):
 
 @dataclass(frozen=True, eq=False)
 class _Slots:
-    """Per-item slot data: sums of c_i (1 - s_i) and c_i s_i over slot ranges."""
+    """Per-item slot data: sums of c_i (1 - s_i) and c_i s_i over slot ranges. Made by
+    :meth:`of`, which works out once what every range needs."""
 
     m: np.ndarray
     mf: np.ndarray
@@ -947,23 +948,28 @@ class _Slots:
     phi: np.ndarray
     tables: tuple
     delta: float
+    base: np.ndarray  # each item's offset of its frequency in the slot tables
+    snapped: bool  # whether any phi < 0 (an age snapped up: its first slot clipped)
+
+    @classmethod
+    def of(cls, m, mf, dm, rho, kappa, phi, tables, delta) -> "_Slots":
+        return cls(m, mf, dm, rho, kappa, phi, tables, delta, _offsets(m, tables[0]),
+                   bool((phi < 0).any()))
 
     def weights(self, lo, hi):
         """(A, B): sums of c_i (1 - s_i) and c_i s_i for slots lo <= i < hi."""
-        offset, p0, p1 = self.tables
-        base = _offsets(self.m, offset)
+        _, p0, p1 = self.tables
+        base, dm = self.base, self.dm
         lo_ = np.minimum(lo, hi)
-        lo_in, hi_in = np.minimum(lo_, self.dm), np.minimum(hi, self.dm)
-        lo_out, hi_out = np.maximum(lo_, self.dm), np.maximum(hi, self.dm)
-        s0 = (self.rho * (p0[base + hi_in] - p0[base + lo_in])
-              + (p0[base + hi_out] - p0[base + lo_out]))
-        s1 = (self.rho * (p1[base + hi_in] - p1[base + lo_in])
-              + (p1[base + hi_out] - p1[base + lo_out]))
+        lo_in, hi_in = base + np.minimum(lo_, dm), base + np.minimum(hi, dm)
+        lo_out, hi_out = base + np.maximum(lo_, dm), base + np.maximum(hi, dm)
+        s0 = self.rho * (p0[hi_in] - p0[lo_in]) + (p0[hi_out] - p0[lo_out])
+        s1 = self.rho * (p1[hi_in] - p1[lo_in]) + (p1[hi_out] - p1[lo_out])
         b = self.kappa * (self.phi * s0 + s1) / self.mf
         a = self.kappa * ((self.mf - self.phi) * s0 - s1) / self.mf
         # The first slot's fraction is clipped to 0 where phi < 0 (an age snapped up).
-        clipped = (lo_ == 0) & (hi > 0) & (self.phi < 0)
-        if clipped.any():
+        clipped = (lo_ == 0) & (hi > 0) & (self.phi < 0) if self.snapped else None
+        if clipped is not None and clipped.any():
             c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
             shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
             a, b = a - shift, b + shift

@@ -51,10 +51,14 @@ def value(tables, cols, ages, anchor, dkey, growth, m, delta, slots, deadline):
         _c._on_time(deadline)
         part = slice(start, min(start + _c._CHUNK_ITEMS, n))
         keys = (t[part], mult[part], extra[part], growth[part])
-        order = np.lexsort(keys[::-1])
+        # Grouped by the keys' bits (sorting integers is quicker than sorting floats; equal
+        # bits are equal values, and the one pair of equal values with other bits, 0.0 and
+        # -0.0, only makes two keys with the same columns).
+        bits = tuple(_bits(column) for column in keys)
+        order = np.lexsort(bits[::-1])
         new = np.zeros(order.size, dtype=bool)
         new[0] = True
-        for column in keys:
+        for column in bits:
             ordered = column[order]
             new[1:] |= ordered[1:] != ordered[:-1]
         key = np.empty(order.size, dtype=np.intp)
@@ -66,6 +70,13 @@ def value(tables, cols, ages, anchor, dkey, growth, m, delta, slots, deadline):
             tables, cols, part, shared, key, ages[part], anchor[part], dkey[part],
             growth[part], m[part], delta, slots)
     return values, done
+
+
+def _bits(column: np.ndarray) -> np.ndarray:
+    """A float column's values as the integers of their bits (others as they are)."""
+    if column.dtype == np.float64:
+        return np.ascontiguousarray(column).view(np.int64)
+    return column
 
 
 #: Key columns kept (``_shared``), and how many sets of keys.
@@ -186,7 +197,7 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
     ka, ia, ib = win.ka, win.ia, win.ib
     kb = np.where(live, np.minimum(win.kb, width - 1), 0)
     lw = win.lw
-    ctx = _c._Slots(m, win.mf, win.dm, win.rho, win.kappa, win.phi, slots, delta)
+    ctx = _c._Slots.of(m, win.mf, win.dm, win.rho, win.kappa, win.phi, slots, delta)
     one = np.zeros(size, dtype=np.int64)
     a1, b1 = ctx.weights(ia, np.where(kb == ka, ib + 1, m))
     life = np.exp(ka * lw) * (a1 * chain(ka) + b1 * chain(ka + 1))
