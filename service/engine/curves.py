@@ -127,6 +127,26 @@ _FIELDS = {"flat": ("rate",), "spot": ("terms", "rates"), "segments": ("edges", 
            "forward": ("edges", "rates")}
 
 
+
+def owner_sums(owner: np.ndarray, size: int, *weights: np.ndarray) -> list[np.ndarray]:
+    """``np.bincount(owner, w, minlength=size)`` (as floats) for each ``w`` in ``weights``.
+
+    Where ``owner`` is sorted (payments listed owner by owner, as the engine lists them),
+    each owner's run of weights is summed by ``np.add.reduceat``: a contiguous sum, several
+    times quicker than bincount's scattered one (the sums agree to rounding).
+    """
+    if owner.size and bool((owner[1:] >= owner[:-1]).all()):
+        starts = np.flatnonzero(np.concatenate(([True], owner[1:] != owner[:-1])))
+        at = owner[starts]
+        out = []
+        for w in weights:
+            sums = np.zeros(size)
+            sums[at] = np.add.reduceat(w, starts)
+            out.append(sums)
+        return out
+    return [np.bincount(owner, w, minlength=size).astype(float, copy=False) for w in weights]
+
+
 class CurveError(EngineError):
     """An interest structure is malformed.
 
@@ -567,11 +587,8 @@ class Curve:
         owner = np.asarray(owner, dtype=np.intp)
         t = np.asarray(time, dtype=float)
         pv = np.asarray(present_value, dtype=float)
-        value = np.bincount(owner, pv, minlength=size).astype(float, copy=False)
         pvt = pv * t
-        first = np.bincount(owner, pvt, minlength=size).astype(float, copy=False)
-        pvt *= t
-        second = np.bincount(owner, pvt, minlength=size).astype(float, copy=False)
+        value, first, second = owner_sums(owner, size, pv, pvt, pvt * t)
         if not key_rates:
             key = None
         elif self.kind == "flat":  # one factor, whose exposure is t: the first moment

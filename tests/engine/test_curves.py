@@ -636,3 +636,29 @@ class TestProperties:
 
 
 
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 40), st.floats(-1e3, 1e3)), max_size=300),
+       st.integers(0, 5), st.booleans())
+def test_sums_by_owner_are_bincount_s(pairs, spare, in_order):
+    # np.bincount is the definition; owners listed in order are summed by runs (to
+    # rounding: a sum of n terms within n eps of the sum of their magnitudes), others by
+    # bincount itself (exactly).
+    from service.engine.curves import owner_sums
+
+    if in_order:
+        pairs = sorted(pairs, key=lambda pair: pair[0])
+    owner = np.array([o for o, _ in pairs], dtype=np.intp)
+    w1 = np.array([w for _, w in pairs], dtype=float)
+    w2 = w1 * 0.5 - 3.0
+    size = int(owner.max(initial=-1)) + 1 + spare
+    got = owner_sums(owner, size, w1, w2)
+    for w, sums in zip((w1, w2), got, strict=True):
+        want = np.bincount(owner, w, minlength=size).astype(float)
+        assert sums.dtype == float and sums.shape == (size,)
+        scale = np.bincount(owner, np.abs(w), minlength=size)
+        assert np.all(np.abs(sums - want) <= 1e-15 * max(len(pairs), 1) * scale)
+    if len(owner) > 1 and not np.all(owner[1:] >= owner[:-1]):
+        for w, sums in zip((w1, w2), got, strict=True):
+            assert np.array_equal(sums, np.bincount(owner, w, minlength=size).astype(float))
