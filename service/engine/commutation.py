@@ -107,6 +107,12 @@ class _Shared:
         self.first, self.last, self.q, self.life, self.lw = first, last, q, life, lw
         self.pd, self.sd, self.pe, self.se, self.ok = pd, sd, pe, se, ok
         self.width = life.shape[1] - 1
+        # Element (key, i) of a column of n entries a key is element key * n + i of its flat
+        # view: one gather from that is much quicker than a two-index gather. (q has width
+        # entries a key, life width + 1 and the sums width + 2.)
+        self.flat = {name: getattr(self, name).reshape(-1)
+                     for name in ("q", "life", "pd", "sd", "pe", "se")}
+        self.sums_width = pd.shape[1]
 
     @classmethod
     def build(cls, tables, t, mult, extra, lw):
@@ -163,22 +169,29 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
         sq = np.zeros((size, 0))
         csel = np.ones((size, 1))
     rows = np.arange(size)
-    at_s = sh.life[key, np.minimum(base + s, sh.width)]
+    wide = key * (sh.width + 1)  # where each item's key row starts in the flat lives
+    narrow = key * sh.width  # the same in the flat rates
+    life_flat, q_flat = sh.flat["life"], sh.flat["q"]
+    at_s = life_flat[wide + np.minimum(base + s, sh.width)]
     ok = sh.ok[key] & (at_s > 0)
     scale = np.where(ok, csel[rows, s] / np.where(ok, at_s, 1.0), 0.0)
 
+    csel_flat = csel.reshape(-1)
+    csel_rows = rows * (top + 1)
+
     def chain(kk):
         """C_k of each item at its k (arrays)."""
-        ult = sh.life[key, np.minimum(base + np.maximum(kk, s), sh.width)]
-        return np.where(kk < s, csel[rows, np.minimum(kk, top)], scale * ult)
+        ult = life_flat[wide + np.minimum(base + np.maximum(kk, s), sh.width)]
+        return np.where(kk < s, csel_flat[csel_rows + np.minimum(kk, top)], scale * ult)
 
     def rate(kk):
         """q_k of each item at its k."""
+        ultimate = q_flat[narrow + np.minimum(base + kk, sh.width - 1)]
         if top:
             inside = kk < s
-            sel = sq[rows, _c._between(kk, 0, top - 1)]
-            return np.where(inside, sel, sh.q[key, np.minimum(base + kk, sh.width - 1)])
-        return sh.q[key, np.minimum(base + kk, sh.width - 1)]
+            sel = sq.reshape(-1)[rows * top + _c._between(kk, 0, top - 1)]
+            return np.where(inside, sel, ultimate)
+        return ultimate
 
     width = last - anchor + 3  # C_k = 0 from k = last - anchor + 1
     start = 1.0 - np.maximum(ages - anchor, 0.0) * rate(np.zeros(size, dtype=np.int64))
@@ -231,13 +244,16 @@ def _whole_years(sh: _Shared, key, base, s, top, lw, ka, kb, af, bf, mid, chain,
     ult = mid & (hi > lo)
     if not ult.any():
         return out
-    i0, i1 = np.where(ult, base + lo, 0), np.where(ult, base + hi, 0)
-    pd, sd, pe, se = sh.pd, sh.sd, sh.pe, sh.se
-    pre0, pre1 = pd[key, i0], pe[key, i0]
-    suf0, suf1 = sd[key, i1], se[key, i1]
+    row = key * sh.sums_width  # where each item's key row starts in the flat sums
+    i0 = row + np.where(ult, base + lo, 0)
+    i1 = row + np.where(ult, base + hi, 0)
+    flat = sh.flat
+    pd, sd, pe, se = flat["pd"], flat["sd"], flat["pe"], flat["se"]
+    pre0, pre1 = pd[i0], pe[i0]
+    suf0, suf1 = sd[i1], se[i1]
     by_prefix = (pre0 * af + pre1 * bf) <= (suf0 * af + suf1 * bf)
-    m0 = np.where(by_prefix, pd[key, i1] - pre0, sd[key, i0] - suf0)
-    m1 = np.where(by_prefix, pe[key, i1] - pre1, se[key, i0] - suf1)
+    m0 = np.where(by_prefix, pd[i1] - pre0, sd[i0] - suf0)
+    m1 = np.where(by_prefix, pe[i1] - pre1, se[i0] - suf1)
     value = af * m0 + bf * m1
     taken = np.where(by_prefix, pre0 * af + pre1 * bf, suf0 * af + suf1 * bf)
     factor = scale * np.exp(-base * lw)  # Csel_s / (L(a + s) w^b): the key's sums to the chain's
