@@ -2,8 +2,9 @@
 
 For each kind of item, the largest batch the service accepts is built: one item repeated, at
 most MAX_ITEMS (10,000) items and at most MAX_EVALUATION_POINTS (20,000,000) work units, sized
-with the engine's own pricing (``service.engine.batch._work``, which ``value_annuities``
-checks with ``max_work`` before valuing anything). Then ``value_annuities`` (with every
+with the work ``value_annuities`` itself charges (its ``max_work`` check, made before anything
+is valued: on the column paths what an item costs there, on the general path
+``service.engine.batch._work``). Then ``value_annuities`` (with every
 measure in the same call for items with measures, as the API asks) is timed, the median of
 a few repeats, and its peak memory is measured once with tracemalloc (numpy's buffers
 included). Each kind reports seconds, peak MiB and seconds per million work units.
@@ -53,6 +54,7 @@ from service.engine.annuity import (  # noqa: E402
 )
 from service.engine.batch import _SEGMENT_COST, _measure_work, _prepare, _work  # noqa: E402
 from service.engine.curves import Curve  # noqa: E402
+from service.engine.errors import WorkLimitError  # noqa: E402
 
 #: Production: deploy/k8s/deployment.yaml (WEB_CONCURRENCY 4, ANNUITY_VALUATIONS_PER_WORKER 3,
 #: a CPU limit of 2 and a memory limit of 2Gi for the service container).
@@ -66,7 +68,8 @@ BUSY_FACTOR = CONCURRENT / CPUS
 #: The basis: the Illustrative Life Table runs from age 13, the longest windows shipped.
 BASIS = "illustrative"
 YOUNG = 13.0
-#: A kind costing more than this many times the typical cost per unit is mispriced.
+#: A kind costing more than this many times a reference unit's cost per unit charged is
+#: priced too low.
 PRICE_YARDSTICK = 2.0
 
 
@@ -146,6 +149,9 @@ class Result:
     measures_seconds: float
     peak_mib: float
     times: list[float] = field(default_factory=list)
+    #: What the general path would charge for the same items (it prices weighted segments
+    #: and dates; ``work`` is what the engine charged, on whichever path values them).
+    general_work: int = 0
 
     @property
     def seconds(self) -> float:
@@ -161,8 +167,26 @@ def _valuation(kind: Kind, basis) -> Valuation:
     return Valuation(interest, kind.fractional_age, kind.approximation)
 
 
+def _options(kind: Kind, size: int) -> dict:
+    """What the API asks of ``value_annuities`` for ``size`` items of ``kind``."""
+    return {"measure": [True] * size, "key_rates": True} if kind.measures else {}
+
+
 def _priced(kind: Kind, tables, items, valuation: Valuation) -> int:
-    """The work the engine charges for ``items`` (with their measures for such kinds)."""
+    """The work ``value_annuities`` charges for ``items`` (with their measures for such
+    kinds): its own check, made before anything is valued, asked with a cap of 0 units. On
+    the column paths an item is charged what it costs there (a single-life item under UDD
+    at a flat rate one unit, whatever its term); on the general path every payment date
+    or weighted segment (``batch._work``, ``_measure_work``)."""
+    try:
+        value_annuities(tables, items, valuation, max_work=0, **_options(kind, len(items)))
+    except WorkLimitError as exc:
+        return exc.work
+    raise AssertionError(f"{kind.name}: no work charged")
+
+
+def _general_priced(kind: Kind, tables, items, valuation: Valuation) -> int:
+    """The work the general path prices ``items`` at (what ``_SEGMENT_COST`` weighs)."""
     batch = _prepare(tables, items, valuation)
     if kind.measures and valuation.approximation == "exact":
         return int(_measure_work(batch, valuation.curve).sum())
@@ -171,9 +195,16 @@ def _priced(kind: Kind, tables, items, valuation: Valuation) -> int:
     return int(_work(batch, valuation.curve).sum())
 
 
+#: Items in the batch from which a kind's charge per item is read (a batch of a few items is
+#: valued in plain floats and charged one unit an item; a large one as columns or on the
+#: general path, as the largest batch will be).
+_PROBE = 1_000
+
+
 def largest_batch(kind: Kind, tables, valuation: Valuation, max_items: int, max_work: int):
     """Return (items, work, bound): the largest accepted batch of ``kind.item`` repeated."""
-    unit = _priced(kind, tables, [kind.item], valuation)
+    probe = min(max_items, _PROBE)
+    unit = -(-_priced(kind, tables, [kind.item] * probe, valuation) // probe)
     n = max(1, min(max_items, max_work // unit))
     items = [kind.item] * n
     work = _priced(kind, tables, items, valuation)
@@ -188,7 +219,7 @@ def measure(kind: Kind, basis, max_items: int, max_work: int, repeats: int) -> R
     valuation = _valuation(kind, basis)
     items, work, bound = largest_batch(kind, tables, valuation, max_items, max_work)
     # As the API asks: values, and for kinds with measures every measure, in one call.
-    options = {"measure": [True] * len(items), "key_rates": True} if kind.measures else {}
+    options = _options(kind, len(items))
 
     def value():
         value_annuities(tables, items, valuation, max_work=max_work, **options)
@@ -203,8 +234,22 @@ def measure(kind: Kind, basis, max_items: int, max_work: int, repeats: int) -> R
     finally:
         tracemalloc.stop()
     totals = [v + m for v, m in zip(value_times, measure_times or [0.0] * repeats, strict=True)]
+    general_work = _general_priced(kind, tables, items, valuation)
     return Result(kind, len(items), work, bound, median(value_times),
-                  median(measure_times) if measure_times else 0.0, peak / MIB, totals)
+                  median(measure_times) if measure_times else 0.0, peak / MIB, totals,
+                  general_work)
+
+
+def general_date_cost(kind: Kind, basis, max_items: int, max_work: int, repeats: int) -> float:
+    """Seconds per million units of ``kind``'s largest batch valued on the general path
+    (``fast=False``), priced as the general path prices it: what one payment date costs
+    there, the unit ``_SEGMENT_COST`` weighs segments against."""
+    tables = basis.tables
+    valuation = _valuation(kind, basis)
+    items, _, _ = largest_batch(kind, tables, valuation, max_items, max_work)
+    seconds = median([timed(lambda: value_annuities(tables, items, valuation, fast=False))
+                      for _ in range(repeats)])
+    return seconds / (_general_priced(kind, tables, items, valuation) / 1e6)
 
 
 def worker_baseline_mib() -> float:
@@ -266,8 +311,8 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
                    f"busy", r.seconds, "s", floor=budget, target=1.0)
         m = Figure(f"costly: {name}: peak MiB / memory per valuation with every worker busy",
                    r.peak_mib, "MiB", floor=memory_budget, target=1.0)
-        u = Figure(f"costly: {name}: seconds per million work units / a payment date's",
-                   r.per_million, "s per million units", floor=unit_cost,
+        u = Figure(f"costly: {name}: seconds per million work units charged / a reference "
+                   f"unit's", r.per_million, "s per million units", floor=unit_cost,
                    target=PRICE_YARDSTICK)
         figures += [t, m, u]
         rows.append([name, f"{r.items:,}", f"{r.work / 1e6:.2f}M ({r.bound})",
@@ -293,13 +338,20 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
                           value_cap if math.isfinite(value_cap) else float(max_work),
                           "work units", floor=max_work, target=None))
 
+    # The segment weights price the general path: kinds it values (charged as it prices
+    # them) against what a payment date costs there.
+    general = [r for r in results if r.kind.weight and not r.kind.measures and not r.kind.spot
+               and r.work == r.general_work]
     weights = []
-    for r in results:
-        if r.kind.weight and not r.kind.measures and not r.kind.spot:
+    if general:
+        reference = next(k for k in KINDS if k.reference)
+        date_cost = general_date_cost(reference, registry.resolve(reference.basis),
+                                      max_items, max_work, repeats)
+        for r in general:
             current = _SEGMENT_COST[r.kind.weight]
-            implied = current * r.per_million / unit_cost
+            implied = current * r.per_million / date_cost
             weights.append([r.kind.name, f"{r.kind.weight}", f"{current}",
-                            f"{r.per_million / unit_cost:.2f}", f"{implied:.1f}"])
+                            f"{r.per_million / date_cost:.2f}", f"{implied:.1f}"])
 
     def cap_text(cap, who):
         if math.isfinite(cap):
@@ -322,13 +374,18 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
         "request's JSON is extra); the budget per valuation is the container's "
         f"{MEMORY_LIMIT_MIB} MiB less {WORKERS} workers of {baseline:.0f} MiB resident (this "
         f"process after loading the bases), shared by {CONCURRENT} valuations: "
-        f"{memory_budget:.0f} MiB. Per unit: seconds per million work units, and that over "
-        f"the median of the single-life discrete kinds at a flat rate ({unit_cost:.3f} s, "
-        "what a unit, one payment date, costs).",
+        f"{memory_budget:.0f} MiB. Work: the units `value_annuities` charges (its own "
+        "check, asked with a cap of 0): on the column paths what an item costs there (a "
+        "single-life item under UDD at a flat rate one unit, whatever its term), on the "
+        "general path every payment date or weighted segment. Per unit: seconds per million "
+        "units charged, and that over the median of the single-life discrete kinds at a flat "
+        f"rate ({unit_cost:.3f} s, what a reference unit costs): above {PRICE_YARDSTICK:g} a "
+        "kind would be charged too little for what it costs.",
         "",
         *table(["kind", "items", "work", "value (s)", "measures (s)", "alone (s)",
                 f"busy (s, x{BUSY_FACTOR:g})", f"within {deadline:g} s", "peak MiB",
-                f"within {memory_budget:.0f} MiB", "s per M units", "/ a date's"], rows),
+                f"within {memory_budget:.0f} MiB", "s per M units", "/ a reference unit's"],
+               rows),
         "",
         f"Worst accepted request: {worst.kind.name}, {worst.seconds:.2f} s alone, about "
         f"{worst.seconds * BUSY_FACTOR:.0f} s with every worker busy against the "
@@ -343,8 +400,9 @@ def run(repeats: int = 3, only: list[str] | None = None) -> Section:
         f"{cap_text(value_cap, value_cap_kind)}. The cap is {max_work / 1e6:g} million.",
     ]
     if weights:
-        lines += ["", "Continuous segment weights (`_SEGMENT_COST`) against what a segment "
-                      "costs here at a flat rate, value only:", "",
+        lines += ["", "Continuous segment weights (`_SEGMENT_COST`) of the kinds the general "
+                      "path values, against what a payment date costs there (the first "
+                      "reference kind valued with `fast=False`), value only:", "",
                   *table(["kind", "weight key", "weight", "cost per unit / a date's",
                           "weight that would price it"], weights)]
     return Section("Costly requests (issue 8)", lines, figures)
@@ -358,7 +416,7 @@ def profile(name: str) -> None:
     valuation = _valuation(kind, basis)
     items, work, _ = largest_batch(kind, basis.tables, valuation, app.config["MAX_ITEMS"],
                                    app.config["MAX_EVALUATION_POINTS"])
-    options = {"measure": [True] * len(items), "key_rates": True} if kind.measures else {}
+    options = _options(kind, len(items))
     profiler = cProfile.Profile()
     profiler.enable()
     value_annuities(basis.tables, items, valuation, **options)
