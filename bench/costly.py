@@ -247,7 +247,8 @@ def general_date_cost(kind: Kind, basis, max_items: int, max_work: int, repeats:
     tables = basis.tables
     valuation = _valuation(kind, basis)
     items, _, _ = largest_batch(kind, tables, valuation, max_items, max_work)
-    seconds = median([timed(lambda: value_annuities(tables, items, valuation, fast=False))
+    seconds = median([timed(lambda: value_annuities(tables, items, valuation, fast=False,
+                                                    max_work=max_work))
                       for _ in range(repeats)])
     return seconds / (_general_priced(kind, tables, items, valuation) / 1e6)
 

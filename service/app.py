@@ -27,8 +27,14 @@ class ServiceApp(Flask):
             return super().ensure_sync(func)
         found = self._sync.get(func)
         if found is None:
+            if len(self._sync) >= _SYNC_KEPT:  # (functions made per request would pile up)
+                self._sync.clear()
             found = self._sync[func] = super().ensure_sync(func)
         return found
+
+
+#: Functions whose sync check is kept (the app's hooks and views are a few dozen).
+_SYNC_KEPT = 256
 
 
 def create_app(config: dict | None = None) -> Flask:

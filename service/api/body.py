@@ -81,9 +81,10 @@ def _read_body(http=None) -> bytes:
 
 def content_length(environ) -> int | None:
     """``werkzeug.wsgi.get_content_length(environ)`` (what ``request.content_length`` reads):
-    a header of plain ASCII digits, with no Transfer-Encoding, is read directly."""
+    a header of at most 18 plain ASCII digits, with no Transfer-Encoding, is read directly
+    (a longer one goes to werkzeug, which also words Python's limit on very long ones)."""
     text = environ.get("CONTENT_LENGTH")
-    if text is not None and text.isdigit() and text.isascii() \
+    if text is not None and len(text) <= 18 and text.isdigit() and text.isascii() \
             and "HTTP_TRANSFER_ENCODING" not in environ:
         return int(text)
     return get_content_length(environ)

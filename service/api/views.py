@@ -526,13 +526,16 @@ def _valuation(basis, data, state=None):
         state = current()
     use_basis(basis, curve, state)
     use_valuation_date(data.get("valuation_date"), state)
+    if data.get("interest") is not None:  # (a structure of the request's own: new each time)
+        return Valuation(curve, basis.fractional_age, basis.approximation)
     return _valuation_of(basis.interest if curve is None else curve, basis.fractional_age,
                          basis.approximation)
 
 
 #: Valuations made so far, by the id of their interest structure and their methods, with
 #: the structure itself (so that its id is not reused while it is here). A Valuation is
-#: immutable, and most requests use their basis' own or one of a few flat rates.
+#: immutable, and most requests use their basis' own or one of a few flat rates (a structure
+#: given in the request is a new object each time: its Valuation is not kept).
 _VALUATIONS: dict[tuple, tuple] = {}
 _VALUATIONS_KEPT = 1024
 

@@ -587,10 +587,10 @@ def dispatch(tables, items, valuation: Valuation, *, max_work, deadline, measure
     given = None
     if isinstance(items, ItemBatch):
         given = items
-        listed = sorted(items.others.items())
+        others = sorted(items.others.items())
     else:
-        listed = enumerate(items)
-    for n, item in listed:
+        others = enumerate(items)
+    for n, item in others:
         if _plain(item, exact):
             rows.append(_item_row(item))
             which.append(n)

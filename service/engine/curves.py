@@ -135,7 +135,8 @@ def owner_sums(owner: np.ndarray, size: int, *weights: np.ndarray) -> list[np.nd
     each owner's run of weights is summed by ``np.add.reduceat``: a contiguous sum, several
     times quicker than bincount's scattered one (the sums agree to rounding).
     """
-    if owner.size and bool((owner[1:] >= owner[:-1]).all()):
+    if owner.size and 0 <= owner[0] and owner[-1] < size \
+            and bool((owner[1:] >= owner[:-1]).all()):
         starts = np.flatnonzero(np.concatenate(([True], owner[1:] != owner[:-1])))
         at = owner[starts]
         out = []
