@@ -155,15 +155,13 @@ def _undeclared(schema: str, keys: set) -> None:
         log.error("response drift: %s (dropped)", message)
 
 
-def json_response(body, app=None) -> Response:
-    """``jsonify(body)``, byte for byte; out of debug mode (compact JSON) by an encoder kept on
-    the JSON provider for its options (``json.dumps`` with Flask's options makes one per
-    call). ``app``: the app answering, where the caller holds it."""
-    if app is None:
-        app = current_app._get_current_object()
+def compact_encoder(app) -> json.JSONEncoder | None:
+    """The encoder that writes ``jsonify``'s compact text under ``app``'s JSON options, kept on
+    its JSON provider (``json.dumps`` with Flask's options makes one per call); None where
+    jsonify indents (debug mode, or compact off)."""
     provider = app.json
     if provider.compact is False or (provider.compact is None and app.debug):
-        return jsonify(body)  # indented
+        return None
     options = (provider.default, provider.ensure_ascii, provider.sort_keys)
     kept = provider.__dict__.get(_ENCODER)
     if kept is None or kept[0] != options:
@@ -173,7 +171,18 @@ def json_response(body, app=None) -> Response:
                                           ensure_ascii=options[1], sort_keys=options[2],
                                           check_circular=False))
         setattr(provider, _ENCODER, kept)
-    return app.response_class(f"{kept[1].encode(body)}\n", mimetype=provider.mimetype)
+    return kept[1]
+
+
+def json_response(body, app=None) -> Response:
+    """``jsonify(body)``, byte for byte (``app``: the app answering, where the caller holds
+    it)."""
+    if app is None:
+        app = current_app._get_current_object()
+    encoder = compact_encoder(app)
+    if encoder is None:
+        return jsonify(body)  # indented
+    return app.response_class(f"{encoder.encode(body)}\n", mimetype=app.json.mimetype)
 
 
 #: The attribute of a JSON provider that keeps its compact encoder and the options it has.

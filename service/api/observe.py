@@ -78,8 +78,8 @@ def _plain_handler() -> logging.StreamHandler | None:
     return handler
 
 
-def _route(req=None) -> str:
-    rule = (request if req is None else req).url_rule
+def _route(req) -> str:
+    rule = req.url_rule
     return rule.rule if rule is not None else metrics.UNMATCHED
 
 

@@ -32,7 +32,7 @@ from service.api.body import (
 )
 from service.api.contract import AUDIT_CSV, CsvBody, Reply, operation
 from service.api.csv_input import CSV_DOC, column_of, csv_batch, options_schema, row_path
-from service.api.dump import dump, json_response
+from service.api.dump import compact_encoder, dump, json_response
 from service.api.fastload import load_batch, load_items
 from service.api.metrics import count_factors
 from service.api.problems import MAX_ERROR_PATHS, ProblemError
@@ -516,7 +516,7 @@ def _valuation(basis, data, state=None):
     """The valuation settings of a request: the basis' methods, and its interest unless the
     request gives ``interest`` or ``interest_rate`` (recorded in the request's ``state``,
     where the caller holds it)."""
-    curve = data.get("interest")
+    given = curve = data.get("interest")
     if data["interest_rate"] is not None:
         if curve is not None:
             raise ProblemError(422, "The request has invalid fields.", errors={
@@ -526,7 +526,7 @@ def _valuation(basis, data, state=None):
         state = current()
     use_basis(basis, curve, state)
     use_valuation_date(data.get("valuation_date"), state)
-    if data.get("interest") is not None:  # (a structure of the request's own: new each time)
+    if given is not None:  # (a structure of the request's own: a new object each time)
         return Valuation(curve, basis.fractional_age, basis.approximation)
     return _valuation_of(basis.interest if curve is None else curve, basis.fractional_age,
                          basis.approximation)
@@ -647,8 +647,10 @@ def _results_json(body: dict, app=None) -> Response:
     if len(body["results"]) < _SHARED_BLOCKS_FROM:
         # (a few blocks encode faster than their placeholders are swapped)
         return json_response(body, app)
-    provider = current_app.json
-    if provider.compact is False or (provider.compact is None and current_app.debug):
+    if app is None:
+        app = current_app._get_current_object()
+    encoder = compact_encoder(app)
+    if encoder is None:
         return jsonify(body)  # indented: the blocks would need the indentation of their place
     token = secrets.token_hex(8)
     blocks: dict[tuple, list] = {}  # a method block's items -> [placeholder, the dict, uses]
@@ -673,14 +675,13 @@ def _results_json(body: dict, app=None) -> Response:
             same[id(method)] = (method, entry)
         entry[2] += 1
         swapped.append(result | {"method": entry[0]})
-    compact = (",", ":")  # as jsonify encodes when not indenting
-    text = provider.dumps(body | {"results": swapped}, separators=compact)
+    text = encoder.encode(body | {"results": swapped})
     for placeholder, method, uses in blocks.values():
-        quoted = provider.dumps(placeholder)
+        quoted = encoder.encode(placeholder)
         if text.count(quoted) != uses:
             return jsonify(body)
-        text = text.replace(quoted, provider.dumps(method, separators=compact))
-    return current_app.response_class(f"{text}\n", mimetype=provider.mimetype)
+        text = text.replace(quoted, encoder.encode(method))
+    return app.response_class(f"{text}\n", mimetype=app.json.mimetype)
 
 
 def _batch(schema, item_schema, build=None, columns: bool = False, state=None) -> _Request:

@@ -83,7 +83,7 @@ from service.engine.items import (
     Valuation,
     methods,
 )
-from service.engine.survival import build_lives, fraction_survival
+from service.engine.survival import between, build_lives, fraction_survival
 
 #: Timing codes of :attr:`Columns.timing`; any other code is an invalid timing.
 TIMING_CODES = ("advance", "arrears", "continuous")
@@ -386,12 +386,6 @@ def _life_suspects(tables, cols: Columns, assumption: str) -> np.ndarray:
     return suspect
 
 
-def _between(x, lo, hi):
-    """``np.clip(x, lo, hi)`` (the same values, NaN kept) without its Python-level wrapper,
-    which costs more than the work on arrays of a few thousand."""
-    return np.minimum(np.maximum(x, lo), hi)
-
-
 def _select_key(tables, t, duration) -> np.ndarray:
     """The whole select duration where the life is in its select period, else -1."""
     period = _flat_rates(tuple(tables)).period[t]
@@ -407,14 +401,14 @@ def _year_rates(tables, t, anchor, dkey, mult, extra, k):
     t, anchor, dkey, mult, extra, k = np.broadcast_arrays(t, anchor, dkey, mult, extra, k)
     flat = _flat_rates(tuple(tables))
     age = anchor + k
-    base = flat.q[flat.offset[t] + _between(age - flat.first[t], 0, flat.length[t] - 1)]
+    base = flat.q[flat.offset[t] + between(age - flat.first[t], 0, flat.length[t] - 1)]
     if flat.select is not None:
         period = flat.period[t]
         dur = dkey + k
         sel = (dkey >= 0) & (dur < period)
         if sel.any():
-            srow = _between(anchor - dkey - flat.select_first[t], 0, flat.select_rows[t] - 1)
-            at = flat.select_offset[t] + srow * period + _between(dur, 0, period - 1)
+            srow = between(anchor - dkey - flat.select_first[t], 0, flat.select_rows[t] - 1)
+            at = flat.select_offset[t] + srow * period + between(dur, 0, period - 1)
             base = np.where(sel, flat.select[np.where(sel, at, 0)], base)
     return np.where(age >= flat.last[t], 1.0, np.minimum(base * mult + extra, 1.0))
 
@@ -910,8 +904,8 @@ def _alive_at(q, cum, chain, position, start, assumption):
     years past its integer age (the deferral's end: f + u), from its chain's q and C."""
     width = q.shape[1]
     k = np.floor(position + _SNAP)
-    r = _between(position - k, 0.0, 1.0)
-    k = _between(k, 0, width).astype(np.intp)
+    r = between(position - k, 0.0, 1.0)
+    k = between(k, 0, width).astype(np.intp)
     return cum[chain, k] * fraction_survival(q[chain, np.minimum(k, width - 1)], r,
                                              assumption) / start
 
@@ -968,8 +962,7 @@ class _Slots:
         b = self.kappa * (self.phi * s0 + s1) / self.mf
         a = self.kappa * ((self.mf - self.phi) * s0 - s1) / self.mf
         # The first slot's fraction is clipped to 0 where phi < 0 (an age snapped up).
-        clipped = (lo_ == 0) & (hi > 0) & (self.phi < 0) if self.snapped else None
-        if clipped is not None and clipped.any():
+        if self.snapped and (clipped := (lo_ == 0) & (hi > 0) & (self.phi < 0)).any():
             c0 = self.kappa * np.where(self.dm > 0, self.rho, 1.0)
             shift = np.where(clipped, c0 * (-self.phi / self.mf), 0.0)
             a, b = a - shift, b + shift
@@ -1085,8 +1078,8 @@ def _per_year(q, cum, chain, lw, ka, kb, ia, ib, ctx: _Slots, assumption, live, 
                     continue
                 s = f_ + (u_ + (j0 + i) / m)
                 kk = np.floor(s + _SNAP)
-                r = _between(s - kk, 0.0, 1.0)
-                kk = _between(kk, 0, width).astype(np.intp)
+                r = between(s - kk, 0.0, 1.0)
+                kk = between(kk, 0, width).astype(np.intp)
                 surv = cum[ch, kk] * fraction_survival(q[ch, np.minimum(kk, width - 1)], r,
                                                        assumption)
                 c = base * math.exp(-ctx.delta * i / m) * np.where(i < dm, rho, 1.0)

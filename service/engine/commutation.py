@@ -31,6 +31,7 @@ of 1 makes it) or the key's columns underflow or overflow (L or D outside 1e-290
 import numpy as np
 
 from service.engine import columns as _c
+from service.engine.survival import between
 
 #: L and D values are kept within these bounds (else the key's items go to the chains).
 _TINY, _HUGE = 1e-290, 1e290
@@ -176,8 +177,8 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
     ok = sh.ok[key] & (at_s > 0)
     scale = np.where(ok, csel[rows, s] / np.where(ok, at_s, 1.0), 0.0)
 
-    csel_flat = csel.reshape(-1)
-    csel_rows = rows * (top + 1)
+    csel_flat, csel_rows = csel.reshape(-1), rows * (top + 1)
+    sq_flat, sq_rows = sq.reshape(-1), rows * top
 
     def chain(kk):
         """C_k of each item at its k (arrays)."""
@@ -189,7 +190,7 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
         ultimate = q_flat[narrow + np.minimum(base + kk, sh.width - 1)]
         if top:
             inside = kk < s
-            sel = sq.reshape(-1)[rows * top + _c._between(kk, 0, top - 1)]
+            sel = sq_flat[sq_rows + between(kk, 0, top - 1)]
             return np.where(inside, sel, ultimate)
         return ultimate
 
@@ -200,8 +201,8 @@ def _value_chunk(tables, cols, idx, sh: _Shared, key, ages, anchor, dkey, growth
     if (win.guaranteed > 0).any():
         pos = win.frac + win.u
         ku = np.floor(pos + _c._SNAP)
-        ru = _c._between(pos - ku, 0.0, 1.0)
-        ku = _c._between(ku, 0, width).astype(np.int64)
+        ru = between(pos - ku, 0.0, 1.0)
+        ku = between(ku, 0, width).astype(np.int64)
         alive = chain(ku) * (1.0 - ru * rate(np.minimum(ku, width - 1))) / start
         values += _c._guarantee(win, m, growth, delta, alive)
     live = win.live

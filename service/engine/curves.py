@@ -127,7 +127,6 @@ _FIELDS = {"flat": ("rate",), "spot": ("terms", "rates"), "segments": ("edges", 
            "forward": ("edges", "rates")}
 
 
-
 def owner_sums(owner: np.ndarray, size: int, *weights: np.ndarray) -> list[np.ndarray]:
     """``np.bincount(owner, w, minlength=size)`` (as floats) for each ``w`` in ``weights``.
 

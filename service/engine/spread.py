@@ -37,6 +37,7 @@ from service.engine import integrals
 from service.engine.batch import _on_time, _payment_count, _prepare, _window_end
 from service.engine.errors import WorkLimitError
 from service.engine.items import Valuation
+from service.engine.survival import between as _clip
 
 #: Cumulative probabilities are compared with p/100 less this, so that rounding in the sums
 #: does not push a percentile one value up.
@@ -129,7 +130,7 @@ def _made(life, k):
     dates j <= k - 2 (payment j is at checkpoint j + 1; checkpoint 0 is the deferral). For
     continuous blocks: the blocks before block k (block k ends at checkpoint k)."""
     paid = np.concatenate([[0.0], np.cumsum(life)])
-    return paid[np.minimum(np.maximum(k - 1, 0), life.size)]  # (np.clip, faster)
+    return paid[_clip(k - 1, 0, life.size)]
 
 
 def _one_life(survival, certain, life):
@@ -219,4 +220,4 @@ def _continuous_outcomes(batch, n: int, curve, requires: str):
 def _block(life, k):
     """The value of block k (1-based: block k ends at checkpoint k); 0 outside."""
     padded = np.concatenate([[0.0], life, [0.0]])
-    return padded[np.minimum(np.maximum(k, 0), life.size + 1)]  # (np.clip, faster)
+    return padded[_clip(k, 0, life.size + 1)]

@@ -90,6 +90,12 @@ def fraction_force(q, r, assumption: str):
         return force(q, r, 1.0 - q)
 
 
+
+def between(x, lo, hi):
+    """``np.clip(x, lo, hi)`` (the same values, NaN kept) without its Python-level wrapper,
+    which costs more than the work on arrays of a few thousand."""
+    return np.minimum(np.maximum(x, lo), hi)
+
 @dataclass(frozen=True, eq=False)
 class Lives:
     """A vector of lives, each with its own chain of annual rates from its integer age."""
@@ -107,9 +113,8 @@ class Lives:
     def _locate(self, idx, t):
         s = self.frac[idx] + np.asarray(t, dtype=float)
         k = np.floor(s + _SNAP)
-        # (np.minimum of np.maximum is np.clip, without its Python-level wrapper)
-        r = np.minimum(np.maximum(s - k, 0.0), 1.0)
-        k = np.minimum(np.maximum(k, 0), self.q.shape[1]).astype(np.intp)
+        r = between(s - k, 0.0, 1.0)
+        k = between(k, 0, self.q.shape[1]).astype(np.intp)
         return k, r
 
     def survival(self, idx, t):

@@ -281,7 +281,6 @@ class TestChunkedBodies:
                                           content_type="application/json")
         assert_problem(response, 413)
 
-
     def test_with_content_length_at_the_limit_is_served_as_a_server_passes_it(self, small):
         # As gunicorn passes a body with a Content-Length: the input terminated too.
         body = VALID_BODY + b" " * (4096 - len(VALID_BODY))

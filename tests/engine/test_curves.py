@@ -635,16 +635,15 @@ class TestProperties:
         assert got.convexity[0] >= got.duration[0] ** 2 * (1 - 1e-12)
 
 
-
-
-
 @settings(max_examples=60, deadline=None)
 @given(st.lists(st.tuples(st.integers(0, 40), st.floats(-1e3, 1e3)), max_size=300),
        st.integers(0, 5), st.booleans())
 def test_sums_by_owner_are_bincount_s(pairs, spare, in_order):
     # np.bincount is the definition; owners listed in order are summed by runs (to
-    # rounding: a sum of n terms within n eps of the sum of their magnitudes), others by
-    # bincount itself (exactly).
+    # rounding: a sum of n terms in any order is within about n eps of the sum of their
+    # magnitudes, the standard error bound of recursive summation, Higham, "Accuracy and
+    # Stability of Numerical Algorithms", ch. 4, recalled from memory), others by bincount
+    # itself (exactly).
     from service.engine.curves import owner_sums
 
     if in_order:
